@@ -1,0 +1,128 @@
+"""The check job: simulate a proposed schedule and judge it against every limit."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import status as st
+from .errors import InputError, SimulationError
+from .limits import LimitReport, build_limits, judge
+from .model import Model, build_model
+from .outcome import Outcome, outcome_of
+from .problem import Problem, load_problem
+from .provenance import problem_digest, stamp
+from .schedule import Schedule, load_schedule
+from .simulate import Trajectory, simulate
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """What ``optfeed check`` found.
+
+    Attributes
+    ----------
+    status : str
+        :data:`optfeed.status.WITHIN_LIMITS`, ``LIMIT_BROKEN`` or ``SIMULATION_FAILED``.
+    message : str
+        One line for people.
+    limits : tuple of LimitReport
+        One per limit, in report order.
+    outcome : Outcome or None
+        Final values and the objective (None if the simulation failed).
+    end_time : float
+        h.
+    problem : Problem
+    schedule : Schedule
+    trajectory : Trajectory or None
+    use : dict
+        Limit name -> % of its upper bound at each trajectory sample.
+    record : dict
+        Provenance: problem digest, files, tool version, time.
+    """
+
+    status: str
+    message: str
+    limits: tuple
+    outcome: Outcome | None
+    end_time: float
+    problem: Problem
+    schedule: Schedule
+    trajectory: Trajectory | None = field(repr=False, default=None)
+    use: dict = field(repr=False, default_factory=dict)
+    record: dict = field(default_factory=dict)
+
+    @property
+    def exit_code(self) -> int:
+        return st.exit_code(self.status)
+
+    @property
+    def violations(self) -> list[LimitReport]:
+        return sorted((r for r in self.limits if r.violated), key=lambda r: r.first_violation)
+
+
+def check(problem, schedule, end_time: float | None = None) -> CheckResult:
+    """Simulate ``schedule`` on ``problem`` and judge every limit.
+
+    Parameters
+    ----------
+    problem : Problem or path
+        A loaded problem or a problem file.
+    schedule : Schedule or path
+        A schedule or a schedule file (CSV or YAML).
+    end_time : float, optional
+        Run length, h. Default: the problem's fixed end time; for a free end time,
+        the time of the schedule's last row rounded up to the horizon's minimum.
+
+    Returns
+    -------
+    CheckResult
+
+    Raises
+    ------
+    InputError
+        For a bad problem or schedule file.
+    """
+    if not isinstance(problem, Problem):
+        problem = load_problem(problem)
+    tf = _end_time(problem, end_time)
+    model = build_model(problem)
+    if not isinstance(schedule, Schedule):
+        schedule = load_schedule(schedule, model.feed_names, tf)
+    record = {"problem_file": problem.source, "schedule_file": schedule.source,
+              "problem_digest": problem_digest(problem), **stamp()}
+    limits = build_limits(model)
+    try:
+        traj = simulate(model, schedule, tf)
+    except SimulationError as exc:
+        return CheckResult(st.SIMULATION_FAILED, f"simulation failed: {exc}", (), None, tf, problem,
+                           schedule, None, {}, record)
+    reports, use = judge(model, limits, traj)
+    outcome = outcome_of(model, traj, tf)
+    broken = sorted((r for r in reports if r.violated), key=lambda r: r.first_violation)
+    if broken:
+        first = broken[0]
+        status = st.LIMIT_BROKEN
+        message = (f"{len(broken)} limit(s) broken; first: {first.name} at {first.first_violation:.4g} h")
+    else:
+        status = st.WITHIN_LIMITS
+        tight = min(reports, key=lambda r: _relative_slack(r))
+        message = f"within all {len(reports)} limits; tightest: {tight.name}"
+    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record)
+
+
+def _relative_slack(r: LimitReport) -> float:
+    scale = max([abs(v) for v in (r.lower, r.upper) if v is not None] + [1e-12])
+    return r.min_slack / scale
+
+
+def _end_time(problem: Problem, end_time):
+    h = problem.horizon
+    if end_time is not None:
+        if h.free and not (h.min_end <= end_time <= h.max_end):
+            raise InputError.one(problem.source, None, "horizon.end_time",
+                                 f"end time {end_time:g} h lies outside the allowed {h.min_end:g}..{h.max_end:g} h")
+        return float(end_time)
+    return float(h.end_time if not h.free else h.guess)

@@ -1,0 +1,108 @@
+"""The command line: a thin layer over the Python API.
+
+    optfeed validate PROBLEM [--schedule FILE]
+    optfeed check PROBLEM --schedule FILE [--out DIR | --results DIR] [--json] [--quiet]
+
+Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
+verified optimum), 2 bad input, 3 a solver or integrator failure.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from pathlib import Path
+
+from . import __version__
+from . import status as st
+from .errors import InputError
+
+
+def _parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="optfeed", description="Feed profiles for fed-batch cultures, "
+                                 "checked against the vessel's limits.")
+    ap.add_argument("--version", action="version", version=f"optfeed {__version__}")
+    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    v = sub.add_parser("validate", help="read and check a problem file; solve nothing")
+    v.add_argument("problem", help="problem file (YAML)")
+    v.add_argument("--schedule", help="also read and check this schedule file (CSV or YAML)")
+
+    c = sub.add_parser("check", help="simulate a proposed feed schedule and judge every limit")
+    c.add_argument("problem", help="problem file (YAML)")
+    c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
+    c.add_argument("--end-time", type=float, help="run length in h (only for a free end time)")
+    _output_args(c)
+    return ap
+
+
+def _output_args(p):
+    p.add_argument("--out", help="run folder to write (must not exist)")
+    p.add_argument("--results", default="results", help="parent of the run folder (default: results)")
+    p.add_argument("--no-figures", action="store_true", help="skip the PNG figure")
+    p.add_argument("--json", action="store_true", help="print summary.json to stdout instead of the report")
+    p.add_argument("--quiet", action="store_true", help="print only the status line")
+
+
+def main(argv=None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        if args.command == "validate":
+            return _validate(args)
+        if args.command == "check":
+            return _check(args)
+    except InputError as exc:
+        print("optfeed: bad input", file=sys.stderr)
+        for issue in exc.issues:
+            print(f"  {issue}", file=sys.stderr)
+        return st.EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("optfeed: interrupted", file=sys.stderr)
+        return 130
+    except Exception:  # a bug: say so plainly, with the trace for the report
+        print("optfeed: internal error (please report it with the trace below)", file=sys.stderr)
+        traceback.print_exc()
+        return st.EXIT_FAILED
+    return st.EXIT_FAILED
+
+
+def _validate(args) -> int:
+    from .model import build_model
+    from .problem import load_problem
+    from .schedule import load_schedule
+
+    problem = load_problem(args.problem)
+    model = build_model(problem)
+    tf = problem.horizon.end_time if not problem.horizon.free else problem.horizon.max_end
+    if args.schedule:
+        load_schedule(args.schedule, model.feed_names, tf)
+    what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
+    print(f"{args.problem}: valid ({what})" + (f"; {args.schedule}: valid" if args.schedule else ""))
+    return st.EXIT_OK
+
+
+def _check(args) -> int:
+    from .check import check
+    from .report import check_text, write_check_run
+    from .report.files import check_summary, default_run_dir
+
+    result = check(args.problem, args.schedule, end_time=args.end_time)
+    target = Path(args.out) if args.out else default_run_dir(Path(args.results), result.problem.name, "check")
+    if target.exists():
+        raise InputError.one(str(target), None, "--out", "run folder already exists; choose another")
+    write_check_run(result, target, figures=not args.no_figures)
+    if args.json:
+        print(json.dumps({**check_summary(result), "run_folder": str(target)}, indent=2))
+    elif args.quiet:
+        print(f"{result.status}: {result.message}")
+    else:
+        print(check_text(result), end="")
+        print(f"\nWritten: {target}/ (summary.json, report.txt, limits.csv, trajectory.csv"
+              + (", figure.png)" if not args.no_figures and result.trajectory is not None else ")"))
+    return result.exit_code
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,457 @@
+"""Problem files -> :class:`Problem`: every check a problem file must pass.
+
+:func:`load_problem` reads the YAML (safely, keeping lines), checks its shape
+(:mod:`.schema`), then units, names and expressions, and returns plain data in
+internal units. All problems found are reported together in one
+:class:`~optfeed.errors.InputError`, each naming the file, line and key.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+import typing
+from pathlib import Path
+
+import pydantic
+
+from .. import expr as ex
+from ..errors import InputError, Issue
+from ..units import parse_quantity, to_internal
+from . import schema
+from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Species, Vessel
+from .yamlio import Lines, key_text, read_yaml
+
+_NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+
+
+def load_problem(path) -> Problem:
+    """Read and check a problem file.
+
+    Parameters
+    ----------
+    path : str or Path
+        A YAML problem file.
+
+    Returns
+    -------
+    Problem
+        In internal units (see :mod:`optfeed.units`).
+
+    Raises
+    ------
+    InputError
+        For anything wrong with the file; every issue names file, line and key.
+
+    Examples
+    --------
+    >>> p = load_problem("configs/fast_microbe.yaml")  # doctest: +SKIP
+    >>> p.vessel.working_volume                        # doctest: +SKIP
+    8.0
+    """
+    data, lines = read_yaml(path)
+    return problem_from_data(data, str(path), lines)
+
+
+def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
+    """Check plain data (as read from a problem file) and build a Problem."""
+    lines = lines or Lines()
+    if not isinstance(data, dict):
+        raise InputError.one(source, lines.get(()), "", "expected a mapping of keys at the top level")
+    try:
+        raw = schema.ProblemIn.model_validate(data)
+    except pydantic.ValidationError as exc:
+        raise InputError([_pydantic_issue(e, source, lines) for e in exc.errors()]) from None
+    return _Builder(raw, data, source, lines).build()
+
+
+# ---------------------------------------------------------------- pydantic errors
+
+
+def _pydantic_issue(err, source, lines) -> Issue:
+    loc = tuple(err["loc"])
+    kind = err["type"]
+    line = lines.get(loc)
+    if kind == "extra_forbidden":
+        allowed = _fields_at(schema.ProblemIn, loc[:-1])
+        msg = f"unknown key {loc[-1]!r}"
+        close = difflib.get_close_matches(str(loc[-1]), allowed, n=3, cutoff=0.5)
+        if close:
+            msg += f"; did you mean {', '.join(repr(c) for c in close)}?"
+        elif allowed:
+            msg += f"; expected one of: {', '.join(allowed)}"
+        return Issue(source, line, key_text(loc[:-1]) or "(top level)", msg)
+    if kind == "missing":
+        return Issue(source, lines.get(loc[:-1]), key_text(loc), "required key is missing")
+    # union types report one error per member; keep the message readable
+    loc = tuple(p for p in loc if not (isinstance(p, str) and p[:1].islower() and "[" in p))
+    loc = tuple(p for p in loc if p not in ("float", "int", "str", "FreeTimeIn", "function-after"))
+    got = err.get("input")
+    got_text = repr(got) if not isinstance(got, (dict, list)) else type(got).__name__
+    msg = err["msg"]
+    if kind.endswith("_type") or kind in ("model_type", "dict_type", "list_type"):
+        msg = f"wrong type: {msg.lower()}, got {got_text}"
+    elif kind == "literal_error":
+        msg = f"{msg}, got {got_text}"
+    return Issue(source, line, key_text(loc), msg)
+
+
+def _fields_at(model, loc) -> list[str]:
+    """Names of the keys allowed at ``loc`` of the schema, for suggestions."""
+    ann = model
+    for part in loc:
+        ann = _unwrap(ann)
+        if isinstance(ann, type) and issubclass(ann, pydantic.BaseModel):
+            if part not in ann.model_fields:
+                return []
+            ann = ann.model_fields[part].annotation
+        elif typing.get_origin(ann) in (dict, list):
+            ann = typing.get_args(ann)[-1]
+        else:
+            return []
+    ann = _unwrap(ann)
+    if isinstance(ann, type) and issubclass(ann, pydantic.BaseModel):
+        return list(ann.model_fields)
+    return []
+
+
+def _unwrap(ann):
+    if typing.get_origin(ann) is typing.Union:
+        models = [a for a in typing.get_args(ann) if isinstance(a, type) and issubclass(a, pydantic.BaseModel)]
+        others = [a for a in typing.get_args(ann) if typing.get_origin(a) in (dict, list)]
+        return (models or others or [ann])[0]
+    return ann
+
+
+# ---------------------------------------------------------------- semantic checks
+
+
+class _Builder:
+    """Checks one validated file and builds the Problem, collecting every issue."""
+
+    def __init__(self, raw: schema.ProblemIn, data: dict, source: str, lines: Lines):
+        self.raw, self.data, self.source, self.lines = raw, data, source, lines
+        self.issues: list[Issue] = []
+
+    # -- helpers
+    def fail(self, loc, message):
+        self.issues.append(Issue(self.source, self.lines.get(loc), key_text(loc), message))
+
+    def quantity(self, value, kind, loc):
+        """(internal float, unit text, dimensionality) or None after recording an issue."""
+        try:
+            q = parse_quantity(value, kind)
+        except ValueError as exc:
+            self.fail(loc, str(exc))
+            return None
+        try:
+            internal = to_internal(q)
+        except ValueError as exc:
+            self.fail(loc, str(exc))
+            return None
+        unit = _written_unit(value, kind)
+        return internal, unit, q.dimensionality
+
+    def expression(self, text, loc, known):
+        try:
+            e = ex.parse(text)
+        except ex.ExprError as exc:
+            self.fail(loc, str(exc))
+            return None
+        for msg in ex.unknown_names(e, known):
+            self.fail(loc, f"{msg} (in {e.text!r})")
+        return e
+
+    # -- build
+    def build(self) -> Problem:
+        r = self.raw
+        names = self._names()
+        species_dims = {}
+        species_initial = {}
+        for name, sp in r.species.items():
+            got = self.quantity(sp.initial, "amount", ("species", name, "initial"))
+            if got:
+                species_initial[name] = got[:2]
+                species_dims[name] = got[2]
+                if got[0] < 0:
+                    self.fail(("species", name, "initial"), f"initial value {sp.initial!r} is negative")
+
+        parameters, parameter_units = {}, {}
+        for name, value in r.parameters.items():
+            got = self.quantity(value, "any", ("parameters", name))
+            if got:
+                parameters[name], parameter_units[name] = got[0], got[1]
+
+        feed_names = list(r.feeds)
+        base = list(r.species) + list(r.parameters) + feed_names + ["t", "V", "D", "F_total"]
+        rates = []
+        known = list(base)
+        for name, text in r.rates.items():
+            later = [n for n in r.rates if n not in known and n != name]
+            e = self.expression(text, ("rates", name), known + later)
+            if e is not None:
+                for used in sorted(e.names & set(later)):
+                    self.fail(("rates", name), f"uses rate {used!r}, which is defined below it; "
+                                               "rates are evaluated in the order written")
+                if name in e.names:
+                    self.fail(("rates", name), "a rate cannot use itself")
+                rates.append((name, e))
+            known.append(name)
+        rate_env = list(known)
+
+        vessel = self._vessel(rate_env)
+        with_oxygen = rate_env + (["OUR"] if r.vessel.oxygen else [])
+        end_env = with_oxygen + (["heat_load"] if r.vessel.heat else [])
+
+        species = self._species(species_initial, rate_env)
+        feeds = self._feeds(species_dims)
+        bounds = self._bounds(species_dims, end_env)
+        horizon = self._horizon()
+        objective = self._objective(end_env)
+
+        if self.issues:
+            raise InputError(self.issues)
+        return Problem(
+            name=r.name or Path(self.source).stem,
+            description=r.description.strip(),
+            source=self.source,
+            species=tuple(species),
+            parameters=parameters,
+            parameter_units=parameter_units,
+            rates=tuple(rates),
+            feeds=tuple(feeds),
+            vessel=vessel,
+            bounds=tuple(bounds),
+            horizon=horizon,
+            objective=objective,
+            data=self.data,
+        )
+
+    def _names(self):
+        seen = {}
+        r = self.raw
+        groups = [("species", r.species), ("parameters", r.parameters), ("rates", r.rates), ("feeds", r.feeds)]
+        for group, items in groups:
+            for name in items:
+                loc = (group, name)
+                if not _NAME_RE.match(name):
+                    self.fail(loc, f"name {name!r} must start with a letter and hold only letters, digits and '_'")
+                elif name in RESERVED:
+                    self.fail(loc, f"name {name!r} is reserved ({', '.join(RESERVED)})")
+                elif name in ex.FUNCTIONS:
+                    self.fail(loc, f"name {name!r} is a function name")
+                elif name in seen:
+                    self.fail(loc, f"name {name!r} is already used under {seen[name]}")
+                seen.setdefault(name, group)
+        if not r.species:
+            self.fail(("species",), "at least one species is needed")
+        if not r.feeds:
+            self.fail(("feeds",), "at least one feed is needed")
+
+    def _species(self, initial, env):
+        r = self.raw
+        out = []
+        for where in ("reactions", "derivatives"):
+            for name in getattr(r, where):
+                if name not in r.species:
+                    close = difflib.get_close_matches(name, list(r.species), n=3)
+                    hint = f"; did you mean {', '.join(map(repr, close))}?" if close else ""
+                    self.fail((where, name), f"{name!r} is not a species{hint}")
+        for name, sp in r.species.items():
+            in_r, in_d = name in r.reactions, name in r.derivatives
+            if in_r and in_d:
+                self.fail(("derivatives", name), "a species has either a reaction rate or a derivative, not both")
+                continue
+            if not in_r and not in_d:
+                self.fail(("species", name), "has no rate: add it under 'reactions' (net rate; the tool adds "
+                                             "feed and dilution) or 'derivatives' (full right-hand side)")
+                continue
+            where = "reactions" if in_r else "derivatives"
+            e = self.expression(getattr(r, where)[name], (where, name), env)
+            if e is None or name not in initial:
+                continue
+            out.append(Species(
+                name=name, initial=initial[name][0], unit=initial[name][1], description=sp.description,
+                dilute=sp.dilute and in_r, raw=in_d, rate=e,
+            ))
+        return out
+
+    def _feeds(self, species_dims):
+        r = self.raw
+        out = []
+        for name, fd in r.feeds.items():
+            hi = self.quantity(fd.max_rate, "flow", ("feeds", name, "max_rate"))
+            lo = self.quantity(fd.min_rate, "flow", ("feeds", name, "min_rate"))
+            comp = {}
+            for sname, value in fd.composition.items():
+                loc = ("feeds", name, "composition", sname)
+                if sname not in r.species:
+                    close = difflib.get_close_matches(sname, list(r.species), n=3)
+                    hint = f"; did you mean {', '.join(map(repr, close))}?" if close else ""
+                    self.fail(loc, f"{sname!r} is not a species{hint}")
+                    continue
+                if sname in r.derivatives or not r.species[sname].dilute:
+                    self.fail(loc, f"species {sname!r} has its balance written in full (raw derivative or "
+                                   "dilute: false); write its inflow in that expression instead")
+                    continue
+                got = self.quantity(value, "amount", loc)
+                if got is None:
+                    continue
+                if sname in species_dims and got[2] != species_dims[sname]:
+                    self.fail(loc, f"{value!r} has dimension {got[2]}, but species {sname!r} is in "
+                                   f"{species_dims[sname]}")
+                    continue
+                if got[0] < 0:
+                    self.fail(loc, f"feed concentration {value!r} is negative")
+                comp[sname] = got[0]
+            if hi and lo:
+                if hi[0] <= 0:
+                    self.fail(("feeds", name, "max_rate"), f"maximum pump rate must be above zero, got {fd.max_rate!r}")
+                if lo[0] < 0:
+                    self.fail(("feeds", name, "min_rate"), f"minimum pump rate cannot be negative, got {fd.min_rate!r}")
+                if lo[0] > hi[0]:
+                    self.fail(("feeds", name, "min_rate"),
+                              f"minimum pump rate {fd.min_rate!r} is above the maximum {fd.max_rate!r}")
+                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description))
+        return out
+
+    def _vessel(self, env):
+        v = self.raw.vessel
+        v0 = self.quantity(v.initial_volume, "volume", ("vessel", "initial_volume"))
+        vw = self.quantity(v.working_volume, "volume", ("vessel", "working_volume"))
+        if v0 and v0[0] <= 0:
+            self.fail(("vessel", "initial_volume"), f"initial volume must be above zero, got {v.initial_volume!r}")
+        if vw and vw[0] <= 0:
+            self.fail(("vessel", "working_volume"), f"working volume must be above zero, got {v.working_volume!r}")
+        if v0 and vw and 0 < vw[0] < v0[0]:
+            self.fail(("vessel", "initial_volume"),
+                      f"initial volume {v.initial_volume!r} is above the working volume {v.working_volume!r}")
+        oxygen = heat = None
+        if v.oxygen is not None:
+            e = self.expression(v.oxygen.uptake, ("vessel", "oxygen", "uptake"), env)
+            otr = self.quantity(v.oxygen.transfer_max, "oxygen_rate", ("vessel", "oxygen", "transfer_max"))
+            if otr and otr[0] <= 0:
+                self.fail(("vessel", "oxygen", "transfer_max"), "OTR ceiling must be above zero")
+            if e is not None and otr:
+                oxygen = Oxygen(e, otr[0], otr[1])
+        if v.heat is not None:
+            qmax = self.quantity(v.heat.removal_max, "power", ("vessel", "heat", "removal_max"))
+            y = self.quantity(v.heat.yield_per_oxygen, "heat_yield", ("vessel", "heat", "yield_per_oxygen"))
+            if v.oxygen is None:
+                self.fail(("vessel", "heat"), "the heat load is computed from oxygen uptake: add vessel.oxygen")
+            if qmax and qmax[0] <= 0:
+                self.fail(("vessel", "heat", "removal_max"), "heat-removal ceiling must be above zero")
+            if y and y[0] <= 0:
+                self.fail(("vessel", "heat", "yield_per_oxygen"), "heat yield must be above zero")
+            if qmax and y:
+                heat = Heat(qmax[0], y[0], qmax[1])
+        if v0 and vw:
+            return Vessel(v0[0], vw[0], vw[1], oxygen, heat)
+        return None
+
+    def _bounds(self, species_dims, env):
+        out = []
+        for group, at_end in (("limits", False), ("end", True)):
+            for i, b in enumerate(getattr(self.raw, group)):
+                loc = (group, i)
+                e = self.expression(b.expression, loc + ("expression",), env)
+                if b.min is None and b.max is None:
+                    self.fail(loc, "give 'min', 'max' or both")
+                    continue
+                lo = hi = None
+                unit = ""
+                dims = species_dims.get(e.text.strip()) if e is not None else None
+                for side in ("min", "max"):
+                    value = getattr(b, side)
+                    if value is None:
+                        continue
+                    got = self.quantity(value, "any", loc + (side,))
+                    if got is None:
+                        continue
+                    if dims is not None and got[2] != dims and _written_unit(value, "any"):
+                        self.fail(loc + (side,), f"{value!r} has dimension {got[2]}, but {e.text.strip()!r} "
+                                                 f"is in {dims}")
+                    if side == "min":
+                        lo = got[0]
+                    else:
+                        hi = got[0]
+                    unit = unit or got[1]
+                if lo is not None and hi is not None and lo > hi:
+                    self.fail(loc, f"min {b.min!r} is above max {b.max!r}")
+                if e is None:
+                    continue
+                name = b.name or (f"{'end ' if at_end else ''}{e.text.strip()}")
+                out.append(Bound(name, e, lo, hi, unit, at_end, key_text(loc)))
+        return out
+
+    def _horizon(self):
+        h = self.raw.horizon.end_time
+        loc = ("horizon", "end_time")
+        if isinstance(h, schema.FreeTimeIn):
+            lo = self.quantity(h.min, "time", loc + ("min",))
+            hi = self.quantity(h.max, "time", loc + ("max",))
+            guess = self.quantity(h.guess, "time", loc + ("guess",)) if h.guess is not None else None
+            if lo and hi:
+                if lo[0] <= 0:
+                    self.fail(loc + ("min",), "the shortest end time must be above zero")
+                if lo[0] > hi[0]:
+                    self.fail(loc, f"min {h.min!r} is above max {h.max!r}")
+                g = guess[0] if guess else 0.5 * (lo[0] + hi[0])
+                if not lo[0] <= g <= hi[0]:
+                    self.fail(loc + ("guess",), "the guess lies outside min..max")
+                return Horizon(None, lo[0], hi[0], g)
+            return None
+        got = self.quantity(h, "time", loc)
+        if got:
+            if got[0] <= 0:
+                self.fail(loc, f"end time must be above zero, got {h!r}")
+            return Horizon(got[0])
+        return None
+
+    def _objective(self, env):
+        o = self.raw.objective
+        if o is None:
+            return None
+        loc = ("objective",)
+        if (o.maximize is None) == (o.minimize is None):
+            self.fail(loc, "give exactly one of 'maximize' or 'minimize'")
+            return None
+        sense = "maximize" if o.maximize else "minimize"
+        quantity = o.maximize or o.minimize
+        species = self.raw.species
+        for key, needed in (("product", ("titer", "product_mass", "productivity", "yield")),
+                            ("substrate", ("yield",))):
+            value = getattr(o, key)
+            if quantity in needed and value is None:
+                self.fail(loc + (key,), f"'{quantity}' needs the {key} species named here")
+            if value is not None and value not in species:
+                close = difflib.get_close_matches(value, list(species), n=3)
+                hint = f"; did you mean {', '.join(map(repr, close))}?" if close else ""
+                self.fail(loc + (key,), f"{value!r} is not a species{hint}")
+        if quantity == "yield" and o.substrate in species and not any(
+                o.substrate in f.composition for f in self.raw.feeds.values()):
+            self.fail(loc + ("substrate",), f"no feed carries {o.substrate!r}, so its yield is undefined")
+        e = None
+        if quantity == "expression":
+            if o.expression is None:
+                self.fail(loc + ("expression",), "'expression' objective needs an expression here")
+            else:
+                e = self.expression(o.expression, loc + ("expression",), env)
+        elif o.expression is not None:
+            self.fail(loc + ("expression",), f"an expression is only used with '{sense}: expression'")
+        integral = self.expression(o.integral, loc + ("integral",), env) if o.integral is not None else None
+        turn = self.quantity(o.turnaround, "time", loc + ("turnaround",))
+        if turn and turn[0] < 0:
+            self.fail(loc + ("turnaround",), "turnaround time cannot be negative")
+        return Objective(sense, quantity, o.product, o.substrate, e, integral, turn[0] if turn else 0.0)
+
+
+def _written_unit(value, kind) -> str:
+    """The unit text as the user wrote it ('' for a bare number of kind 'any')."""
+    from ..units import KINDS, _QUANTITY_RE
+
+    if isinstance(value, str):
+        m = _QUANTITY_RE.match(value)
+        if m and m.group("unit"):
+            return m.group("unit")
+    return KINDS[kind].default_unit

@@ -1,0 +1,95 @@
+"""The shape of a problem file, checked by pydantic.
+
+This layer checks keys and value types only (unknown keys are errors). Units, names
+and expressions are checked in :mod:`optfeed.problem.load`, which turns these raw
+models into the plain :class:`optfeed.problem.spec.Problem`.
+"""
+
+from __future__ import annotations
+
+from typing import Literal, Optional, Union
+
+from pydantic import BaseModel, ConfigDict, Field, StrictBool
+
+Scalar = Union[float, int, str]  # a number, or a number with a unit as text
+Text = str
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class SpeciesIn(_Strict):
+    initial: Scalar
+    description: Text = ""
+    dilute: StrictBool = True
+
+
+class FeedIn(_Strict):
+    composition: dict[str, Scalar] = Field(default_factory=dict)
+    max_rate: Scalar
+    min_rate: Scalar = 0.0
+    description: Text = ""
+
+
+class OxygenIn(_Strict):
+    uptake: Scalar
+    transfer_max: Scalar
+
+
+class HeatIn(_Strict):
+    removal_max: Scalar
+    yield_per_oxygen: Scalar = "460 kJ/mol"
+
+
+class VesselIn(_Strict):
+    initial_volume: Scalar
+    working_volume: Scalar
+    oxygen: Optional[OxygenIn] = None
+    heat: Optional[HeatIn] = None
+
+
+class BoundIn(_Strict):
+    expression: Scalar
+    name: Text = ""
+    min: Optional[Scalar] = None
+    max: Optional[Scalar] = None
+
+
+class FreeTimeIn(_Strict):
+    min: Scalar
+    max: Scalar
+    guess: Optional[Scalar] = None
+
+
+class HorizonIn(_Strict):
+    end_time: Union[Scalar, FreeTimeIn]
+
+
+Quantity = Literal["titer", "product_mass", "productivity", "yield", "expression"]
+
+
+class ObjectiveIn(_Strict):
+    maximize: Optional[Quantity] = None
+    minimize: Optional[Quantity] = None
+    product: Optional[Text] = None
+    substrate: Optional[Text] = None
+    expression: Optional[Scalar] = None
+    integral: Optional[Scalar] = None
+    turnaround: Scalar = 0.0
+
+
+class ProblemIn(_Strict):
+    name: Text = ""
+    description: Text = ""
+    species: dict[str, SpeciesIn]
+    parameters: dict[str, Scalar] = Field(default_factory=dict)
+    rates: dict[str, Scalar] = Field(default_factory=dict)
+    reactions: dict[str, Scalar] = Field(default_factory=dict)
+    derivatives: dict[str, Scalar] = Field(default_factory=dict)
+    feeds: dict[str, FeedIn]
+    vessel: VesselIn
+    limits: list[BoundIn] = Field(default_factory=list)
+    end: list[BoundIn] = Field(default_factory=list)
+    horizon: HorizonIn
+    objective: Optional[ObjectiveIn] = None

@@ -1,0 +1,204 @@
+"""The resolved problem: plain, frozen, picklable data in internal units.
+
+Every number here is in optfeed's coherent internal units (g, L, h, mmol; see
+:mod:`optfeed.units`); every ``unit`` field is the unit the user wrote, used only for
+reports. Expressions are checked :class:`optfeed.expr.Expr` objects. Nothing here
+holds a CasADi object, so a Problem can be sent to a worker process.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from ..expr import Expr
+
+RESERVED = ("t", "V", "D", "F_total", "OUR", "heat_load")
+
+
+@dataclass(frozen=True)
+class Species:
+    """A state of the culture.
+
+    Attributes
+    ----------
+    name : str
+    initial : float
+        Initial value, internal units (g/L for a concentration in g/L).
+    unit : str
+        The unit the user wrote for it (for reports).
+    description : str
+    dilute : bool
+        False for quantities the feed does not dilute (per-cell or extensive);
+        the tool then adds neither feed nor dilution terms.
+    raw : bool
+        True if its whole derivative is written under ``derivatives``.
+    rate : Expr
+        Net reaction rate (standard form) or the full derivative (raw form),
+        in species unit per hour.
+    """
+
+    name: str
+    initial: float
+    unit: str
+    description: str
+    dilute: bool
+    raw: bool
+    rate: Expr
+
+
+@dataclass(frozen=True)
+class Feed:
+    """A feed stream (one pump).
+
+    Attributes
+    ----------
+    name : str
+    composition : dict
+        Species name -> concentration in the feed, internal units.
+    min_rate, max_rate : float
+        Pump limits, L/h.
+    unit : str
+        The unit the user wrote for ``max_rate`` (for reports).
+    """
+
+    name: str
+    composition: dict
+    min_rate: float
+    max_rate: float
+    unit: str
+    description: str = ""
+
+
+@dataclass(frozen=True)
+class Bound:
+    """A bound on an expression over the run (path) or at the end.
+
+    Attributes
+    ----------
+    name : str
+    expression : Expr
+    lower, upper : float or None
+        Internal units.
+    unit : str
+        The unit the bound was written in (for reports; '' if none).
+    at_end : bool
+    key : str
+        Where it came from in the problem file (``limits[0]``).
+    """
+
+    name: str
+    expression: Expr
+    lower: float | None
+    upper: float | None
+    unit: str
+    at_end: bool
+    key: str
+
+
+@dataclass(frozen=True)
+class Oxygen:
+    """Oxygen demand and the vessel's transfer ceiling.
+
+    uptake : Expr, oxygen uptake rate OUR (mmol/L/h internal);
+    transfer_max : float, OTR ceiling, mmol/L/h; unit : str as written.
+    """
+
+    uptake: Expr
+    transfer_max: float
+    unit: str
+
+
+@dataclass(frozen=True)
+class Heat:
+    """Heat-removal ceiling; heat load = yield_per_oxygen * OUR * V.
+
+    removal_max and yield_per_oxygen are internal units (g dm^2 h^-3 and
+    g dm^2 h^-2 mmol^-1); unit is the unit written for removal_max.
+    """
+
+    removal_max: float
+    yield_per_oxygen: float
+    unit: str
+
+
+@dataclass(frozen=True)
+class Vessel:
+    """initial_volume, working_volume in L; unit as written for working_volume."""
+
+    initial_volume: float
+    working_volume: float
+    unit: str
+    oxygen: Oxygen | None = None
+    heat: Heat | None = None
+
+
+@dataclass(frozen=True)
+class Horizon:
+    """Run length in h: fixed ``end_time``, or free between ``min_end`` and ``max_end``."""
+
+    end_time: float | None
+    min_end: float | None = None
+    max_end: float | None = None
+    guess: float | None = None
+
+    @property
+    def free(self) -> bool:
+        return self.end_time is None
+
+
+@dataclass(frozen=True)
+class Objective:
+    """What to maximise or minimise.
+
+    Attributes
+    ----------
+    sense : 'maximize' or 'minimize'
+    quantity : 'titer', 'product_mass', 'productivity', 'yield' or 'expression'
+        titer = product concentration at the end; product_mass = product * V at the
+        end; productivity = titer / (end time + turnaround) (per hour); yield =
+        (product formed, mass) / (substrate fed, mass); expression = ``expression``
+        evaluated at the end.
+    product, substrate : str or None
+    expression, integral : Expr or None
+        ``integral`` is integrated over the run and added to the end value.
+    turnaround : float
+        h, added to the run time for productivity.
+    """
+
+    sense: str
+    quantity: str
+    product: str | None
+    substrate: str | None
+    expression: Expr | None
+    integral: Expr | None
+    turnaround: float
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A checked fed-batch problem. Build it with :func:`optfeed.load_problem`."""
+
+    name: str
+    description: str
+    source: str
+    species: tuple
+    parameters: dict
+    parameter_units: dict
+    rates: tuple  # of (name, Expr), in evaluation order
+    feeds: tuple
+    vessel: Vessel
+    bounds: tuple
+    horizon: Horizon
+    objective: Objective | None
+    data: dict = field(repr=False, default_factory=dict)
+
+    @property
+    def species_names(self) -> list[str]:
+        return [s.name for s in self.species]
+
+    @property
+    def feed_names(self) -> list[str]:
+        return [f.name for f in self.feeds]
+
+    def species_by_name(self, name) -> Species:
+        return next(s for s in self.species if s.name == name)

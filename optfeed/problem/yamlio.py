@@ -1,0 +1,161 @@
+"""Reading YAML safely, keeping the line of every key.
+
+:func:`read_yaml` returns plain data (dict, list, str, int, float, bool, None) and a
+:class:`Lines` map from key paths to 1-based line numbers, so that later checks can
+name the line of a bad value. Only the YAML core types are accepted: any other tag
+(``!!python/object``, ``!!binary``, custom tags) is an error, and so is an alias
+expansion that grows past :data:`MAX_NODES` nodes (an "alias bomb").
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import yaml
+
+from ..errors import InputError
+
+MAX_BYTES = 2_000_000
+MAX_NODES = 50_000
+
+_PLAIN_TAGS = {
+    "tag:yaml.org,2002:str",
+    "tag:yaml.org,2002:int",
+    "tag:yaml.org,2002:float",
+    "tag:yaml.org,2002:bool",
+    "tag:yaml.org,2002:null",
+}
+_MAP = "tag:yaml.org,2002:map"
+_SEQ = "tag:yaml.org,2002:seq"
+
+
+class Lines:
+    """Key path (tuple of str/int) -> 1-based line of that key or item."""
+
+    def __init__(self):
+        self._lines: dict[tuple, int] = {}
+
+    def set(self, path: tuple, line: int) -> None:
+        self._lines.setdefault(path, line)
+
+    def get(self, path) -> int | None:
+        """Line of ``path``, or of its nearest ancestor that has one."""
+        path = tuple(path)
+        while path:
+            if path in self._lines:
+                return self._lines[path]
+            path = path[:-1]
+        return self._lines.get(())
+
+
+def read_text(path) -> str:
+    """Read a small UTF-8 text file, or raise InputError naming it."""
+    p = Path(path)
+    try:
+        raw = p.read_bytes()
+    except FileNotFoundError:
+        raise InputError.one(path, None, "", "file not found") from None
+    except IsADirectoryError:
+        raise InputError.one(path, None, "", "is a folder, expected a file") from None
+    except OSError as exc:
+        raise InputError.one(path, None, "", f"cannot be read ({exc.strerror})") from None
+    if len(raw) > MAX_BYTES:
+        raise InputError.one(path, None, "", f"file is larger than {MAX_BYTES} bytes")
+    if b"\x00" in raw:
+        raise InputError.one(path, None, "", "is a binary file, expected UTF-8 text")
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = raw[: exc.start].count(b"\n") + 1
+        raise InputError.one(path, line, "", "is not UTF-8 text (binary file?)") from None
+    if not text.strip():
+        raise InputError.one(path, None, "", "file is empty")
+    return text
+
+
+def key_text(path) -> str:
+    """Dotted text of a key path: ('feeds', 'glucose', 'rows', 2) -> feeds.glucose.rows[2]."""
+    out = ""
+    for part in path:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += ("." if out else "") + str(part)
+    return out
+
+
+def read_yaml(path, text: str | None = None):
+    """Parse a YAML file into plain data and a :class:`Lines` map.
+
+    Raises
+    ------
+    InputError
+        Naming the file and line for a syntax error, a disallowed tag, a duplicate
+        key, a non-string key, or an alias bomb; also for an empty or binary file.
+    """
+    if text is None:
+        text = read_text(path)
+    loader = yaml.SafeLoader(text)
+    try:
+        try:
+            node = loader.get_single_node()
+        except yaml.MarkedYAMLError as exc:
+            mark = exc.problem_mark or exc.context_mark
+            line = mark.line + 1 if mark else None
+            what = exc.problem or "syntax error"
+            raise InputError.one(path, line, "", f"YAML syntax error: {what}") from None
+        except yaml.YAMLError as exc:
+            raise InputError.one(path, None, "", f"YAML syntax error: {exc}") from None
+        if node is None:
+            raise InputError.one(path, None, "", "file holds no YAML document")
+        lines = Lines()
+        counter = [0]
+        data = _build(node, (), path, lines, loader, counter)
+        return data, lines
+    finally:
+        loader.dispose()
+
+
+def _build(node, keypath, file, lines, loader, counter):
+    counter[0] += 1
+    if counter[0] > MAX_NODES:
+        raise InputError.one(
+            file, node.start_mark.line + 1, key_text(keypath),
+            f"document expands to more than {MAX_NODES} values (alias bomb?)",
+        )
+    lines.set(keypath, node.start_mark.line + 1)
+    if isinstance(node, yaml.MappingNode):
+        if node.tag != _MAP:
+            raise _bad_tag(node, keypath, file)
+        out = {}
+        for knode, vnode in node.value:
+            if knode.tag == "tag:yaml.org,2002:merge":
+                raise InputError.one(file, knode.start_mark.line + 1, key_text(keypath),
+                                     "merge keys ('<<') are not supported")
+            if not isinstance(knode, yaml.ScalarNode) or knode.tag not in _PLAIN_TAGS:
+                raise InputError.one(file, knode.start_mark.line + 1, key_text(keypath),
+                                     "keys must be plain names")
+            key = str(knode.value)
+            if key in out:
+                raise InputError.one(file, knode.start_mark.line + 1, key_text(keypath + (key,)),
+                                     "duplicate key")
+            lines.set(keypath + (key,), knode.start_mark.line + 1)
+            out[key] = _build(vnode, keypath + (key,), file, lines, loader, counter)
+        return out
+    if isinstance(node, yaml.SequenceNode):
+        if node.tag != _SEQ:
+            raise _bad_tag(node, keypath, file)
+        return [
+            _build(item, keypath + (i,), file, lines, loader, counter)
+            for i, item in enumerate(node.value)
+        ]
+    if node.tag not in _PLAIN_TAGS:
+        raise _bad_tag(node, keypath, file)
+    return loader.construct_object(node, deep=True)
+
+
+def _bad_tag(node, keypath, file):
+    return InputError.one(
+        file, node.start_mark.line + 1, key_text(keypath),
+        f"YAML tag {node.tag!r} is not allowed; use plain values",
+    )

@@ -1,0 +1,6 @@
+"""Reports: the text report, figures, and the run folder (written atomically)."""
+
+from .files import write_check_run
+from .text import CAUTION, check_text
+
+__all__ = ["write_check_run", "check_text", "CAUTION"]

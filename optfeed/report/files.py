@@ -1,0 +1,175 @@
+"""The run folder: every file of a result, written all at once or not at all.
+
+Files go to a temporary folder beside the target, which is renamed into place when
+all are written; a crash leaves no half-written run folder.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import json
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+import casadi as ca
+import numpy as np
+
+from ..units import factor_to
+from .text import CAUTION, check_text
+
+
+def default_run_dir(results: Path, problem_name: str, job: str) -> Path:
+    """results/<problem>-<job>-<UTC time>, with a suffix if that exists."""
+    stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%d-%H%M%S")
+    base = Path(results) / f"{problem_name}-{job}-{stamp}"
+    path, k = base, 1
+    while path.exists():
+        k += 1
+        path = base.with_name(f"{base.name}-{k}")
+    return path
+
+
+class RunFolder:
+    """Context manager: a temp folder that becomes ``target`` on success."""
+
+    def __init__(self, target):
+        self.target = Path(target)
+
+    def __enter__(self) -> Path:
+        if self.target.exists():
+            raise FileExistsError(f"{self.target} already exists")
+        self.target.parent.mkdir(parents=True, exist_ok=True)
+        self.tmp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", dir=self.target.parent))
+        return self.tmp
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is not None:
+            shutil.rmtree(self.tmp, ignore_errors=True)
+            return False
+        os.replace(self.tmp, self.target)
+        return False
+
+
+def write_json(path: Path, data) -> None:
+    path.write_text(json.dumps(data, indent=2, default=_json_default) + "\n")
+
+
+def _json_default(obj):
+    if isinstance(obj, (np.floating, np.integer)):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(type(obj).__name__)
+
+
+def trajectory_table(model, traj) -> tuple[list[str], np.ndarray]:
+    """Header and rows of the trajectory CSV: time, states, feeds, named rates."""
+    p = model.problem
+    header, cols = ["time [h]"], [traj.t]
+    for s in p.species:
+        header.append(f"{s.name} [{s.unit}]")
+        cols.append(traj.state(s.name) * factor_to(s.unit))
+    header.append(f"V [{p.vessel.unit}]")
+    cols.append(traj.state("V") * factor_to(p.vessel.unit))
+    for name in model.state_names:
+        if name.startswith("fed_") or name == "J_int":
+            header.append(f"{name} [internal]")
+            cols.append(traj.state(name))
+    for f in p.feeds:
+        header.append(f"{f.name} [{f.unit}]")
+        cols.append(traj.feed(f.name) * factor_to(f.unit))
+    names = [n for n in model.values if n not in ("F_total",)]
+    if names:
+        fn = ca.Function("v", [model.t, model.x, model.u], [ca.vertcat(*[model.values[n] for n in names])])
+        vals = np.array(fn.map(len(traj.t))(traj.t[None, :], traj.x.T, traj.u.T)).reshape(len(names), -1)
+        for n, row in zip(names, vals):
+            if n == "OUR":
+                header.append("OUR [mmol/L/h]")
+                row = row * factor_to("mmol/L/h")
+            elif n == "heat_load":
+                header.append("heat_load [W]")
+                row = row * factor_to("W")
+            else:
+                header.append(f"{n} [internal]")
+            cols.append(row)
+    return header, np.column_stack(cols)
+
+
+def write_csv(path: Path, header, rows) -> None:
+    with path.open("w", newline="") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(header)
+        for row in rows:
+            w.writerow([f"{v:.10g}" if isinstance(v, (float, np.floating)) else v for v in row])
+
+
+def limits_rows(reports):
+    header = ["limit", "kind", "unit", "min", "max", "smallest_slack", "at_h", "side",
+              "first_violation_h", "worst_violation", "peak_use_pct", "at_end", "key"]
+    rows = [[r.name, r.kind, r.unit, _blank(r.lower), _blank(r.upper), r.min_slack, r.time_min_slack, r.side,
+             _blank(r.first_violation), r.worst_violation, _blank(r.peak_use), r.at_end, r.key] for r in reports]
+    return header, rows
+
+
+def _blank(v):
+    return "" if v is None else v
+
+
+def limit_dict(r) -> dict:
+    return {
+        "name": r.name, "kind": r.kind, "unit": r.unit, "min": r.lower, "max": r.upper,
+        "smallest_slack": r.min_slack, "at_h": r.time_min_slack, "side": r.side,
+        "first_violation_h": r.first_violation, "worst_violation": r.worst_violation,
+        "peak_use_pct": r.peak_use, "at_end": r.at_end, "key": r.key,
+    }
+
+
+def outcome_dict(outcome) -> dict:
+    if outcome is None:
+        return {}
+    d = {"finals": [{"name": f.label, "value": f.value, "unit": f.unit} for f in outcome.finals]}
+    if outcome.objective is not None:
+        d["objective"] = {"label": outcome.objective.label, "value": outcome.objective.value,
+                          "unit": outcome.objective.unit}
+    return d
+
+
+def check_summary(result) -> dict:
+    return {
+        "job": "check",
+        "status": result.status,
+        "exit_code": result.exit_code,
+        "message": result.message,
+        "problem": result.problem.name,
+        "end_time_h": result.end_time,
+        "limits": [limit_dict(r) for r in result.limits],
+        **outcome_dict(result.outcome),
+        "record": result.record,
+        "caution": CAUTION,
+    }
+
+
+def write_check_run(result, target, figures: bool = True) -> Path:
+    """Write a check result to the run folder ``target`` (must not exist).
+
+    Files: summary.json, report.txt, limits.csv, trajectory.csv, figure.png (if the
+    simulation reached the end and ``figures``).
+    """
+    from ..model import build_model
+    from .figures import run_figure
+
+    with RunFolder(target) as tmp:
+        write_json(tmp / "summary.json", check_summary(result))
+        (tmp / "report.txt").write_text(check_text(result))
+        write_csv(tmp / "limits.csv", *limits_rows(result.limits))
+        if result.trajectory is not None:
+            model = build_model(result.problem)
+            header, rows = trajectory_table(model, result.trajectory)
+            write_csv(tmp / "trajectory.csv", header, rows)
+            if figures:
+                run_figure(model, result.trajectory, result.use, tmp / "figure.png",
+                           title=f"{result.problem.name}: check - {result.status}")
+    return Path(target)

@@ -1,0 +1,73 @@
+"""Human-readable reports."""
+
+from __future__ import annotations
+
+CAUTION = (
+    "Caution: a model-based feed profile is a hypothesis, not a release for manufacturing.\n"
+    "Verify it at small scale first. Overfilling can foam out, wet exhaust filters and break\n"
+    "sterility; oxygen-enriched aeration raises fire risk; pressure vessels have their own\n"
+    "rated limits; under-estimated heat load or oxygen demand harms the culture. Local codes,\n"
+    "site safety and biosafety rules, licensed practice and, for regulated products, the\n"
+    "quality system govern what is run."
+)
+
+
+def fmt(value, digits: int = 4) -> str:
+    """A number for people: 4 significant digits, no trailing noise."""
+    if value is None:
+        return "-"
+    if value == 0:
+        return "0"
+    return f"{value:.{digits}g}"
+
+
+def limits_table(reports) -> list[str]:
+    rows = [("limit", "range", "smallest slack", "at (h)", "peak use", "first broken (h)")]
+    for r in reports:
+        rng = f"{fmt(r.lower) if r.lower is not None else ''}..{fmt(r.upper) if r.upper is not None else ''} {r.unit}".strip()
+        rows.append((
+            r.name + (" (end)" if r.at_end else ""),
+            rng,
+            f"{fmt(r.min_slack)} {r.unit} ({r.side})".replace("  ", " "),
+            fmt(r.time_min_slack),
+            "-" if r.peak_use is None else f"{r.peak_use:.1f} %",
+            "-" if r.first_violation is None else f"{fmt(r.first_violation)}  BROKEN by up to {fmt(r.worst_violation)} {r.unit}",
+        ))
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    out = []
+    for k, row in enumerate(rows):
+        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
+        if k == 0:
+            out.append("  " + "  ".join("-" * w for w in widths))
+    return out
+
+
+def outcome_lines(outcome) -> list[str]:
+    out = []
+    for f in outcome.finals:
+        out.append(f"  {f.label:<14} {fmt(f.value, 5)} {f.unit}".rstrip())
+    if outcome.objective is not None:
+        o = outcome.objective
+        out.append(f"  objective      {fmt(o.value, 6)} {o.unit}   ({o.label})".replace("  (", " ("))
+    return out
+
+
+def check_text(result) -> str:
+    """The text report of a :class:`~optfeed.check.CheckResult`."""
+    p = result.problem
+    lines = [
+        f"optfeed check: {p.name}",
+        f"  problem   {result.record.get('problem_file', '')}",
+        f"  schedule  {result.record.get('schedule_file', '')}",
+        f"  run       0 .. {fmt(result.end_time)} h",
+        "",
+        f"STATUS: {result.status.upper()} - {result.message}",
+        "",
+    ]
+    if result.outcome is None:
+        lines += ["No trajectory: the simulation did not reach the end of the run.", ""]
+    else:
+        lines += ["Limits:"] + limits_table(result.limits) + [""]
+        lines += ["At the end of the run:"] + outcome_lines(result.outcome) + [""]
+    lines.append(CAUTION)
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,401 @@
+"""Feed schedules: what each pump does over the run.
+
+A schedule gives, per feed, rows ``(time, rate, growth)``. Between one row and the next
+the rate is
+
+* ``interpolation: constant`` (the default): ``rate * exp(growth * (t - time))``, a
+  step or an exponential segment (growth 0 for a plain step);
+* ``interpolation: linear``: a straight line to the next row's rate (no growth).
+
+After the last row the last law goes on to the end of the run (a step holds, an
+exponential segment keeps growing, a linear table holds its last rate). The first row
+must be at time 0; times must increase.
+
+Files
+-----
+CSV (``.csv``): comment lines start with ``#``; ``# interpolation: linear`` switches
+the mode. The header names the columns with units in brackets::
+
+    # interpolation: constant
+    time [h], glucose [L/h], glucose growth [1/h]
+    0, 0, 0
+    4, 0.01, 0.15
+
+One rate column per feed; a ``<feed> growth`` column is optional (empty cell = 0).
+
+YAML (``.yaml``/``.yml``)::
+
+    interpolation: constant
+    feeds:
+      glucose:
+        - {time: 0 h, rate: 0 L/h}
+        - {time: 4 h, rate: 10 mL/h, growth: 0.15 1/h}
+
+Internally a schedule is a list of :class:`Segment` objects over which every pump
+follows ``F_j(t) = (a_j + b_j * (t - start)) * exp(k_j * (t - start))``; the
+integrator never steps across a segment boundary.
+"""
+
+from __future__ import annotations
+
+import csv
+import difflib
+import io
+import math
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError, Issue
+from .problem.yamlio import key_text, read_text, read_yaml
+from .units import factor_to, parse_quantity, to_internal
+
+_HEADER_RE = re.compile(r"^\s*(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\]]*)\])?\s*$")
+
+
+@dataclass(frozen=True)
+class Segment:
+    """One stretch of the run over which every pump follows a smooth law.
+
+    start, end : float, h. a, b, k : tuples per feed: F_j = (a_j + b_j*tau)*exp(k_j*tau),
+    tau = t - start (a in L/h, b in L/h^2, k in 1/h).
+    """
+
+    start: float
+    end: float
+    a: tuple
+    b: tuple
+    k: tuple
+
+    def rates(self, t) -> np.ndarray:
+        """Pump rates (L/h) at times ``t`` (array) within the segment; shape (len(t), nfeeds)."""
+        tau = np.asarray(t, dtype=float)[:, None] - self.start
+        a, b, k = (np.asarray(v, dtype=float)[None, :] for v in (self.a, self.b, self.k))
+        return (a + b * tau) * np.exp(k * tau)
+
+
+@dataclass(frozen=True)
+class FeedRows:
+    """One feed's table: times (h), rates (L/h), growth (1/h)."""
+
+    times: tuple
+    rates: tuple
+    growth: tuple
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """A feed schedule for all pumps.
+
+    Attributes
+    ----------
+    feeds : dict of str -> FeedRows
+    interpolation : 'constant' or 'linear'
+    source : str
+        File it came from ('' if built in code).
+    """
+
+    feeds: dict
+    interpolation: str = "constant"
+    source: str = ""
+
+    def segments(self, feed_names, end_time: float) -> list[Segment]:
+        """Split [0, end_time] at every row time of every feed."""
+        cuts = {0.0, float(end_time)}
+        for rows in self.feeds.values():
+            cuts.update(t for t in rows.times if 0 < t < end_time)
+        cuts = sorted(cuts)
+        out = []
+        for t0, t1 in zip(cuts[:-1], cuts[1:]):
+            a, b, k = [], [], []
+            for name in feed_names:
+                ai, bi, ki = self._law(self.feeds[name], t0)
+                a.append(ai), b.append(bi), k.append(ki)
+            out.append(Segment(t0, t1, tuple(a), tuple(b), tuple(k)))
+        return out
+
+    def _law(self, rows: FeedRows, t0: float):
+        i = max(j for j, t in enumerate(rows.times) if t <= t0 + 1e-12)
+        if self.interpolation == "linear" and i + 1 < len(rows.times):
+            slope = (rows.rates[i + 1] - rows.rates[i]) / (rows.times[i + 1] - rows.times[i])
+            return rows.rates[i] + slope * (t0 - rows.times[i]), slope, 0.0
+        if self.interpolation == "linear":
+            return rows.rates[i], 0.0, 0.0
+        k = rows.growth[i]
+        return rows.rates[i] * math.exp(k * (t0 - rows.times[i])), 0.0, k
+
+    def last_time(self) -> float:
+        return max(rows.times[-1] for rows in self.feeds.values())
+
+
+def piecewise_constant(feed_names, times, rates, source: str = "") -> Schedule:
+    """Schedule from common step times (h) and a rate array (L/h), shape (len(times), nfeeds)."""
+    rates = np.asarray(rates, dtype=float).reshape(len(times), len(feed_names))
+    feeds = {
+        name: FeedRows(tuple(map(float, times)), tuple(map(float, rates[:, j])), (0.0,) * len(times))
+        for j, name in enumerate(feed_names)
+    }
+    return Schedule(feeds, "constant", source)
+
+
+def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None, note: str = "") -> None:
+    """Write ``schedule`` as CSV in the format :func:`load_schedule` reads.
+
+    Rates are written in ``feed_units[name]`` (default L/h) with full precision.
+    """
+    path = Path(path)
+    path.write_text(schedule_csv_text(schedule, feed_units, note))
+
+
+def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: str = "") -> str:
+    feed_units = feed_units or {}
+    names = list(schedule.feeds)
+    times = sorted({t for rows in schedule.feeds.values() for t in rows.times})
+    buf = io.StringIO()
+    for line in note.splitlines():
+        buf.write(f"# {line}\n")
+    buf.write(f"# interpolation: {schedule.interpolation}\n")
+    header = ["time [h]"]
+    growth = any(any(g != 0 for g in r.growth) for r in schedule.feeds.values())
+    for name in names:
+        header.append(f"{name} [{feed_units.get(name, 'L/h')}]")
+        if growth:
+            header.append(f"{name} growth [1/h]")
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(header)
+    for t in times:
+        row = [repr(float(t))]
+        for name in names:
+            rows = schedule.feeds[name]
+            f = factor_to(feed_units.get(name, "L/h"))
+            if schedule.interpolation == "linear":
+                value = float(np.interp(t, rows.times, rows.rates))
+                g = 0.0
+            else:
+                i = max(j for j, tj in enumerate(rows.times) if tj <= t + 1e-12)
+                g = rows.growth[i]
+                value = rows.rates[i] * math.exp(g * (t - rows.times[i]))
+            row.append(repr(value * f))
+            if growth:
+                row.append(repr(g))
+        w.writerow(row)
+    return buf.getvalue()
+
+
+# ------------------------------------------------------------------ loading
+
+
+def load_schedule(path, feed_names, end_time: float | None = None) -> Schedule:
+    """Read a schedule file (CSV or YAML) for a problem with ``feed_names``.
+
+    Every feed must be scheduled; times must start at 0, increase, and (if
+    ``end_time`` is given, h) lie before it; rates must be numbers in a flow unit.
+
+    Raises
+    ------
+    InputError
+        Naming the file, line and column or key.
+    """
+    path = str(path)
+    if Path(path).suffix.lower() in (".yaml", ".yml"):
+        schedule = _load_yaml(path, feed_names)
+    else:
+        schedule = _load_csv(path, feed_names)
+    return schedule if end_time is None else _check_end(schedule, path, end_time)
+
+
+def _check_end(schedule, path, end_time):
+    for name, rows in schedule.feeds.items():
+        if rows.times[-1] >= end_time:
+            raise InputError.one(path, None, name,
+                                 f"a row at {rows.times[-1]:g} h lies at or after the end of the run ({end_time:g} h)")
+    return schedule
+
+
+def _check_rows(path, name, times, rates, growth, lines, interpolation):
+    issues = []
+    if not times:
+        issues.append(Issue(path, None, name, "has no rows"))
+        return issues
+    if times[0] != 0:
+        issues.append(Issue(path, lines[0], name, f"the first row must be at time 0, got {times[0]:g} h"))
+    for i in range(len(times)):
+        if times[i] < 0:
+            issues.append(Issue(path, lines[i], name, f"time {times[i]:g} h is negative"))
+        if i and times[i] <= times[i - 1]:
+            issues.append(Issue(path, lines[i], name,
+                                f"time {times[i]:g} h does not come after {times[i - 1]:g} h "
+                                "(rows overlap or are out of order)"))
+        if rates[i] < 0:
+            issues.append(Issue(path, lines[i], name, f"rate {rates[i]:g} L/h is negative"))
+        if growth[i] != 0 and interpolation == "linear":
+            issues.append(Issue(path, lines[i], name, "growth is only allowed with interpolation: constant"))
+        if not math.isfinite(rates[i] * math.exp(min(growth[i] * 1000, 700))):
+            issues.append(Issue(path, lines[i], name, "rate is not a finite number"))
+    return issues
+
+
+def _missing(path, feed_names, given, line):
+    issues = []
+    for name in feed_names:
+        if name not in given:
+            issues.append(Issue(path, line, name, "feed has no schedule (every feed needs one; give 0 to leave it off)"))
+    for name in given:
+        if name not in feed_names:
+            close = difflib.get_close_matches(name, feed_names, n=3)
+            hint = f"; did you mean {', '.join(map(repr, close))}?" if close else f"; feeds are {', '.join(feed_names)}"
+            issues.append(Issue(path, line, name, f"{name!r} is not a feed of this problem{hint}"))
+    return issues
+
+
+def _load_csv(path, feed_names) -> Schedule:
+    text = read_text(path)
+    interpolation = "constant"
+    rows = []
+    for lineno, line in enumerate(text.splitlines(), start=1):
+        stripped = line.strip()
+        if not stripped:
+            continue
+        if stripped.startswith("#"):
+            m = re.match(r"#\s*interpolation\s*:\s*(\S+)", stripped)
+            if m:
+                interpolation = m.group(1).lower()
+                if interpolation not in ("constant", "linear"):
+                    raise InputError.one(path, lineno, "interpolation",
+                                         f"expected 'constant' or 'linear', got {m.group(1)!r}")
+            continue
+        try:
+            cells = next(csv.reader([line]))
+        except csv.Error as exc:
+            raise InputError.one(path, lineno, "", f"CSV error: {exc}") from None
+        rows.append((lineno, [c.strip() for c in cells]))
+    if not rows:
+        raise InputError.one(path, None, "", "no header row")
+    header_line, header = rows[0]
+    columns = []  # (feed name, 'rate'|'growth'|'time', factor)
+    issues = []
+    for c, cell in enumerate(header):
+        m = _HEADER_RE.match(cell)
+        if not m or not m.group("unit"):
+            issues.append(Issue(path, header_line, cell or f"column {c + 1}",
+                                "header cells name a column and its unit in brackets, e.g. 'glucose [L/h]'"))
+            continue
+        name, unit = m.group("name").strip(), m.group("unit").strip()
+        if c == 0:
+            kind, role = "time", "time"
+            if name.lower() != "time":
+                issues.append(Issue(path, header_line, cell, "the first column must be 'time [h]' (any time unit)"))
+        elif name.endswith(" growth"):
+            kind, role, name = "specific_rate", "growth", name[: -len(" growth")].strip()
+        else:
+            kind, role = "flow", "rate"
+        try:
+            factor = to_internal(parse_quantity(f"1 {unit}", kind))
+        except ValueError as exc:
+            issues.append(Issue(path, header_line, cell, str(exc)))
+            continue
+        columns.append((name, role, factor, cell))
+    if issues:
+        raise InputError(issues)
+    given = [n for n, role, _, _ in columns if role == "rate"]
+    dup = {n for n in given if given.count(n) > 1}
+    if dup:
+        raise InputError.one(path, header_line, sorted(dup)[0], "column appears twice")
+    for n, role, _, cell in columns:
+        if role == "growth" and n not in given:
+            raise InputError.one(path, header_line, cell, f"growth column for {n!r} without its rate column")
+    issues = _missing(path, feed_names, given, header_line)
+    if issues:
+        raise InputError(issues)
+    times, lines = [], []
+    data = {n: ([], []) for n in feed_names}
+    for lineno, cells in rows[1:]:
+        if len(cells) != len(header):
+            raise InputError.one(path, lineno, "", f"row has {len(cells)} cells, the header has {len(header)}")
+        growth_seen = {n: 0.0 for n in feed_names}
+        rate_row = {}
+        for (name, role, factor, cell), text_value in zip(columns, cells):
+            if role == "growth" and text_value == "":
+                continue
+            try:
+                value = float(text_value)
+                if not math.isfinite(value):
+                    raise ValueError
+            except ValueError:
+                raise InputError.one(path, lineno, cell, f"expected a number, got {text_value!r}") from None
+            if role == "time":
+                t = value * factor
+            elif role == "rate":
+                rate_row[name] = value * factor
+            else:
+                growth_seen[name] = value * factor
+        times.append(t)
+        lines.append(lineno)
+        for n in feed_names:
+            data[n][0].append(rate_row[n])
+            data[n][1].append(growth_seen[n])
+    issues = []
+    feeds = {}
+    for n in feed_names:
+        rates, growth = data[n]
+        issues += _check_rows(path, n, times, rates, growth, lines, interpolation)
+        feeds[n] = FeedRows(tuple(times), tuple(rates), tuple(growth))
+    if issues:
+        raise InputError(issues[:1] if len(feed_names) > 1 and _same(issues) else issues)
+    return Schedule(feeds, interpolation, path)
+
+
+def _same(issues):
+    return len({(i.line, i.message) for i in issues}) == 1
+
+
+def _load_yaml(path, feed_names) -> Schedule:
+    data, lines = read_yaml(path)
+    if not isinstance(data, dict):
+        raise InputError.one(path, lines.get(()), "", "expected a mapping with 'feeds' (and optionally 'interpolation')")
+    unknown = set(data) - {"interpolation", "feeds", "description"}
+    if unknown:
+        k = sorted(unknown)[0]
+        raise InputError.one(path, lines.get((k,)), k, "unknown key; expected interpolation, feeds, description")
+    interpolation = data.get("interpolation", "constant")
+    if interpolation not in ("constant", "linear"):
+        raise InputError.one(path, lines.get(("interpolation",)), "interpolation",
+                             f"expected 'constant' or 'linear', got {interpolation!r}")
+    feeds_in = data.get("feeds")
+    if not isinstance(feeds_in, dict):
+        raise InputError.one(path, lines.get(("feeds",)), "feeds", "expected a mapping of feed name -> list of rows")
+    issues = _missing(path, feed_names, list(feeds_in), lines.get(("feeds",)))
+    if issues:
+        raise InputError(issues)
+    feeds = {}
+    for name in feed_names:
+        rows = feeds_in[name]
+        if not isinstance(rows, list) or not rows:
+            raise InputError.one(path, lines.get(("feeds", name)), f"feeds.{name}", "expected a list of rows")
+        times, rates, growth, rowlines = [], [], [], []
+        for i, row in enumerate(rows):
+            loc = ("feeds", name, i)
+            if not isinstance(row, dict):
+                raise InputError.one(path, lines.get(loc), key_text(loc), "expected a row like {time: 0 h, rate: 0.1 L/h}")
+            extra = set(row) - {"time", "rate", "growth"}
+            if extra:
+                k = sorted(extra)[0]
+                raise InputError.one(path, lines.get(loc + (k,)), key_text(loc + (k,)),
+                                     "unknown key; rows take time, rate, growth")
+            for key in ("time", "rate"):
+                if key not in row:
+                    raise InputError.one(path, lines.get(loc), key_text(loc + (key,)), "required key is missing")
+            got = []
+            for key, kind in (("time", "time"), ("rate", "flow"), ("growth", "specific_rate")):
+                try:
+                    got.append(to_internal(parse_quantity(row.get(key, 0.0), kind)))
+                except ValueError as exc:
+                    raise InputError.one(path, lines.get(loc + (key,)), key_text(loc + (key,)), str(exc)) from None
+            times.append(got[0]), rates.append(got[1]), growth.append(got[2]), rowlines.append(lines.get(loc))
+        issues = _check_rows(path, f"feeds.{name}", times, rates, growth, rowlines, interpolation)
+        if issues:
+            raise InputError(issues)
+        feeds[name] = FeedRows(tuple(times), tuple(rates), tuple(growth))
+    return Schedule(feeds, interpolation, path)

@@ -1,0 +1,159 @@
+"""Units: parsing quantities from problem files and converting them once.
+
+Inside optfeed every number is a plain float in one coherent system of units:
+
+    mass g, length dm (so volume L), time h, amount of substance mmol, temperature K.
+
+A quantity's internal value is its magnitude in the product of these base units that
+matches its dimension (a rate of 0.2 L/h is 0.2; 500 mg/L is 0.5; 100 W is
+1.296e8 g*dm^2/h^3). Because the system is coherent, any dimensionally consistent
+model expression evaluated on internal values gives its result in internal units too.
+Conversion back to a user's unit happens only when reporting.
+
+A bare number takes the default unit of its kind (:data:`KINDS`).
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+
+import pint
+
+UREG = pint.UnitRegistry()
+UREG.define("cell = 1 = cells")
+
+# base dimension -> internal unit
+_BASE = {
+    "[mass]": "g",
+    "[length]": "dm",
+    "[time]": "h",
+    "[substance]": "mmol",
+    "[temperature]": "K",
+}
+
+
+@dataclass(frozen=True)
+class Kind:
+    """A kind of quantity: its default unit and the dimension it must have."""
+
+    name: str
+    default_unit: str
+    example: str
+    dimensions: tuple  # accepted dimensionalities (pint UnitsContainer); empty = any
+
+    def accepts(self, q) -> bool:
+        return not self.dimensions or q.dimensionality in self.dimensions
+
+
+def _dim(unit: str):
+    return UREG.Quantity(1, unit).dimensionality
+
+
+KINDS = {
+    "time": Kind("time", "h", "24 h", (_dim("h"),)),
+    "volume": Kind("volume", "L", "10 L", (_dim("L"),)),
+    "flow": Kind("flow", "L/h", "0.2 L/h", (_dim("L/h"),)),
+    "concentration": Kind(
+        "concentration", "g/L", "500 g/L", (_dim("g/L"), _dim("mmol/L"), _dim("1/L"), _dim(""))
+    ),
+    "specific_rate": Kind("specific_rate", "1/h", "0.15 1/h", (_dim("1/h"),)),
+    "oxygen_rate": Kind("oxygen_rate", "mmol/L/h", "150 mmol/L/h", (_dim("mmol/L/h"),)),
+    "power": Kind("power", "W", "500 W", (_dim("W"),)),
+    "heat_yield": Kind("heat_yield", "kJ/mol", "460 kJ/mol", (_dim("kJ/mol"),)),
+    # species amounts: anything, bare numbers are g/L
+    "amount": Kind("amount", "g/L", "0.5 g/L", ()),
+    # parameters and bounds on expressions: anything, bare numbers are internal units
+    "any": Kind("any", "", "0.5 g/L", ()),
+}
+
+_NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
+_QUANTITY_RE = re.compile(rf"^\s*(?P<num>{_NUMBER})\s*(?P<unit>.*?)\s*$")
+# unit text: names, '1' alone (as in 1/h), small integer exponents, * / ( ) and spaces
+_UNIT_TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-z_µμ%°][A-Za-z_µμ°0-9]*)|(?P<op>\*\*|[*/^()])|(?P<int>-?\d+))")
+
+
+def _check_unit_text(text: str) -> None:
+    """Reject unit strings that are not a plain product of names and small powers."""
+    if len(text) > 80:
+        raise ValueError("unit text is too long")
+    pos, prev_op = 0, None
+    while pos < len(text):
+        m = _UNIT_TOKEN.match(text, pos)
+        if not m or m.end() == pos:
+            raise ValueError(f"unexpected character {text[pos:].strip()[:1]!r} in unit {text!r}")
+        if m.group("int") is not None:
+            n = int(m.group("int"))
+            if prev_op in ("**", "^"):
+                if abs(n) > 12:
+                    raise ValueError(f"exponent {n} in unit {text!r} is out of range")
+            elif n != 1:
+                raise ValueError(f"number {n} inside unit {text!r}; write it before the unit")
+        prev_op = m.group("op")
+        pos = m.end()
+
+
+def parse_quantity(value, kind: str):
+    """Parse ``value`` ("200 mL/h", 0.2, "0.3 1/h") as a pint Quantity of ``kind``.
+
+    Raises ValueError with a message for the user (what was expected, an example).
+    """
+    k = KINDS[kind]
+    if isinstance(value, bool) or value is None:
+        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {value!r}")
+    if isinstance(value, (int, float)):
+        q = UREG.Quantity(float(value), k.default_unit or "")
+    elif isinstance(value, str):
+        m = _QUANTITY_RE.match(value)
+        if not m:
+            raise ValueError(
+                f"expected a number with a unit like '{k.example}', got {value!r}"
+            )
+        unit = m.group("unit")
+        if unit:
+            _check_unit_text(unit)
+            try:
+                units = UREG.parse_units(unit.replace("^", "**"))
+            except Exception as exc:  # pint raises several types
+                raise ValueError(f"unknown unit {unit!r} ({exc.__class__.__name__})") from None
+        else:
+            units = UREG.parse_units(k.default_unit or "")
+        q = UREG.Quantity(float(m.group("num")), units)
+    else:
+        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {type(value).__name__}")
+    if not math.isfinite(q.magnitude):
+        raise ValueError(f"{value!r} is not a finite number")
+    if not k.accepts(q):
+        raise ValueError(
+            f"{value!r} has dimension {q.dimensionality}, expected a {k.name.replace('_', ' ')} "
+            f"like '{k.example}'"
+        )
+    return q
+
+
+def internal_units(dimensionality):
+    """The coherent internal unit (pint Unit) for a dimensionality."""
+    unit = UREG.parse_units("")
+    for dim, power in dimensionality.items():
+        if dim not in _BASE:
+            raise ValueError(f"dimension {dim} has no internal unit")
+        unit = unit * UREG.parse_units(_BASE[dim]) ** power
+    return unit
+
+
+def to_internal(q) -> float:
+    """Magnitude of pint Quantity ``q`` in the coherent internal units."""
+    return float(q.to(internal_units(q.dimensionality)).magnitude)
+
+
+def factor_to(unit: str) -> float:
+    """Multiply an internal value by this to express it in ``unit``."""
+    u = UREG.parse_units(unit)
+    return float(UREG.Quantity(1.0, internal_units(u.dimensionality)).to(u).magnitude)
+
+
+def unit_text(q) -> str:
+    """Short text of a quantity's unit, as the user would write it."""
+    text = f"{q.units:~}"
+    return text.replace(" ", "")
