@@ -5,8 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from . import status as st
 from .errors import InputError, SimulationError
 from .limits import LimitReport, build_limits, judge
@@ -108,14 +106,12 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
         message = (f"{len(broken)} limit(s) broken; first: {first.name} at {first.first_violation:.4g} h")
     else:
         status = st.WITHIN_LIMITS
-        tight = min(reports, key=lambda r: _relative_slack(r))
-        message = f"within all {len(reports)} limits; tightest: {tight.name}"
+        used = [r for r in reports if r.peak_use is not None]
+        message = f"within all {len(reports)} limits"
+        if used:
+            tight = max(used, key=lambda r: r.peak_use)
+            message += f"; highest use: {tight.name} at {tight.peak_use:.1f} %"
     return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record)
-
-
-def _relative_slack(r: LimitReport) -> float:
-    scale = max([abs(v) for v in (r.lower, r.upper) if v is not None] + [1e-12])
-    return r.min_slack / scale
 
 
 def _end_time(problem: Problem, end_time):

@@ -66,7 +66,7 @@ class Simulator:
         CVODES tolerances.
     """
 
-    def __init__(self, model: Model, points_per_piece: int = 12, rtol: float = RTOL, atol: float = ATOL):
+    def __init__(self, model: Model, points_per_piece: int = 40, rtol: float = RTOL, atol: float = ATOL):
         self.model = model
         self.points = points_per_piece
         nu = model.nu

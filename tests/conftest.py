@@ -1,0 +1,30 @@
+"""Shared helpers for the tests."""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = ROOT / "configs"
+
+# (problem, proposed schedule, expected exit code of `optfeed check`)
+EXAMPLES = [
+    ("fast_microbe.yaml", "fast_microbe_plan.csv", 1),
+    ("inhibited_product.yaml", "inhibited_product_plan.yaml", 0),
+    ("animal_cell.yaml", "animal_cell_plan.csv", 0),
+]
+
+
+@pytest.fixture
+def write(tmp_path):
+    """write(name, text) -> path of a dedented file in tmp_path."""
+
+    def _write(name, text):
+        path = tmp_path / name
+        path.write_text(textwrap.dedent(text).lstrip())
+        return path
+
+    return _write

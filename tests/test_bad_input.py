@@ -1,0 +1,319 @@
+"""The bad-input corpus: every file in tests/bad_input/ must be refused cleanly.
+
+Each ``problem_*`` file is a copy of ``ok_problem.yaml`` and each ``schedule_*`` file a
+copy of ``ok_schedule.csv`` (or a small YAML schedule) with exactly one defect; the
+header comment of each file says which. Two binary files are generated at run time.
+
+For every case both ``optfeed validate`` and ``optfeed check`` run as subprocesses
+(side by side, to keep the suite quick) and must:
+
+* exit with code 2 (bad input);
+* print ``optfeed: bad input`` as the first line of stderr, and no traceback;
+* name the bad file, the line (``file:LINE:``) where the case has one, and the key;
+* say what is wrong (the regex pinned in the table);
+* write nothing: no results folder content and no new file in the working folder.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import re
+import subprocess
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import pytest
+
+import optfeed
+from optfeed import InputError, load_problem, load_schedule
+
+CORPUS = Path(__file__).resolve().parent / "bad_input"
+OK_PROBLEM = CORPUS / "ok_problem.yaml"
+OK_SCHEDULE = CORPUS / "ok_schedule.csv"
+REPO = Path(__file__).resolve().parent.parent
+TIMEOUT = 120  # s per subprocess; a hang (an alias bomb expanding, say) must not stall the suite
+
+
+@dataclass(frozen=True)
+class Case:
+    """One corpus file and what the error report must say about it.
+
+    file : name in tests/bad_input/ (or of a file generated at run time, see GENERATED)
+    line : 1-based line the report must name, or None if the whole file is at fault
+    key : key path (or CSV column) the report must name, or None if there is none
+    message : regex searched for in the text after ``file:line: key: ``
+    xfail : reason, for a case the code does not yet report clearly
+    """
+
+    file: str
+    line: int | None
+    key: str | None
+    message: str
+    xfail: str | None = None
+
+    @property
+    def is_schedule(self) -> bool:
+        return self.file.startswith("schedule_")
+
+
+CASES = [
+    # ---- YAML reading
+    Case("problem_yaml_syntax.yaml", 9, None, r"^YAML syntax error: mapping values are not allowed here"),
+    Case("problem_yaml_unclosed.yaml", 6, None, r"^YAML syntax error: .*'}'",
+         xfail="an unclosed '{' opened on line 6 is reported at line 7 only (where the parser "
+               "gave up); the report should name line 6, where the flow mapping starts"),
+    Case("problem_python_tag.yaml", 3, "name",
+         r"^YAML tag 'tag:yaml\.org,2002:python/object/apply:os\.system' is not allowed"),
+    Case("problem_alias_bomb.yaml", 15, "parameters.e", r"expands to more than \d+ values \(alias bomb\?\)",
+         xfail="the report names line 11 (where anchor 'a' is defined) and a deep item path "
+               "'parameters.e[3][3][8][7][7]', not the key whose value blows up (parameters.e, line 15)"),
+    Case("problem_duplicate_key.yaml", 11, "parameters.K_s", r"^duplicate key"),
+    Case("problem_empty.yaml", None, None, r"^file is empty"),
+    Case("problem_comments_only.yaml", None, None, r"^file holds no YAML document"),
+    Case("problem_binary.yaml", None, None, r"^is a binary file, expected UTF-8 text"),
+    Case("problem_not_utf8.yaml", 5, None, r"^is not UTF-8 text"),
+    Case("problem_top_level_list.yaml", 3, None, r"^expected a mapping of keys at the top level"),
+    # ---- shape of the file
+    Case("problem_unknown_key.yaml", 22, "vessel",
+         r"^unknown key 'working_volum'; did you mean 'working_volume'"),
+    Case("problem_missing_initial.yaml", 5, "species.X.initial", r"^required key is missing"),
+    # ---- expressions
+    Case("problem_unknown_name.yaml", 12, "rates.mu", r"^unknown name 'mu_mx'; did you mean 'mu_max'"),
+    Case("problem_function_typo.yaml", 12, "rates.mu", r"^unknown function 'monodd'; did you mean 'monod'"),
+    Case("problem_attribute.yaml", 14, "reactions.X", r"^attribute access \('\.'\) not allowed in expressions"),
+    Case("problem_dunder.yaml", 14, "reactions.X", r"^names starting with '_' are not allowed: '__import__'"),
+    Case("problem_import.yaml", 14, "reactions.X", r"^not a valid expression \(invalid syntax\): 'import os'"),
+    Case("problem_lambda.yaml", 14, "reactions.X", r"^lambda not allowed in expressions"),
+    Case("problem_deep_nesting.yaml", 14, "reactions.X", r"^expression is nested more than \d+ levels deep"),
+    Case("problem_unknown_species.yaml", 18, "feeds.glucose.composition.Sx",
+         r"^'Sx' is not a species; did you mean 'S'"),
+    # ---- units and values
+    Case("problem_volume_dimension.yaml", 22, "vessel.working_volume",
+         r"^'10 kg' has dimension \[mass\], expected a volume"),
+    Case("problem_unit_text.yaml", 21, "vessel.initial_volume", r"^unknown unit 'Lx'"),
+    Case("problem_unit_exponent.yaml", 22, "vessel.working_volume",
+         r"^exponent 999 in unit 'm\*\*999' is out of range"),
+    Case("problem_zero_volume.yaml", 21, "vessel.initial_volume", r"^initial volume must be above zero, got '0 L'"),
+    Case("problem_negative_volume.yaml", 22, "vessel.working_volume",
+         r"^working volume must be above zero, got '-10 L'"),
+    Case("problem_volume_order.yaml", 21, "vessel.initial_volume",
+         r"^initial volume '12 L' is above the working volume '10 L'"),
+    Case("problem_feed_dimension.yaml", 18, "feeds.glucose.composition.S",
+         r"^'400 g' has dimension \[mass\], but species 'S' is in \[mass\] / \[length\] \*\* 3"),
+    Case("problem_min_above_max.yaml", 20, "feeds.glucose.min_rate",
+         r"^minimum pump rate '2 L/h' is above the maximum '1 L/h'"),
+    Case("problem_end_time.yaml", 24, "horizon.end_time", r"^end time must be above zero, got '0 h'"),
+    # ---- schedules (paired with ok_problem.yaml)
+    Case("schedule_overlap.csv", 6, "glucose",
+         r"^time 4 h does not come after 4 h \(rows overlap or are out of order\)"),
+    Case("schedule_negative_time.csv", 5, "glucose", r"^time -2 h is negative"),
+    Case("schedule_non_numeric.csv", 5, "glucose [L/h]", r"^expected a number, got 'fast'"),
+    Case("schedule_unknown_column.csv", 3, "sucrose", r"^'sucrose' is not a feed of this problem"),
+    Case("schedule_past_end.csv", 6, "glucose", r"^a row at 12 h lies at or after the end of the run \(10 h\)",
+         xfail="the row after the end of the run is reported without its line number (6)"),
+    Case("schedule_flow_unit.csv", 3, "glucose [kg/h]", r"has dimension \[mass\] / \[time\], expected a flow"),
+    Case("schedule_negative_rate.csv", 5, "glucose", r"^rate -0\.05 L/h is negative"),
+    Case("schedule_cell_count.csv", 5, None, r"^row has 3 cells, the header has 2"),
+    Case("schedule_interpolation.csv", 2, "interpolation", r"^expected 'constant' or 'linear', got 'cubic'"),
+    Case("schedule_binary.csv", None, None, r"^is a binary file, expected UTF-8 text"),
+    Case("schedule_row_key.yaml", 6, "feeds.glucose[1].rte", r"^unknown key; rows take time, rate, growth"),
+    Case("schedule_python_tag.yaml", 2, "interpolation",
+         r"^YAML tag 'tag:yaml\.org,2002:python/object/apply:os\.system' is not allowed"),
+]
+
+
+def _binary_bytes(seed: int) -> bytes:
+    """A few hundred fixed pseudo-random bytes, with NULs among them."""
+    data = bytearray(random.Random(seed).randbytes(300))
+    data[7] = data[150] = 0
+    return bytes(data)
+
+
+# files made at run time (not committed): name -> content
+GENERATED = {
+    "problem_binary.yaml": _binary_bytes(20240611),
+    "schedule_binary.csv": _binary_bytes(11062024),
+}
+
+
+def _input_path(case: Case, tmp_path: Path) -> Path:
+    if case.file in GENERATED:
+        path = tmp_path / case.file
+        path.write_bytes(GENERATED[case.file])
+        return path
+    return CORPUS / case.file
+
+
+def _env() -> dict:
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO)] + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else []))
+    env["MPLBACKEND"] = "Agg"
+    return env
+
+
+def _run_all(commands, cwd: Path):
+    """Run several ``optfeed`` command lines side by side; [(code, stdout, stderr)]."""
+    procs = [
+        subprocess.Popen([sys.executable, "-m", "optfeed.cli", *args], cwd=cwd, env=_env(),
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         text=True, encoding="utf-8", errors="replace")
+        for args in commands
+    ]
+    out = []
+    try:
+        for p in procs:
+            stdout, stderr = p.communicate(timeout=TIMEOUT)
+            out.append((p.returncode, stdout, stderr))
+    finally:
+        for p in procs:
+            if p.poll() is None:
+                p.kill()
+                p.wait()
+    return out
+
+
+def _files_under(folder: Path) -> set:
+    return {p.relative_to(folder) for p in folder.rglob("*")}
+
+
+def _issue_pattern(path: Path, case: Case) -> str:
+    where = f"{path}:{case.line}" if case.line is not None else f"{path}"
+    prefix = f"  {where}: " + (f"{case.key}: " if case.key is not None else "")
+    return prefix
+
+
+def _assert_clean_refusal(label, code, stdout, stderr, path: Path, case: Case):
+    report = f"\n--- {label}: exit {code}\n--- stdout:\n{stdout}\n--- stderr:\n{stderr}"
+    assert code == 2, f"expected exit code 2{report}"
+    assert "Traceback" not in stderr, f"traceback on stderr{report}"
+    lines = stderr.splitlines()
+    assert lines and lines[0] == "optfeed: bad input", f"first line of stderr{report}"
+    assert len(lines) >= 2, f"no issue listed{report}"
+    for line in lines[1:]:
+        assert line.startswith(f"  {path}"), f"issue line does not name {path}: {line!r}{report}"
+    prefix = _issue_pattern(path, case)
+    rests = [line[len(prefix):] for line in lines[1:] if line.startswith(prefix)]
+    assert rests, f"no issue line starts with {prefix!r}{report}"
+    assert any(re.search(case.message, rest) for rest in rests), \
+        f"no issue after {prefix!r} matches {case.message!r}{report}"
+    assert stdout.strip() == "", f"something printed on stdout{report}"
+
+
+def _params():
+    for case in CASES:
+        marks = [pytest.mark.xfail(strict=True, reason=case.xfail)] if case.xfail else []
+        yield pytest.param(case, id=case.file, marks=marks)
+
+
+@pytest.mark.parametrize("case", _params())
+def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path):
+    path = _input_path(case, tmp_path)
+    results = tmp_path / "results"
+    before = _files_under(tmp_path)
+    if case.is_schedule:
+        problem, schedule = OK_PROBLEM, path
+        validate = ["validate", str(problem), "--schedule", str(schedule)]
+    else:
+        problem, schedule = path, OK_SCHEDULE
+        validate = ["validate", str(problem)]
+    check = ["check", str(problem), "--schedule", str(schedule), "--results", str(results)]
+
+    (v_code, v_out, v_err), (c_code, c_out, c_err) = _run_all([validate, check], cwd=tmp_path)
+
+    _assert_clean_refusal("validate", v_code, v_out, v_err, path, case)
+    _assert_clean_refusal("check", c_code, c_out, c_err, path, case)
+    assert not results.exists() or not any(results.iterdir()), f"files written: {sorted(_files_under(results))}"
+    assert _files_under(tmp_path) == before, f"new files: {sorted(_files_under(tmp_path) - before)}"
+
+
+# ---------------------------------------------------------------- the corpus itself
+
+
+def test_corpus_lists_every_file():
+    on_disk = {p.name for p in CORPUS.iterdir() if p.is_file() and not p.name.startswith("ok_")}
+    in_table = {c.file for c in CASES}
+    assert len({c.file for c in CASES}) == len(CASES), "a file is listed twice"
+    assert on_disk == in_table - set(GENERATED), (
+        f"not in the table: {sorted(on_disk - in_table)}; missing on disk: {sorted(in_table - set(GENERATED) - on_disk)}"
+    )
+    assert len(CASES) >= 20
+
+
+def test_generated_binaries_hold_nul_bytes():
+    for data in GENERATED.values():
+        assert b"\x00" in data and len(data) >= 200
+
+
+def test_ok_files_are_valid(tmp_path):
+    """The base every case is a variant of is itself fine, so each failure is its defect's."""
+    [(code, stdout, stderr)] = _run_all(
+        [["validate", str(OK_PROBLEM), "--schedule", str(OK_SCHEDULE)]], cwd=tmp_path)
+    assert code == 0, stderr
+    assert "valid" in stdout and stderr == ""
+    assert _files_under(tmp_path) == set()
+
+
+# ---------------------------------------------------------------- the Python API
+
+
+def _one_issue(excinfo):
+    issues = excinfo.value.issues
+    return issues[0]
+
+
+def test_api_unknown_name():
+    path = CORPUS / "problem_unknown_name.yaml"
+    with pytest.raises(optfeed.InputError, match=r"unknown name 'mu_mx'; did you mean 'mu_max'") as ei:
+        optfeed.load_problem(path)
+    issue = _one_issue(ei)
+    assert (issue.file, issue.line, issue.key) == (str(path), 12, "rates.mu")
+
+
+def test_api_volume_order():
+    path = CORPUS / "problem_volume_order.yaml"
+    with pytest.raises(InputError, match=r"is above the working volume") as ei:
+        load_problem(path)
+    issue = _one_issue(ei)
+    assert (issue.line, issue.key) == (21, "vessel.initial_volume")
+
+
+def test_api_python_tag_is_not_run(capfd):
+    with pytest.raises(InputError, match=r"YAML tag .*python/object/apply:os\.system.* is not allowed"):
+        load_problem(CORPUS / "problem_python_tag.yaml")
+    assert "hi" not in capfd.readouterr().out
+
+
+def test_api_alias_bomb_stops_early():
+    with pytest.raises(InputError, match=r"alias bomb"):
+        load_problem(CORPUS / "problem_alias_bomb.yaml")
+
+
+def test_api_dunder_and_attribute():
+    with pytest.raises(InputError, match=r"names starting with '_' are not allowed: '__import__'"):
+        load_problem(CORPUS / "problem_dunder.yaml")
+    with pytest.raises(InputError, match=r"attribute access"):
+        load_problem(CORPUS / "problem_attribute.yaml")
+
+
+def test_api_empty_and_binary(tmp_path):
+    with pytest.raises(InputError, match=r"file is empty"):
+        load_problem(CORPUS / "problem_empty.yaml")
+    path = tmp_path / "problem_binary.yaml"
+    path.write_bytes(GENERATED["problem_binary.yaml"])
+    with pytest.raises(InputError, match=r"is a binary file"):
+        load_problem(path)
+
+
+def test_api_input_error_is_a_value_error():
+    with pytest.raises(ValueError, match=r"required key is missing"):
+        load_problem(CORPUS / "problem_missing_initial.yaml")
+
+
+def test_api_schedule_overlap():
+    path = CORPUS / "schedule_overlap.csv"
+    with pytest.raises(InputError, match=r"rows overlap or are out of order") as ei:
+        load_schedule(path, ["glucose"], 10.0)
+    issue = _one_issue(ei)
+    assert (issue.line, issue.key) == (6, "glucose")
