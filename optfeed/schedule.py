@@ -199,22 +199,13 @@ def load_schedule(path, feed_names, end_time: float | None = None) -> Schedule:
         Naming the file, line and column or key.
     """
     path = str(path)
+    end = math.inf if end_time is None else float(end_time)
     if Path(path).suffix.lower() in (".yaml", ".yml"):
-        schedule = _load_yaml(path, feed_names)
-    else:
-        schedule = _load_csv(path, feed_names)
-    return schedule if end_time is None else _check_end(schedule, path, end_time)
+        return _load_yaml(path, feed_names, end)
+    return _load_csv(path, feed_names, end)
 
 
-def _check_end(schedule, path, end_time):
-    for name, rows in schedule.feeds.items():
-        if rows.times[-1] >= end_time:
-            raise InputError.one(path, None, name,
-                                 f"a row at {rows.times[-1]:g} h lies at or after the end of the run ({end_time:g} h)")
-    return schedule
-
-
-def _check_rows(path, name, times, rates, growth, lines, interpolation):
+def _check_rows(path, name, times, rates, growth, lines, interpolation, end_time):
     issues = []
     if not times:
         issues.append(Issue(path, None, name, "has no rows"))
@@ -228,6 +219,9 @@ def _check_rows(path, name, times, rates, growth, lines, interpolation):
             issues.append(Issue(path, lines[i], name,
                                 f"time {times[i]:g} h does not come after {times[i - 1]:g} h "
                                 "(rows overlap or are out of order)"))
+        if times[i] >= end_time:
+            issues.append(Issue(path, lines[i], name, f"a row at {times[i]:g} h lies at or after the end "
+                                                      f"of the run ({end_time:g} h)"))
         if rates[i] < 0:
             issues.append(Issue(path, lines[i], name, f"rate {rates[i]:g} L/h is negative"))
         if growth[i] != 0 and interpolation == "linear":
@@ -250,7 +244,7 @@ def _missing(path, feed_names, given, line):
     return issues
 
 
-def _load_csv(path, feed_names) -> Schedule:
+def _load_csv(path, feed_names, end_time) -> Schedule:
     text = read_text(path)
     interpolation = "constant"
     rows = []
@@ -340,18 +334,16 @@ def _load_csv(path, feed_names) -> Schedule:
     feeds = {}
     for n in feed_names:
         rates, growth = data[n]
-        issues += _check_rows(path, n, times, rates, growth, lines, interpolation)
+        issues += _check_rows(path, n, times, rates, growth, lines, interpolation, end_time)
         feeds[n] = FeedRows(tuple(times), tuple(rates), tuple(growth))
     if issues:
-        raise InputError(issues[:1] if len(feed_names) > 1 and _same(issues) else issues)
+        # a bad time shows up once per feed column: report it once
+        unique = {(i.line, i.message): i for i in reversed(issues)}
+        raise InputError(sorted(unique.values(), key=lambda i: (i.line or 0)))
     return Schedule(feeds, interpolation, path)
 
 
-def _same(issues):
-    return len({(i.line, i.message) for i in issues}) == 1
-
-
-def _load_yaml(path, feed_names) -> Schedule:
+def _load_yaml(path, feed_names, end_time) -> Schedule:
     data, lines = read_yaml(path)
     if not isinstance(data, dict):
         raise InputError.one(path, lines.get(()), "", "expected a mapping with 'feeds' (and optionally 'interpolation')")
@@ -394,7 +386,7 @@ def _load_yaml(path, feed_names) -> Schedule:
                 except ValueError as exc:
                     raise InputError.one(path, lines.get(loc + (key,)), key_text(loc + (key,)), str(exc)) from None
             times.append(got[0]), rates.append(got[1]), growth.append(got[2]), rowlines.append(lines.get(loc))
-        issues = _check_rows(path, f"feeds.{name}", times, rates, growth, rowlines, interpolation)
+        issues = _check_rows(path, f"feeds.{name}", times, rates, growth, rowlines, interpolation, end_time)
         if issues:
             raise InputError(issues)
         feeds[name] = FeedRows(tuple(times), tuple(rates), tuple(growth))

@@ -119,8 +119,10 @@ def read_yaml(path, text: str | None = None):
 def _build(node, keypath, file, lines, loader, counter):
     counter[0] += 1
     if counter[0] > MAX_NODES:
+        # name the key whose value blows up, not the depths of the expansion
+        named = keypath[: next((i for i, k in enumerate(keypath) if isinstance(k, int)), len(keypath))]
         raise InputError.one(
-            file, node.start_mark.line + 1, key_text(keypath),
+            file, lines.get(named), key_text(named),
             f"document expands to more than {MAX_NODES} values (alias bomb?)",
         )
     lines.set(keypath, node.start_mark.line + 1)
