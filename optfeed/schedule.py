@@ -286,9 +286,11 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
         else:
             kind, role = "flow", "rate"
         try:
-            factor = to_internal(parse_quantity(f"1 {unit}", kind))
+            q = parse_quantity(f"1 {unit}", kind)
+            factor = to_internal(q)
         except ValueError as exc:
-            issues.append(Issue(path, header_line, cell, str(exc)))
+            msg = str(exc).replace("'1 ", "'", 1) if str(exc).startswith("'1 ") else str(exc)
+            issues.append(Issue(path, header_line, cell, f"unit {msg}" if msg.startswith("'") else msg))
             continue
         columns.append((name, role, factor, cell))
     if issues:

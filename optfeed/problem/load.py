@@ -61,11 +61,25 @@ def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
     try:
         raw = schema.ProblemIn.model_validate(data)
     except pydantic.ValidationError as exc:
-        raise InputError([_pydantic_issue(e, source, lines) for e in exc.errors()]) from None
+        raise InputError(_pydantic_issues(exc.errors(), source, lines)) from None
     return _Builder(raw, data, source, lines).build()
 
 
 # ---------------------------------------------------------------- pydantic errors
+
+
+def _pydantic_issues(errors, source, lines) -> list[Issue]:
+    """One issue per error; a misspelt key is reported once (as unknown), not also
+    as the required key it was meant to be."""
+    misspelt = set()
+    for err in errors:
+        if err["type"] == "extra_forbidden":
+            loc = tuple(err["loc"])
+            allowed = _fields_at(schema.ProblemIn, loc[:-1])
+            for close in difflib.get_close_matches(str(loc[-1]), allowed, n=1, cutoff=0.5):
+                misspelt.add(loc[:-1] + (close,))
+    return [_pydantic_issue(e, source, lines) for e in errors
+            if not (e["type"] == "missing" and tuple(e["loc"]) in misspelt)]
 
 
 def _pydantic_issue(err, source, lines) -> Issue:

@@ -103,6 +103,12 @@ def read_yaml(path, text: str | None = None):
             mark = exc.problem_mark or exc.context_mark
             line = mark.line + 1 if mark else None
             what = exc.problem or "syntax error"
+            ctx = exc.context_mark
+            if exc.context and "flow" in exc.context and ctx is not None and line != ctx.line + 1:
+                # an unclosed [ or { : the fault is where it opens, not where parsing gave up
+                bracket = "{" if "mapping" in exc.context else "["
+                what = f"the '{bracket}' opened here is not closed ({what} on line {line})"
+                line = ctx.line + 1
             raise InputError.one(path, line, "", f"YAML syntax error: {what}") from None
         except yaml.YAMLError as exc:
             raise InputError.one(path, None, "", f"YAML syntax error: {exc}") from None
