@@ -53,10 +53,10 @@ class Limit:
     at_end: bool
     key: str
 
-    def tolerance(self) -> float:
+    def tolerance(self, rel_tol: float = REL_TOL) -> float:
         """Violation tolerance, internal units."""
         scale = max(abs(v) for v in (self.lower, self.upper) if v is not None)
-        return REL_TOL * scale + ABS_TOL
+        return rel_tol * scale + ABS_TOL
 
 
 @dataclass(frozen=True)
@@ -133,9 +133,10 @@ def evaluate(model: Model, limits, traj: Trajectory) -> np.ndarray:
     return np.array(values).reshape(len(limits), n).T
 
 
-def judge(model: Model, limits, traj: Trajectory) -> tuple:
+def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> tuple:
     """A :class:`LimitReport` per limit for trajectory ``traj``; also returns the
-    per-sample use (% of the upper bound) as a dict name -> array."""
+    per-sample use (% of the upper bound) as a dict name -> array. A limit counts as
+    broken where it is exceeded by more than ``rel_tol`` of its bound."""
     g = evaluate(model, limits, traj)
     reports, use = [], {}
     for i, lim in enumerate(limits):
@@ -150,7 +151,7 @@ def judge(model: Model, limits, traj: Trajectory) -> tuple:
             side = np.where(low < slack, "min", side)
             slack = np.minimum(slack, low)
         k = int(np.argmin(slack))
-        broken = np.nonzero(slack < -lim.tolerance())[0]
+        broken = np.nonzero(slack < -lim.tolerance(rel_tol))[0]
         peak = None
         if lim.upper is not None and lim.upper > 0:
             use[lim.name] = 100.0 * g[:, i] / lim.upper

@@ -139,6 +139,8 @@ def build_model(problem: Problem) -> Model:
         env["heat_load"] = p.vessel.heat.yield_per_oxygen * env["OUR"] * V
         values["heat_load"] = env["heat_load"]
 
+    for name in fed_species:
+        env[f"fed_{name}"] = x[state_names.index(f"fed_{name}")]
     rhs = []
     for i, s in enumerate(species):
         r = ca.SX(to_casadi(s.rate, env))

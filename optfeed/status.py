@@ -1,13 +1,22 @@
 """Status words and exit codes: the one table every job uses.
 
 Exit codes: 0 success (within limits / optimal and verified), 1 a limit broken or
-an answer that is not a verified optimum, 2 bad input, 3 a solver or integrator
-failure.
+an answer that is not a verified optimum (including an infeasible problem), 2 bad
+input, 3 a solver or integrator failure.
+
+An answer is only ever called optimal when the solver converged *and* the
+re-simulation of its pump schedule confirmed the objective and the limits.
 """
 
 WITHIN_LIMITS = "within limits"
 LIMIT_BROKEN = "limit broken"
 SIMULATION_FAILED = "simulation failed"
+
+OPTIMAL_VERIFIED = "optimal, verified"
+CONVERGED_NOT_VERIFIED = "converged, not verified"
+INFEASIBLE = "infeasible"
+ITERATION_LIMIT = "iteration limit"
+FAILED = "failed"
 
 EXIT_OK = 0
 EXIT_NOT_OK = 1
@@ -18,6 +27,11 @@ EXIT_CODES = {
     WITHIN_LIMITS: EXIT_OK,
     LIMIT_BROKEN: EXIT_NOT_OK,
     SIMULATION_FAILED: EXIT_FAILED,
+    OPTIMAL_VERIFIED: EXIT_OK,
+    CONVERGED_NOT_VERIFIED: EXIT_NOT_OK,
+    INFEASIBLE: EXIT_NOT_OK,
+    ITERATION_LIMIT: EXIT_NOT_OK,
+    FAILED: EXIT_FAILED,
 }
 
 

@@ -19,7 +19,7 @@ from .. import expr as ex
 from ..errors import InputError, Issue
 from ..units import parse_quantity, to_internal
 from . import schema
-from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Species, Vessel
+from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
 
 _NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
@@ -215,13 +215,15 @@ class _Builder:
 
         vessel = self._vessel(rate_env)
         with_oxygen = rate_env + (["OUR"] if r.vessel.oxygen else [])
-        end_env = with_oxygen + (["heat_load"] if r.vessel.heat else [])
+        fed = [f"fed_{n}" for n in r.species if any(n in f.composition for f in r.feeds.values())]
+        end_env = with_oxygen + (["heat_load"] if r.vessel.heat else []) + fed
 
         species = self._species(species_initial, rate_env)
         feeds = self._feeds(species_dims)
         bounds = self._bounds(species_dims, end_env)
         horizon = self._horizon()
         objective = self._objective(end_env)
+        settings = self._settings(horizon)
 
         if self.issues:
             raise InputError(self.issues)
@@ -238,6 +240,7 @@ class _Builder:
             bounds=tuple(bounds),
             horizon=horizon,
             objective=objective,
+            settings=settings,
             data=self.data,
         )
 
@@ -458,6 +461,39 @@ class _Builder:
         if turn and turn[0] < 0:
             self.fail(loc + ("turnaround",), "turnaround time cannot be negative")
         return Objective(sense, quantity, o.product, o.substrate, e, integral, turn[0] if turn else 0.0)
+
+    def _settings(self, horizon):
+        s = self.raw.solver
+        loc = ("solver",)
+        if s.pump_interval is not None and s.pump_steps is not None:
+            self.fail(loc, "give pump_interval or pump_steps, not both")
+        steps = s.pump_steps if s.pump_steps is not None else 40
+        if s.pump_interval is not None:
+            got = self.quantity(s.pump_interval, "time", loc + ("pump_interval",))
+            if got and horizon is not None:
+                length = horizon.end_time if not horizon.free else horizon.guess
+                if got[0] <= 0:
+                    self.fail(loc + ("pump_interval",), "pump interval must be above zero")
+                else:
+                    steps = max(1, round(length / got[0]))
+                    if abs(steps * got[0] - length) > 1e-6 * length:
+                        self.fail(loc + ("pump_interval",), f"the run ({length:g} h) is not a whole number of "
+                                                            f"pump intervals of {got[0]:g} h")
+        checks = [
+            ("pump_steps", steps, 1, 5000), ("elements_per_step", s.elements_per_step, 1, 50),
+            ("degree", s.degree, 1, 9), ("starts", s.starts, 1, 64), ("max_iter", s.max_iter, 1, 10**6),
+        ]
+        for key, value, lo, hi in checks:
+            if not lo <= value <= hi:
+                self.fail(loc + (key,), f"must be between {lo} and {hi}, got {value}")
+        for key in ("smoothing", "tolerance", "verify_tolerance"):
+            value = getattr(s, key)
+            if not (value >= 0 and value < 1e6) or (key != "smoothing" and value == 0):
+                self.fail(loc + (key,), f"must be a positive number, got {value}")
+        if steps * s.elements_per_step > 20000:
+            self.fail(loc, "more than 20000 finite elements")
+        return Settings(steps, s.elements_per_step, s.degree, s.starts, float(s.smoothing), s.max_iter,
+                        float(s.tolerance), float(s.verify_tolerance))
 
 
 def _written_unit(value, kind) -> str:

@@ -79,6 +79,18 @@ class ObjectiveIn(_Strict):
     turnaround: Scalar = 0.0
 
 
+class SolverIn(_Strict):
+    pump_interval: Optional[Scalar] = None
+    pump_steps: Optional[int] = None
+    elements_per_step: int = 2
+    degree: int = 3
+    starts: int = 4
+    smoothing: float = 0.0
+    max_iter: int = 3000
+    tolerance: float = 1e-8
+    verify_tolerance: float = 2e-3
+
+
 class ProblemIn(_Strict):
     name: Text = ""
     description: Text = ""
@@ -93,3 +105,4 @@ class ProblemIn(_Strict):
     end: list[BoundIn] = Field(default_factory=list)
     horizon: HorizonIn
     objective: Optional[ObjectiveIn] = None
+    solver: SolverIn = Field(default_factory=SolverIn)

@@ -175,6 +175,47 @@ class Objective:
 
 
 @dataclass(frozen=True)
+class Settings:
+    """How ``optimize`` transcribes and solves the problem.
+
+    Attributes
+    ----------
+    pump_steps : int
+        Number of piecewise-constant pump intervals over the run.
+    elements_per_step : int
+        Collocation finite elements per pump interval.
+    degree : int
+        Radau collocation degree (points per element).
+    starts : int
+        Initial guesses tried (multistart).
+    smoothing : float
+        Weight of the penalty on feed-rate changes, relative to the objective
+        (sum over steps of (change / max rate)^2); 0 turns it off.
+    max_iter : int
+        IPOPT iteration limit per start.
+    tolerance : float
+        IPOPT convergence tolerance.
+    verify_tolerance : float
+        Largest relative difference between the NLP and the re-simulated objective,
+        and largest violation of a limit relative to its bound, for an answer to
+        count as verified.
+    """
+
+    pump_steps: int = 40
+    elements_per_step: int = 2
+    degree: int = 3
+    starts: int = 4
+    smoothing: float = 0.0
+    max_iter: int = 3000
+    tolerance: float = 1e-8
+    verify_tolerance: float = 2e-3
+
+    @property
+    def elements(self) -> int:
+        return self.pump_steps * self.elements_per_step
+
+
+@dataclass(frozen=True)
 class Problem:
     """A checked fed-batch problem. Build it with :func:`optfeed.load_problem`."""
 
@@ -190,6 +231,7 @@ class Problem:
     bounds: tuple
     horizon: Horizon
     objective: Objective | None
+    settings: Settings = field(default_factory=Settings)
     data: dict = field(repr=False, default_factory=dict)
 
     @property

@@ -1,0 +1,248 @@
+"""IPOPT through CasADi: initial guesses, multistart, and the status table.
+
+Initial guesses come from simulating candidate feeds (constant fractions of the pump
+range, exponential feeds growing to the maximum), each scaled down if it would
+overfill the vessel. Each start is solved in its own process when more than one core
+is free; every process builds its own model from the picklable Problem.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+
+import casadi as ca
+import numpy as np
+
+from .collocation import Transcription
+from .errors import SimulationError
+from .limits import build_limits
+from .model import build_model
+from .problem.spec import Problem
+from .schedule import piecewise_constant
+from .simulate import Simulator
+
+# IPOPT's return_status -> our word for how the solver ended
+IPOPT_STATUS = {
+    "Solve_Succeeded": "converged",
+    "Solved_To_Acceptable_Level": "converged",
+    "Feasible_Point_Found": "converged",
+    "Infeasible_Problem_Detected": "infeasible",
+    "Restoration_Failed": "failed",
+    "Maximum_Iterations_Exceeded": "iteration limit",
+    "Maximum_CpuTime_Exceeded": "time limit",
+    "Maximum_WallTime_Exceeded": "time limit",
+    "Search_Direction_Becomes_Too_Small": "failed",
+    "Diverging_Iterates": "failed",
+    "User_Requested_Stop": "failed",
+    "Error_In_Step_Computation": "failed",
+    "Not_Enough_Degrees_Of_Freedom": "failed",
+    "Invalid_Number_Detected": "failed",
+    "Invalid_Problem_Definition": "failed",
+    "Invalid_Option": "failed",
+    "Internal_Error": "failed",
+    "Unrecoverable_Exception": "failed",
+    "Insufficient_Memory": "failed",
+}
+
+
+@dataclass
+class Scaling:
+    """Nominal magnitudes shared by every start (so their NLPs are identical).
+
+    x : (nx,) states; t : end time, h; objective : internal units.
+    """
+
+    x: np.ndarray
+    t: float
+    objective: float
+
+
+@dataclass
+class Start:
+    """One start of the multistart.
+
+    Attributes
+    ----------
+    label : str
+        The initial feed it began from.
+    status : str
+        'converged', 'infeasible', 'iteration limit', 'time limit' or 'failed'.
+    ipopt_status : str
+        IPOPT's own return status.
+    objective : float or None
+        NLP objective J (internal units, its own sense), None if not finite.
+    iterations : int
+    seconds : float
+        Wall time of the solve.
+    w, lam_g, lam_x : ndarray
+        Solution and multipliers.
+    guess_objective : float or None
+        J of the initial feed (re-simulated), for comparison.
+    """
+
+    label: str
+    status: str
+    ipopt_status: str
+    objective: float | None
+    iterations: int
+    seconds: float
+    w: np.ndarray = field(repr=False)
+    lam_g: np.ndarray = field(repr=False)
+    lam_x: np.ndarray = field(repr=False)
+    guess_objective: float | None = None
+
+
+@dataclass
+class Guess:
+    label: str
+    steps_u: np.ndarray  # (M, nu), L/h
+    T: float
+    times: np.ndarray
+    states: np.ndarray
+    objective: float | None
+
+
+def end_time_info(problem: Problem):
+    """(fixed end time or None, (min, max) bounds, nominal end time), h."""
+    h = problem.horizon
+    if h.free:
+        return None, (h.min_end, h.max_end), h.guess
+    return h.end_time, (h.end_time, h.end_time), h.end_time
+
+
+def candidate_feeds(problem: Problem, T: float, M: int, count: int) -> list[tuple[str, np.ndarray]]:
+    """Up to ``count`` candidate pump programmes, (label, (M, nu) rates in L/h)."""
+    feeds = problem.feeds
+    fmin = np.array([f.min_rate for f in feeds])
+    fmax = np.array([f.max_rate for f in feeds])
+    t_mid = (np.arange(M) + 0.5) * T / M
+    room = problem.vessel.working_volume - problem.vessel.initial_volume
+
+    def fit(rates, label):
+        rates = np.clip(rates, fmin, fmax)
+        fed = rates.sum() * T / M
+        if fed > 0.95 * room and fed > 0:
+            extra = rates - fmin
+            need = 0.95 * room - fmin.sum() * T
+            scale = max(0.0, need / max(extra.sum() * T / M, 1e-300))
+            rates = fmin + extra * min(1.0, scale)
+            label += " (scaled to fit the vessel)"
+        return label, rates
+
+    shapes = []
+    for kT, frac in ((3.0, None), (None, 0.25), (6.0, None), (None, 0.6), (1.5, None), (None, 0.1),
+                     (10.0, None), (None, 0.9)):
+        if kT is not None:
+            prof = np.exp(kT * (t_mid / T - 1.0))[:, None]
+            shapes.append(fit(fmin + prof * (fmax - fmin), f"exponential, growing {kT:g}-fold e-times to max"))
+        else:
+            shapes.append(fit(np.tile(fmin + frac * (fmax - fmin), (M, 1)), f"constant {frac:.0%} of pump range"))
+    while len(shapes) < count:  # more starts than shapes: random piecewise profiles, fixed seed
+        rng = np.random.default_rng(len(shapes))
+        shapes.append(fit(fmin + rng.uniform(0, 1, (M, len(feeds))) * (fmax - fmin), f"random #{len(shapes)}"))
+    return shapes[:count]
+
+
+def make_guesses(problem: Problem, model, count: int) -> list[Guess]:
+    """Simulate the candidate feeds; drop those the integrator cannot follow."""
+    fixed, bounds, T = end_time_info(problem)
+    M = problem.settings.pump_steps
+    sim = Simulator(model)
+    out = []
+    for label, steps in candidate_feeds(problem, T, M, count):
+        sched = piecewise_constant(model.feed_names, np.linspace(0, T, M + 1)[:-1], steps)
+        try:
+            traj = sim.run(sched, T, min_points=max(400, 4 * M))
+        except SimulationError:
+            continue
+        J = model.end_value(traj.final, T) if problem.objective is not None else None
+        out.append(Guess(label, steps, T, traj.t, traj.x, None if J is None else float(J)))
+    return out
+
+
+def scaling_for(problem: Problem, guesses: list[Guess]) -> Scaling:
+    xs = np.max([np.max(np.abs(g.states), axis=0) for g in guesses], axis=0)
+    xs = np.where(xs > 1e-9, xs, 1.0)
+    js = [abs(g.objective) for g in guesses if g.objective is not None and math.isfinite(g.objective)]
+    j = max(js) if js and max(js) > 1e-12 else 1.0
+    _, _, T = end_time_info(problem)
+    return Scaling(xs, float(T), float(j))
+
+
+def transcribe(problem: Problem, scaling: Scaling, model=None, limits=None) -> Transcription:
+    model = model or build_model(problem)
+    limits = limits if limits is not None else build_limits(model)
+    fixed, bounds, _ = end_time_info(problem)
+    return Transcription(model, limits, problem.settings, fixed, bounds, scaling.x, scaling.t, scaling.objective)
+
+
+def ipopt_options(settings, quiet: bool = True) -> dict:
+    return {
+        "expand": True,
+        "print_time": False,
+        "ipopt.print_level": 0 if quiet else 5,
+        "ipopt.sb": "yes",
+        "ipopt.max_iter": settings.max_iter,
+        "ipopt.tol": settings.tolerance,
+        "ipopt.acceptable_tol": max(settings.tolerance * 100, 1e-6),
+        "ipopt.acceptable_iter": 10,
+        "ipopt.mu_strategy": "adaptive",
+    }
+
+
+def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=None) -> Start:
+    """Solve the NLP from ``w0``; never raises for a solver failure."""
+    solver = ca.nlpsol("optfeed", "ipopt", trans.nlp, ipopt_options(trans.settings))
+    t0 = time.perf_counter()
+    try:
+        res = solver(x0=w0, lbx=trans.lbx, ubx=trans.ubx, lbg=trans.lbg, ubg=trans.ubg)
+    except RuntimeError as exc:  # evaluation errors surface here
+        return Start(label, "failed", f"error: {str(exc).splitlines()[-1][:120]}", None, 0,
+                     time.perf_counter() - t0, w0, np.zeros(trans.n_g), np.zeros(trans.n_w), guess_objective)
+    seconds = time.perf_counter() - t0
+    stats = solver.stats()
+    ipopt_status = stats.get("return_status", "unknown")
+    w = np.array(res["x"]).ravel()
+    J = trans.objective_value(w)
+    return Start(
+        label=label, status=IPOPT_STATUS.get(ipopt_status, "failed"), ipopt_status=ipopt_status,
+        objective=J if math.isfinite(J) else None, iterations=int(stats.get("iter_count", 0)),
+        seconds=seconds, w=w, lam_g=np.array(res["lam_g"]).ravel(), lam_x=np.array(res["lam_x"]).ravel(),
+        guess_objective=guess_objective,
+    )
+
+
+def _worker(args):
+    problem, scaling, guess = args
+    trans = transcribe(problem, scaling)
+    w0 = trans.pack(guess.times, guess.states, guess.steps_u, guess.T)
+    return solve_one(trans, w0, guess.label, guess.objective)
+
+
+def multistart(problem: Problem, scaling: Scaling, guesses: list[Guess], workers: int | None = None,
+               on_done=None) -> list[Start]:
+    """Solve from every guess; in parallel when ``workers`` > 1 (default: free cores).
+
+    ``on_done(start, n_done, n_total)`` is called as each start finishes.
+    """
+    jobs = [(problem, scaling, g) for g in guesses]
+    if workers is None:
+        workers = min(len(jobs), len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1)
+    out = []
+    if workers <= 1 or len(jobs) == 1:
+        for job in jobs:
+            out.append(_worker(job))
+            if on_done:
+                on_done(out[-1], len(out), len(jobs))
+        return out
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        futures = [pool.submit(_worker, job) for job in jobs]
+        for fut in futures:
+            out.append(fut.result())
+            if on_done:
+                on_done(out[-1], len(out), len(jobs))
+    return out

@@ -1,0 +1,87 @@
+"""Checking an NLP answer: re-simulation of the exact pump schedule, slack, marginals."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import SimulationError
+from .limits import judge
+from .schedule import Schedule, piecewise_constant
+from .simulate import Trajectory, simulate
+
+
+@dataclass(frozen=True)
+class Verification:
+    """How well an NLP answer holds up when its pump schedule is re-simulated.
+
+    Attributes
+    ----------
+    verified : bool
+        Objective difference and worst limit violation both within tolerance.
+    message : str
+    objective_nlp, objective_sim : float or None
+        Internal units, the objective's own sense.
+    objective_rel_diff : float
+        |sim - nlp| / max(|nlp|, tiny).
+    worst_violation : float
+        Largest violation of any limit relative to its bound (0 if none).
+    worst_limit : str
+    limits : tuple of LimitReport
+    use : dict
+    trajectory : Trajectory or None
+    schedule : Schedule
+    """
+
+    verified: bool
+    message: str
+    objective_nlp: float | None
+    objective_sim: float | None
+    objective_rel_diff: float
+    worst_violation: float
+    worst_limit: str
+    limits: tuple
+    use: dict
+    trajectory: Trajectory | None
+    schedule: Schedule
+
+
+def pump_schedule(feed_names, t_steps, u_steps, source: str = "") -> Schedule:
+    """The piecewise-constant schedule of an NLP answer (t_steps: M+1 boundaries, h)."""
+    return piecewise_constant(feed_names, t_steps[:-1], u_steps, source)
+
+
+def verify(model, limits, unpacked, objective_nlp, tolerance: float) -> Verification:
+    """Re-simulate the pump schedule of ``unpacked`` with CVODES and judge it."""
+    schedule = pump_schedule(model.feed_names, unpacked.t_steps, unpacked.u_steps)
+    T = unpacked.T
+    try:
+        traj = simulate(model, schedule, T, min_points=4000)
+    except SimulationError as exc:
+        return Verification(False, f"re-simulation failed: {exc}", objective_nlp, None, np.inf, np.inf, "",
+                            (), {}, None, schedule)
+    reports, use = judge(model, limits, traj, rel_tol=tolerance)
+    J_sim = float(model.end_value(traj.final, T)) if model.problem.objective is not None else None
+    if J_sim is not None and objective_nlp is not None:
+        diff = abs(J_sim - objective_nlp) / max(abs(objective_nlp), 1e-12)
+    else:
+        diff = 0.0
+    worst, worst_name = 0.0, ""
+    for lim, rep in zip(limits, reports):
+        scale = max([abs(v) for v in (rep.lower, rep.upper) if v is not None and v != 0] + [1e-300])
+        rel = rep.worst_violation / scale if rep.worst_violation > 0 else 0.0
+        if rel > worst:
+            worst, worst_name = rel, lim.name
+    ok = diff <= tolerance and worst <= tolerance
+    if ok:
+        msg = (f"re-simulated objective within {diff:.1e} (relative) of the NLP; "
+               f"worst limit excess {worst:.1e} of its bound")
+    else:
+        parts = []
+        if diff > tolerance:
+            parts.append(f"re-simulated objective differs from the NLP by {diff:.2%}")
+        if worst > tolerance:
+            parts.append(f"'{worst_name}' is exceeded by {worst:.2%} of its bound between collocation points")
+        msg = "; ".join(parts) + f" (tolerance {tolerance:.1e}); refine the grid (solver.elements_per_step, degree)"
+    return Verification(ok, msg, objective_nlp, J_sim, diff, worst, worst_name, reports, use, traj, schedule)
