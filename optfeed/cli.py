@@ -2,6 +2,7 @@
 
     optfeed validate PROBLEM [--schedule FILE]
     optfeed check PROBLEM --schedule FILE [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed optimize PROBLEM [--workers N] [--out DIR | --results DIR] [--json] [--quiet]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
 verified optimum), 2 bad input, 3 a solver or integrator failure.
@@ -35,6 +36,12 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
     c.add_argument("--end-time", type=float, help="run length in h (only for a free end time)")
     _output_args(c)
+
+    o = sub.add_parser("optimize", help="find the feed profile that optimises the objective inside every limit")
+    o.add_argument("problem", help="problem file (YAML)")
+    o.add_argument("--workers", type=int, help="processes for the multistart (default: free cores)")
+    o.add_argument("--starts", type=int, help="number of starts (overrides solver.starts)")
+    _output_args(o)
     return ap
 
 
@@ -53,6 +60,8 @@ def main(argv=None) -> int:
             return _validate(args)
         if args.command == "check":
             return _check(args)
+        if args.command == "optimize":
+            return _optimize(args)
     except InputError as exc:
         print("optfeed: bad input", file=sys.stderr)
         for issue in exc.issues:
@@ -102,6 +111,55 @@ def _check(args) -> int:
         print(f"\nWritten: {target}/ (summary.json, report.txt, limits.csv, trajectory.csv"
               + (", figure.png)" if not args.no_figures and result.trajectory is not None else ")"))
     return result.exit_code
+
+
+def _optimize(args) -> int:
+    import dataclasses
+
+    from .optimize import optimize
+    from .problem import load_problem
+    from .report import optimize_text, write_optimize_run
+    from .report.files import default_run_dir, optimize_summary
+
+    problem = load_problem(args.problem)
+    if args.starts is not None:
+        if not 1 <= args.starts <= 64:
+            raise InputError.one("--starts", None, "--starts", "must be between 1 and 64")
+        problem = dataclasses.replace(problem, settings=dataclasses.replace(problem.settings, starts=args.starts))
+    target = Path(args.out) if args.out else default_run_dir(Path(args.results), problem.name, "optimize")
+    if target.exists():
+        raise InputError.one(str(target), None, "--out", "run folder already exists; choose another")
+    if args.quiet or args.json:
+        result = optimize(problem, workers=args.workers)
+    else:
+        result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb))
+    write_optimize_run(result, target, figures=not args.no_figures)
+    if args.json:
+        print(json.dumps({**optimize_summary(result), "run_folder": str(target)}, indent=2))
+    elif args.quiet:
+        print(f"{result.status}: {result.message}")
+    else:
+        print(optimize_text(result), end="")
+        print(f"\nWritten: {target}/")
+    return result.exit_code
+
+
+def _with_progress(job):
+    """Run ``job(callback)`` under a progress display on stderr."""
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+    console = Console(stderr=True)
+    with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
+                  TimeElapsedColumn(), console=console, transient=True, disable=not console.is_terminal) as bar:
+        task = bar.add_task("optimizing", total=1)
+
+        def callback(text, done, total):
+            bar.update(task, description=text, completed=done, total=total)
+            if not console.is_terminal:
+                print(f"  {text}", file=sys.stderr)
+
+        return job(callback)
 
 
 if __name__ == "__main__":

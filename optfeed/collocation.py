@@ -246,6 +246,10 @@ class Transcription:
         xb = w[o[0]:o[1]].reshape(N + 1, nx).T * self.x_scale[:, None]
         xc = w[o[1]:o[2]].reshape(N * d, nx).T * self.x_scale[:, None]
         u = w[o[2]:o[3]].reshape(M, nu).T * self.u_scale[:, None]
+        # IPOPT may relax bounds by ~1e-8; a pump schedule must stay inside them
+        fmin = np.array([f.min_rate for f in m.problem.feeds])[:, None]
+        fmax = np.array([f.max_rate for f in m.problem.feeds])[:, None]
+        u = np.clip(u, fmin, fmax)
         T = w[-1] * self.t_scale if self.free_time else self.end_time
         u_pts = np.repeat(u, self.k * d, axis=1)
         return Unpacked(

@@ -1,6 +1,6 @@
 """Reports: the text report, figures, and the run folder (written atomically)."""
 
-from .files import write_check_run
-from .text import CAUTION, check_text
+from .files import write_check_run, write_optimize_run
+from .text import CAUTION, check_text, optimize_text
 
-__all__ = ["write_check_run", "check_text", "CAUTION"]
+__all__ = ["write_check_run", "write_optimize_run", "check_text", "optimize_text", "CAUTION"]

@@ -12,8 +12,11 @@ import matplotlib.pyplot as plt  # noqa: E402
 from ..units import factor_to  # noqa: E402
 
 
-def run_figure(model, traj, use: dict, path, title: str = "") -> None:
-    """One PNG: a panel per species, volume, pump rates, and % use of each limit."""
+def run_figure(model, traj, use: dict, path, title: str = "", points=None) -> None:
+    """One PNG: a panel per species, volume, pump rates, and % use of each limit.
+
+    ``points`` (dict with 't', 'x' in internal units) overlays the NLP's collocation
+    points on the simulated curves, to show where the two agree."""
     p = model.problem
     panels = [(s.name, traj.state(s.name) * factor_to(s.unit), s.unit, s.description) for s in p.species]
     panels.append(("V", traj.state("V") * factor_to(p.vessel.unit), p.vessel.unit, "volume"))
@@ -23,12 +26,17 @@ def run_figure(model, traj, use: dict, path, title: str = "") -> None:
     fig, axes = plt.subplots(nrow, ncol, figsize=(5.2 * ncol, 3.0 * nrow), sharex=True, squeeze=False)
     axes = axes.ravel()
     for ax, (name, y, unit, desc) in zip(axes, panels):
-        ax.plot(traj.t, y, color="#1f5f8b", lw=1.6)
+        ax.plot(traj.t, y, color="#1f5f8b", lw=1.6, label="simulated")
+        if points is not None:
+            i = model.index(name)
+            f = factor_to(p.vessel.unit) if name == "V" else factor_to(p.species_by_name(name).unit)
+            ax.plot(points["t"], points["x"][:, i] * f, ".", ms=2.5, color="#d68910", label="NLP points")
         ax.set_title(f"{name}" + (f" - {desc}" if desc else ""), fontsize=9, loc="left")
         ax.set_ylabel(unit, fontsize=8)
         if name == "V":
             ax.axhline(p.vessel.working_volume * factor_to(p.vessel.unit), color="#b03a2e", ls="--", lw=1,
                        label="working volume")
+        if name == "V" or (points is not None and ax is axes[0]):
             ax.legend(fontsize=7, loc="lower right")
     ax = axes[len(panels)]
     for f in p.feeds:

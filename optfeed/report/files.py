@@ -173,3 +173,79 @@ def write_check_run(result, target, figures: bool = True) -> Path:
                 run_figure(model, result.trajectory, result.use, tmp / "figure.png",
                            title=f"{result.problem.name}: check - {result.status}")
     return Path(target)
+
+
+def optimize_summary(result) -> dict:
+    """The machine-readable record of an optimize run (summary.json)."""
+    ver = result.verification
+    limits = []
+    for v in result.limits:
+        d = limit_dict(v.report)
+        d.update({"active": v.active, "marginal_max": v.marginal_max, "marginal_min": v.marginal_min,
+                  "marginal_unit": f"{result.objective_unit or '1'} per {v.report.unit or '1'}"})
+        limits.append(d)
+    return {
+        "job": "optimize",
+        "status": result.status,
+        "exit_code": result.exit_code,
+        "message": result.message,
+        "problem": result.problem.name,
+        "objective": {
+            "label": result.objective_label, "unit": result.objective_unit,
+            "nlp": result.objective_nlp, "resimulated": result.objective_sim,
+            "relative_difference": None if ver is None else ver.objective_rel_diff,
+        },
+        "end_time_h": result.end_time,
+        "verification": None if ver is None else {
+            "verified": ver.verified, "message": ver.message,
+            "worst_limit_excess_relative": ver.worst_violation, "worst_limit": ver.worst_limit,
+        },
+        "limits": limits,
+        "solver": {
+            "starts": [{"from": s.label, "status": s.status, "ipopt_status": s.ipopt_status,
+                        "objective": s.objective, "iterations": s.iterations, "seconds": s.seconds}
+                       for s in result.starts],
+            "spread_relative": result.spread,
+            "seconds_total": result.seconds,
+        },
+        **outcome_dict(result.outcome),
+        "record": result.record,
+        "caution": CAUTION,
+    }
+
+
+def write_optimize_run(result, target, figures: bool = True) -> Path:
+    """Write an optimize result to the run folder ``target`` (must not exist).
+
+    Files: summary.json, report.txt, limits.csv; when there is an answer also
+    schedule.csv (the pump schedule, readable by ``optfeed check --schedule``),
+    trajectory.csv (re-simulated), points.csv (the NLP's collocation points) and
+    figure.png.
+    """
+    from ..model import build_model
+    from ..schedule import schedule_csv_text
+    from .figures import run_figure
+    from .text import optimize_text
+
+    with RunFolder(target) as tmp:
+        write_json(tmp / "summary.json", optimize_summary(result))
+        (tmp / "report.txt").write_text(optimize_text(result))
+        header, rows = limits_rows([v.report for v in result.limits])
+        header += ["active", "marginal_max", "marginal_min"]
+        rows = [r + [v.active, v.marginal_max, v.marginal_min] for r, v in zip(rows, result.limits)]
+        write_csv(tmp / "limits.csv", header, rows)
+        if result.trajectory is not None:
+            model = build_model(result.problem)
+            units = {f.name: f.unit for f in result.problem.feeds}
+            note = (f"Pump schedule from optfeed optimize ({result.status}) for {result.problem.name}.\n"
+                    f"Run length: {result.end_time!r} h. Check it with: optfeed check PROBLEM --schedule schedule.csv")
+            (tmp / "schedule.csv").write_text(schedule_csv_text(result.schedule, units, note))
+            write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory))
+            pts = result.points
+            header = ["time [h]"] + [f"{n} [internal]" for n in model.state_names] + \
+                     [f"{n} [L/h]" for n in model.feed_names]
+            write_csv(tmp / "points.csv", header, np.column_stack([pts["t"], pts["x"], pts["u"]]))
+            if figures:
+                run_figure(model, result.trajectory, result.verification.use, tmp / "figure.png",
+                           title=f"{result.problem.name}: optimize - {result.status}", points=pts)
+    return Path(target)

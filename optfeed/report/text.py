@@ -71,3 +71,56 @@ def check_text(result) -> str:
         lines += ["At the end of the run:"] + outcome_lines(result.outcome) + [""]
     lines.append(CAUTION)
     return "\n".join(lines) + "\n"
+
+
+def optimize_text(result) -> str:
+    """The text report of an :class:`~optfeed.optimize.OptimizeResult`."""
+    p = result.problem
+    unit = result.objective_unit
+    lines = [
+        f"optfeed optimize: {p.name}",
+        f"  problem   {result.record.get('problem_file', '')}",
+        f"  grid      {p.settings.pump_steps} pump steps x {p.settings.elements_per_step} elements, "
+        f"Radau degree {p.settings.degree}; {p.settings.starts} starts",
+        "",
+        f"STATUS: {result.status.upper()} - {result.message}",
+        "",
+    ]
+    if result.objective_nlp is not None:
+        lines += [
+            f"Objective ({result.objective_label}):",
+            f"  from the NLP        {fmt(result.objective_nlp, 7)} {unit}",
+            f"  re-simulated        {fmt(result.objective_sim, 7)} {unit}",
+        ]
+        if result.end_time is not None:
+            lines.append(f"  end time            {fmt(result.end_time, 6)} h"
+                         + (" (free)" if p.horizon.free else ""))
+        if "end_time_marginal_per_h" in result.record:
+            lines.append(f"  1 h longer run      {fmt(result.record['end_time_marginal_per_h'])} {unit} more")
+        lines.append("")
+    if result.starts:
+        lines.append("Starts (best first):")
+        for s in result.starts:
+            val = "-" if s.objective is None else fmt(s.objective, 7)
+            lines.append(f"  {val:>12} {unit}  {s.status:<16} {s.iterations:>5} it  {s.seconds:6.2f} s  from {s.label}")
+        if result.spread is not None:
+            lines.append(f"  spread over converged starts: {result.spread:.2%} of the best")
+        lines.append("")
+    if result.limits:
+        lines += ["Limits at the optimum (re-simulated):"] + limits_table([v.report for v in result.limits]) + [""]
+        lines.append(f"Marginal values (gain in objective, {unit or 'its unit'}, per unit relaxation of a limit):")
+        for v in result.limits:
+            parts = []
+            if abs(v.marginal_max) > 1e-9 * max(1.0, abs(result.objective_nlp or 1.0)):
+                parts.append(f"+1 {v.report.unit} on its maximum: {fmt(v.marginal_max)}")
+            if abs(v.marginal_min) > 1e-9 * max(1.0, abs(result.objective_nlp or 1.0)) and v.report.kind != "pump":
+                parts.append(f"-1 {v.report.unit} on its minimum: {fmt(v.marginal_min)}")
+            if v.report.kind == "pump" and abs(v.marginal_min) > 0 and not parts:
+                parts.append("only its minimum (zero flow) binds")
+            state = "ACTIVE" if v.active else "slack "
+            lines.append(f"  {state} {v.name:<24} " + ("; ".join(parts) if parts else "0 (does not hold the optimum back)"))
+        lines.append("")
+    if result.outcome is not None:
+        lines += ["At the end of the run (re-simulated):"] + outcome_lines(result.outcome) + [""]
+    lines.append(CAUTION)
+    return "\n".join(lines) + "\n"
