@@ -93,10 +93,15 @@ class Transcription:
         Nominal end time (h) for scaling.
     objective_scale : float
         Nominal objective magnitude (internal units).
+    backoff : dict, optional
+        Limit name -> amount (internal units) by which the NLP keeps away from that
+        limit's bounds (upper lowered, lower raised), so that the re-simulated
+        schedule stays inside them between collocation points.
     """
 
     def __init__(self, model: Model, limits: list[Limit], settings: Settings, end_time, t_bounds,
-                 x_scale, t_nominal: float, objective_scale: float):
+                 x_scale, t_nominal: float, objective_scale: float, backoff: dict | None = None):
+        self.backoff = dict(backoff or {})
         self.model, self.limits, self.settings = model, limits, settings
         self.free_time = end_time is None
         self.end_time = end_time
@@ -184,8 +189,8 @@ class Transcription:
             for i, lim in enumerate(path):
                 idx = row + i + len(path) * np.arange(npts)
                 self.limit_rows[lim.name] = idx
-            lo = np.array([(-np.inf if l.lower is None else l.lower / s) for l, s in zip(path, scales)])
-            hi = np.array([(np.inf if l.upper is None else l.upper / s) for l, s in zip(path, scales)])
+            lo = np.array([(-np.inf if l.lower is None else self._lower(l) / s) for l, s in zip(path, scales)])
+            hi = np.array([(np.inf if l.upper is None else self._upper(l) / s) for l, s in zip(path, scales)])
             lbg.append(np.tile(lo, npts))
             ubg.append(np.tile(hi, npts))
             row += len(path) * npts
@@ -195,8 +200,8 @@ class Transcription:
             g.append(efun(T, xb[:, N], u[:, M - 1]) / ca.DM(scales))
             for i, lim in enumerate(ends):
                 self.limit_rows[lim.name] = np.array([row + i])
-            lbg.append(np.array([(-np.inf if l.lower is None else l.lower / s) for l, s in zip(ends, scales)]))
-            ubg.append(np.array([(np.inf if l.upper is None else l.upper / s) for l, s in zip(ends, scales)]))
+            lbg.append(np.array([(-np.inf if l.lower is None else self._lower(l) / s) for l, s in zip(ends, scales)]))
+            ubg.append(np.array([(np.inf if l.upper is None else self._upper(l) / s) for l, s in zip(ends, scales)]))
             row += len(ends)
         self.limit_scale = {l.name: _limit_scale(l) for l in path + ends}
 
@@ -235,6 +240,12 @@ class Transcription:
             lbx[-1] = self.t_bounds[0] / self.t_scale
             ubx[-1] = self.t_bounds[1] / self.t_scale
         self.lbx, self.ubx = lbx, ubx
+
+    def _upper(self, lim: Limit) -> float:
+        return lim.upper - self.backoff.get(lim.name, 0.0)
+
+    def _lower(self, lim: Limit) -> float:
+        return lim.lower + self.backoff.get(lim.name, 0.0)
 
     # ------------------------------------------------------------------ maps
     def unpack(self, w) -> Unpacked:

@@ -47,9 +47,15 @@ def levenspiel(P, P_max, n):
 
 
 def excess(q, q_crit):
-    """Part of a specific rate above a critical rate: max(q - q_crit, 0).
-    Used for overflow metabolism (the uptake above q_S,crit goes to by-product)."""
-    return ca.fmax(q - q_crit, 0)
+    """Part of a specific rate above a critical rate, about max(q - q_crit, 0).
+    Used for overflow metabolism (the uptake above q_S,crit goes to by-product).
+
+    Smoothed so that optimisers see a differentiable model:
+    0.5 * (d + sqrt(d^2 + w^2)) with d = q - q_crit and w = 1e-3 * |q_crit| (plus
+    1e-12); it differs from max(d, 0) by at most w / 2, at d = 0."""
+    d = q - q_crit
+    w = 1e-3 * ca.fabs(q_crit) + 1e-12
+    return 0.5 * (d + ca.sqrt(d**2 + w**2))
 
 
 # name -> (function, argument names)

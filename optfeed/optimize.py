@@ -16,7 +16,7 @@ from .model import build_model
 from .outcome import Outcome, objective_label, outcome_of
 from .problem import Problem, load_problem
 from .provenance import problem_digest, stamp
-from .solve import Start, end_time_info, make_guesses, multistart, scaling_for, transcribe
+from .solve import Start, end_time_info, make_guesses, multistart, scaling_for, solve_one, transcribe
 from .units import factor_to
 from .verify import Verification, verify
 
@@ -202,10 +202,30 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     spread = (max(values) - min(values)) / max(abs(best.objective), 1e-12)
     unpacked = trans.unpack(best.w)
     progress("re-simulating the optimal schedule", len(starts), len(starts))
-    ver = verify(model, limits, unpacked, best.objective, problem.settings.verify_tolerance)
+    tol = problem.settings.verify_tolerance
+    ver = verify(model, limits, unpacked, best.objective, tol)
+    backoff = {}
+    for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
+        # the NLP meets the limits at its points; if the re-simulated schedule
+        # exceeds one between them, keep the NLP that much further away and re-solve
+        excess = _excess(limits, ver, tol)
+        if ver.verified or not excess or ver.objective_rel_diff > tol:
+            break
+        for name, amount in excess.items():
+            backoff[name] = backoff.get(name, 0.0) + 1.5 * amount
+        progress(f"backing off {', '.join(excess)} (round {round_})", len(starts), len(starts))
+        trial_trans = transcribe(problem, scaling, model, limits, backoff)
+        trial = solve_one(trial_trans, best.w, f"{best.label}, backed off")
+        if trial.status != "converged" or trial.objective is None:
+            break
+        best, trans = trial, trial_trans
+        unpacked = trans.unpack(best.w)
+        ver = verify(model, limits, unpacked, best.objective, tol)
+    if backoff:
+        by_name = {l.name: l for l in limits}
+        record["backoff"] = {n: {"amount": v * by_name[n].factor, "unit": by_name[n].unit} for n, v in backoff.items()}
     marg = trans.marginals(best.lam_g, best.lam_x)
     values_out = []
-    tol = problem.settings.verify_tolerance
     for lim, rep in zip(limits, ver.limits):
         up, low = marg.get(lim.name, (0.0, 0.0))
         scale = max([abs(v) for v in (rep.lower, rep.upper) if v is not None and v != 0] + [1.0])
@@ -215,8 +235,12 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         up, low = marg["end time"]
         record["end_time_marginal_per_h"] = (up if abs(up) >= abs(low) else -low) * f_obj
     outcome = outcome_of(model, ver.trajectory, unpacked.T) if ver.trajectory is not None else None
+    kept = ""
+    if backoff:
+        kept = "; kept clear of " + ", ".join(
+            f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
     if ver.verified:
-        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}"
+        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
     else:
         status, message = st.CONVERGED_NOT_VERIFIED, f"the solver converged but the answer is not verified: {ver.message}"
     return result(
@@ -225,6 +249,22 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         end_time=unpacked.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
         outcome=outcome, points={"t": unpacked.t_points, "x": unpacked.x_points, "u": unpacked.u_points},
     )
+
+
+MAX_BACKOFF_ROUNDS = 3
+
+
+def _excess(limits, ver, tol) -> dict:
+    """Limit name -> amount (internal units) by which the re-simulation exceeds it
+    beyond the verification tolerance."""
+    out = {}
+    for lim, rep in zip(limits, ver.limits):
+        if lim.kind == "pump" or rep.worst_violation <= 0:
+            continue
+        scale = max([abs(v) for v in (rep.lower, rep.upper) if v is not None and v != 0] + [1e-300])
+        if rep.worst_violation / scale > tol:
+            out[lim.name] = rep.worst_violation / lim.factor
+    return out
 
 
 def _blocked_at_start(model, limits) -> str:

@@ -39,8 +39,10 @@ def test_contois_pirt_luedeking_levenspiel():
     assert value("levenspiel(P, 80, 1.5)", P=0.0) == pytest.approx(1.0)
     assert value("levenspiel(P, 80, 1.5)", P=80.0) == pytest.approx(0.0)
     assert value("levenspiel(P, 80, 1.5)", P=90.0) == pytest.approx(0.0)  # held at 0 past P_max
-    assert value("excess(q, 0.9)", q=1.2) == pytest.approx(0.3)
-    assert value("excess(q, 0.9)", q=0.5) == pytest.approx(0.0)
+    # excess is max(q - q_crit, 0) smoothed over 1e-3 * q_crit
+    assert value("excess(q, 0.9)", q=1.2) == pytest.approx(0.3, abs=1e-6)
+    assert value("excess(q, 0.9)", q=0.5) == pytest.approx(0.0, abs=1e-6)
+    assert value("excess(q, 0.9)", q=0.9) == pytest.approx(0.45e-3)
 
 
 def test_caret_is_power_with_power_precedence():

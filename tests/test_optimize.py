@@ -86,9 +86,12 @@ def test_marginal_matches_finite_difference(write, pump, name, delta, change):
     bound = {"OTR ceiling": 40.0, "pump sugar": pump}[name]
     fd = (optimize(change(p, bound + delta)).objective_nlp - optimize(change(p, bound - delta)).objective_nlp) / (2 * delta)
     assert m.marginal_max == pytest.approx(fd, rel=1e-3)
-    # the other limit does not hold this optimum back
-    other = marginal(base, "pump sugar" if name == "OTR ceiling" else "OTR ceiling")
-    assert abs(other.marginal_max) < 1e-6 * abs(m.marginal_max)
+    # the other limit does not hold this optimum back: relaxing it by 1 % gains
+    # next to nothing compared with relaxing this one by 1 %
+    other_name = "pump sugar" if name == "OTR ceiling" else "OTR ceiling"
+    other = marginal(base, other_name)
+    other_bound = {"OTR ceiling": 40.0, "pump sugar": pump}[other_name]
+    assert abs(other.marginal_max * other_bound) < 1e-4 * m.marginal_max * bound
 
 
 PRODUCTIVITY = """

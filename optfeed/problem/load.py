@@ -398,6 +398,10 @@ class _Builder:
                 if e is None:
                     continue
                 name = b.name or (f"{'end ' if at_end else ''}{e.text.strip()}")
+                taken = [x.name for x in out] + ["working volume", "OTR ceiling", "heat removal"] + \
+                    [f"pump {f}" for f in self.raw.feeds]
+                if name in taken:
+                    self.fail(loc + ("name",), f"limit name {name!r} is already used; give each limit its own name")
                 out.append(Bound(name, e, lo, hi, unit, at_end, key_text(loc)))
         return out
 
