@@ -3,6 +3,7 @@
     optfeed validate PROBLEM [--schedule FILE]
     optfeed check PROBLEM --schedule FILE [--out DIR | --results DIR] [--json] [--quiet]
     optfeed optimize PROBLEM [--workers N] [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--quiet]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
 verified optimum), 2 bad input, 3 a solver or integrator failure.
@@ -42,6 +43,14 @@ def _parser() -> argparse.ArgumentParser:
     o.add_argument("--workers", type=int, help="processes for the multistart (default: free cores)")
     o.add_argument("--starts", type=int, help="number of starts (overrides solver.starts)")
     _output_args(o)
+
+    w = sub.add_parser("sweep", help="run many variants unattended; run again to resume")
+    w.add_argument("sweep", help="sweep file (YAML)")
+    w.add_argument("--workers", type=int, help="local processes (default: the cores)")
+    w.add_argument("--scheduler", help="address of a Dask distributed scheduler, e.g. tcp://10.0.0.5:8786")
+    w.add_argument("--out", help="sweep folder (default: results/<sweep name>); the same folder resumes")
+    w.add_argument("--results", default="results", help="parent of the default sweep folder")
+    w.add_argument("--quiet", action="store_true", help="print only the final status line")
     return ap
 
 
@@ -62,6 +71,8 @@ def main(argv=None) -> int:
             return _check(args)
         if args.command == "optimize":
             return _optimize(args)
+        if args.command == "sweep":
+            return _sweep(args)
     except InputError as exc:
         print("optfeed: bad input", file=sys.stderr)
         for issue in exc.issues:
@@ -142,6 +153,52 @@ def _optimize(args) -> int:
         print(optimize_text(result), end="")
         print(f"\nWritten: {target}/")
     return result.exit_code
+
+
+def _sweep(args) -> int:
+    from .sweep import load_sweep, run_sweep
+    from .sweep.outputs import summary_text
+
+    if args.workers is not None and not 1 <= args.workers <= 256:
+        raise InputError.one("--workers", None, "--workers", "must be between 1 and 256")
+    sweep = load_sweep(args.sweep)
+    folder = Path(args.out) if args.out else Path(args.results) / sweep.name
+    if args.quiet:
+        result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler)
+    else:
+        result = _sweep_with_progress(sweep, folder, args)
+        print(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
+    word = "finished" if result.status == "finished" else "stopped (run the same command to resume)"
+    print(f"sweep {word}: {result.total} cases, {result.ran} run now, {result.skipped} already done, "
+          f"{result.failed} without an answer; {folder}/")
+    return result.exit_code
+
+
+def _ranked(sweep, rows):
+    from .sweep.outputs import ranked, sense_of
+
+    return ranked(rows, sense_of(rows, sweep))
+
+
+def _sweep_with_progress(sweep, folder, args):
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from .sweep import run_sweep
+
+    console = Console(stderr=True)
+    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                  TextColumn("failed {task.fields[failed]}"), TimeRemainingColumn(), console=console,
+                  disable=not console.is_terminal) as bar:
+        task = bar.add_task(f"sweep {sweep.name}", total=len(sweep.cases), failed=0)
+
+        def event(kind, row, counts):
+            bar.update(task, completed=counts["done"], failed=counts["failed"])
+            if kind == "done" and not console.is_terminal:
+                print(f"  [{counts['done']}/{counts['total']}] {row['status']}: {row.get('message', '')[:100]}",
+                      file=sys.stderr)
+
+        return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event)
 
 
 def _with_progress(job):

@@ -9,9 +9,10 @@ is free; every process builds its own model from the picklable Problem.
 from __future__ import annotations
 
 import math
+import multiprocessing as mp
+import multiprocessing.connection as mp_connection
 import os
 import time
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 
 import casadi as ca
@@ -183,12 +184,14 @@ def transcribe(problem: Problem, scaling: Scaling, model=None, limits=None, back
 
 # Barrier strategies tried in turn until one converges. A monotone barrier from a
 # small initial mu suits these problems (guesses from simulation are near-feasible);
-# the adaptive strategy rescues some of the rest. Measured on the shipped examples
-# and the published benchmarks (see DEVELOPERS.md).
+# the adaptive strategy rescues some of the rest. The first gets at most
+# FIRST_PROFILE_ITER iterations: a start that wanders that long rarely converges
+# with it. Measured on the shipped examples and the published benchmarks.
 IPOPT_PROFILES = (
     {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-3},
     {"ipopt.mu_strategy": "adaptive"},
 )
+FIRST_PROFILE_ITER = 1000
 
 
 def ipopt_options(settings, profile: dict | None = None, quiet: bool = True) -> dict:
@@ -201,6 +204,10 @@ def ipopt_options(settings, profile: dict | None = None, quiet: bool = True) -> 
         "ipopt.tol": settings.tolerance,
         "ipopt.acceptable_tol": max(settings.tolerance * 100, 1e-6),
         "ipopt.acceptable_iter": 10,
+        # approximate minimum fill ordering: on collocation KKT systems it keeps the
+        # time per iteration linear in the element count, where MUMPS' automatic
+        # choice grew about 4x faster (benchmarks/optimize_benchmark.py)
+        "ipopt.mumps_pivot_order": 2,
         **(profile if profile is not None else IPOPT_PROFILES[0]),
     }
 
@@ -210,6 +217,8 @@ def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=
     converges; never raises for a solver failure. Iterations and time add up."""
     best, iterations, seconds = None, 0, 0.0
     for k, profile in enumerate(IPOPT_PROFILES):
+        if k == 0 and len(IPOPT_PROFILES) > 1:
+            profile = {**profile, "ipopt.max_iter": min(trans.settings.max_iter, FIRST_PROFILE_ITER)}
         start = _solve_profile(trans, w0, label, guess_objective, profile)
         iterations += start.iterations
         seconds += start.seconds
@@ -251,26 +260,92 @@ def _worker(args):
     return solve_one(trans, w0, guess.label, guess.objective)
 
 
+# A start still running when it has taken BUDGET_FACTOR times as long as the median
+# converged start (and at least MIN_BUDGET_S) is stopped: the others have answered,
+# and a start that wanders that long rarely finds a better optimum.
+BUDGET_FACTOR = 3.0
+MIN_BUDGET_S = 5.0
+
+
 def multistart(problem: Problem, scaling: Scaling, guesses: list[Guess], workers: int | None = None,
                on_done=None) -> list[Start]:
-    """Solve from every guess; in parallel when ``workers`` > 1 (default: free cores).
+    """Solve from every guess; in parallel processes when ``workers`` > 1 (default:
+    the free cores, at most one per start), in this process otherwise.
 
-    ``on_done(start, n_done, n_total)`` is called as each start finishes.
+    ``on_done(start, n_done, n_total)`` is called as each start finishes. Returns the
+    starts in the order of ``guesses``.
     """
     jobs = [(problem, scaling, g) for g in guesses]
     if workers is None:
-        workers = min(len(jobs), len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1)
-    out = []
+        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+        workers = min(len(jobs), cores)
     if workers <= 1 or len(jobs) == 1:
+        out = []
         for job in jobs:
             out.append(_worker(job))
             if on_done:
                 on_done(out[-1], len(out), len(jobs))
         return out
-    with ProcessPoolExecutor(max_workers=workers) as pool:
-        futures = [pool.submit(_worker, job) for job in jobs]
-        for fut in futures:
-            out.append(fut.result())
-            if on_done:
-                on_done(out[-1], len(out), len(jobs))
-    return out
+    return _parallel(jobs, workers, on_done)
+
+
+def _child(conn, job):
+    try:
+        conn.send(("ok", _worker(job)))
+    except BaseException as exc:  # report, never hang the parent
+        conn.send(("error", f"{type(exc).__name__}: {exc}"))
+    finally:
+        conn.close()
+
+
+def _parallel(jobs, workers, on_done) -> list[Start]:
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context("spawn")
+    results: dict[int, Start] = {}
+    running: dict[int, tuple] = {}  # index -> (process, connection, start time)
+    queue = list(range(len(jobs)))
+
+    def finish(i, start):
+        results[i] = start
+        if on_done:
+            on_done(start, len(results), len(jobs))
+
+    try:
+        while len(results) < len(jobs):
+            while queue and len(running) < workers:
+                i = queue.pop(0)
+                parent, child = ctx.Pipe(duplex=False)
+                proc = ctx.Process(target=_child, args=(child, jobs[i]), daemon=True)
+                proc.start()
+                child.close()
+                running[i] = (proc, parent, time.perf_counter())
+            ready = mp_connection.wait([c for _, c, _ in running.values()], timeout=0.25)
+            for i, (proc, conn, t0) in list(running.items()):
+                if conn in ready:
+                    try:
+                        kind, payload = conn.recv()
+                    except EOFError:
+                        kind, payload = "error", f"worker ended with exit code {proc.exitcode}"
+                    proc.join()
+                    del running[i]
+                    finish(i, payload if kind == "ok" else _failed_start(jobs[i], payload, time.perf_counter() - t0))
+            times = sorted(s.seconds for s in results.values() if s.status == "converged")
+            if times:
+                budget = max(MIN_BUDGET_S, BUDGET_FACTOR * times[len(times) // 2])
+                now = time.perf_counter()
+                for i, (proc, conn, t0) in list(running.items()):
+                    if now - t0 > budget:
+                        proc.kill()
+                        proc.join()
+                        del running[i]
+                        finish(i, _failed_start(jobs[i], f"stopped after {now - t0:.0f} s, over the multistart "
+                                                         f"time budget", now - t0, status="time limit"))
+    finally:
+        for proc, _, _ in running.values():
+            proc.kill()
+            proc.join()
+    return [results[i] for i in range(len(jobs))]
+
+
+def _failed_start(job, why: str, seconds: float, status: str = "failed") -> Start:
+    guess = job[2]
+    return Start(guess.label, status, why, None, 0, seconds, np.zeros(0), np.zeros(0), np.zeros(0), guess.objective)

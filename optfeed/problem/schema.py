@@ -82,7 +82,7 @@ class ObjectiveIn(_Strict):
 class SolverIn(_Strict):
     pump_interval: Optional[Scalar] = None
     pump_steps: Optional[int] = None
-    elements_per_step: int = 2
+    elements_per_step: int = 4
     degree: int = 3
     starts: int = 4
     smoothing: float = 0.0

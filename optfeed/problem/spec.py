@@ -202,7 +202,7 @@ class Settings:
     """
 
     pump_steps: int = 40
-    elements_per_step: int = 2
+    elements_per_step: int = 4
     degree: int = 3
     starts: int = 4
     smoothing: float = 0.0
