@@ -9,8 +9,6 @@ is free; every process builds its own model from the picklable Problem.
 from __future__ import annotations
 
 import math
-import multiprocessing as mp
-import multiprocessing.connection as mp_connection
 import os
 import time
 from dataclasses import dataclass, field
@@ -22,6 +20,7 @@ from .collocation import Transcription
 from .errors import SimulationError
 from .limits import build_limits
 from .model import build_model
+from .processes import run_killable
 from .problem.spec import Problem
 from .schedule import piecewise_constant
 from .simulate import Simulator
@@ -289,60 +288,24 @@ def multistart(problem: Problem, scaling: Scaling, guesses: list[Guess], workers
     return _parallel(jobs, workers, on_done)
 
 
-def _child(conn, job):
-    try:
-        conn.send(("ok", _worker(job)))
-    except BaseException as exc:  # report, never hang the parent
-        conn.send(("error", f"{type(exc).__name__}: {exc}"))
-    finally:
-        conn.close()
-
-
 def _parallel(jobs, workers, on_done) -> list[Start]:
-    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context("spawn")
     results: dict[int, Start] = {}
-    running: dict[int, tuple] = {}  # index -> (process, connection, start time)
-    queue = list(range(len(jobs)))
 
-    def finish(i, start):
-        results[i] = start
+    def done(i, kind, payload, seconds):
+        if kind == "ok":
+            results[i] = payload
+        else:
+            results[i] = _failed_start(jobs[i], payload, seconds, "time limit" if kind == "killed" else "failed")
         if on_done:
-            on_done(start, len(results), len(jobs))
+            on_done(results[i], len(results), len(jobs))
 
-    try:
-        while len(results) < len(jobs):
-            while queue and len(running) < workers:
-                i = queue.pop(0)
-                parent, child = ctx.Pipe(duplex=False)
-                proc = ctx.Process(target=_child, args=(child, jobs[i]), daemon=True)
-                proc.start()
-                child.close()
-                running[i] = (proc, parent, time.perf_counter())
-            ready = mp_connection.wait([c for _, c, _ in running.values()], timeout=0.25)
-            for i, (proc, conn, t0) in list(running.items()):
-                if conn in ready:
-                    try:
-                        kind, payload = conn.recv()
-                    except EOFError:
-                        kind, payload = "error", f"worker ended with exit code {proc.exitcode}"
-                    proc.join()
-                    del running[i]
-                    finish(i, payload if kind == "ok" else _failed_start(jobs[i], payload, time.perf_counter() - t0))
-            times = sorted(s.seconds for s in results.values() if s.status == "converged")
-            if times:
-                budget = max(MIN_BUDGET_S, BUDGET_FACTOR * times[len(times) // 2])
-                now = time.perf_counter()
-                for i, (proc, conn, t0) in list(running.items()):
-                    if now - t0 > budget:
-                        proc.kill()
-                        proc.join()
-                        del running[i]
-                        finish(i, _failed_start(jobs[i], f"stopped after {now - t0:.0f} s, over the multistart "
-                                                         f"time budget", now - t0, status="time limit"))
-    finally:
-        for proc, _, _ in running.values():
-            proc.kill()
-            proc.join()
+    def over_budget(i, seconds):
+        times = sorted(s.seconds for s in results.values() if s.status == "converged")
+        if times and seconds > max(MIN_BUDGET_S, BUDGET_FACTOR * times[len(times) // 2]):
+            return f"stopped after {seconds:.0f} s, over the multistart time budget"
+        return None
+
+    run_killable(list(enumerate(jobs)), _worker, workers, done, over_budget)
     return [results[i] for i in range(len(jobs))]
 
 

@@ -471,7 +471,7 @@ class _Builder:
         loc = ("solver",)
         if s.pump_interval is not None and s.pump_steps is not None:
             self.fail(loc, "give pump_interval or pump_steps, not both")
-        steps = s.pump_steps if s.pump_steps is not None else 40
+        steps = s.pump_steps if s.pump_steps is not None else Settings().pump_steps
         if s.pump_interval is not None:
             got = self.quantity(s.pump_interval, "time", loc + ("pump_interval",))
             if got and horizon is not None:

@@ -11,6 +11,8 @@ from typing import Literal, Optional, Union
 
 from pydantic import BaseModel, ConfigDict, Field, StrictBool
 
+from .spec import Settings
+
 Scalar = Union[float, int, str]  # a number, or a number with a unit as text
 Text = str
 
@@ -79,16 +81,19 @@ class ObjectiveIn(_Strict):
     turnaround: Scalar = 0.0
 
 
+_DEFAULT = Settings()  # the defaults live in one place: spec.Settings
+
+
 class SolverIn(_Strict):
     pump_interval: Optional[Scalar] = None
-    pump_steps: Optional[int] = None
-    elements_per_step: int = 4
-    degree: int = 3
-    starts: int = 4
-    smoothing: float = 0.0
-    max_iter: int = 3000
-    tolerance: float = 1e-8
-    verify_tolerance: float = 2e-3
+    pump_steps: Optional[int] = None  # default: Settings.pump_steps, applied in load
+    elements_per_step: int = _DEFAULT.elements_per_step
+    degree: int = _DEFAULT.degree
+    starts: int = _DEFAULT.starts
+    smoothing: float = _DEFAULT.smoothing
+    max_iter: int = _DEFAULT.max_iter
+    tolerance: float = _DEFAULT.tolerance
+    verify_tolerance: float = _DEFAULT.verify_tolerance
 
 
 class ProblemIn(_Strict):

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import shutil
 import signal
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..errors import InputError
 from .outputs import write_outputs
 from .runner import DaskExecutor, LocalExecutor, Task, default_workers
 from .spec import Sweep, load_sweep
@@ -75,6 +77,12 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         sweep = load_sweep(sweep)
     folder = Path(folder)
     (folder / "cases").mkdir(parents=True, exist_ok=True)
+    lock = _lock(folder)
+    for leftover in (folder / "cases").glob(".*"):  # half-written files of a killed run
+        if leftover.is_dir():
+            shutil.rmtree(leftover, ignore_errors=True)
+        else:
+            leftover.unlink(missing_ok=True)
     store = Store(folder / STORE_NAME)
     stop = {"flag": False}
     try:
@@ -124,3 +132,20 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
                            len(sweep.cases) - len(todo), failed, rows, time.perf_counter() - t0)
     finally:
         store.close()
+        lock.close()
+
+
+def _lock(folder: Path):
+    """Hold an exclusive lock on the sweep folder for as long as this run lives (the
+    system releases it if the process is killed)."""
+    fh = open(folder / "sweep.lock", "w")
+    try:
+        import fcntl
+
+        fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except ImportError:  # no fcntl (Windows): no lock
+        pass
+    except OSError:
+        fh.close()
+        raise InputError.one(str(folder), None, "--out", "another sweep is running in this folder") from None
+    return fh

@@ -8,16 +8,14 @@ that crashes is recorded as an error. Each case writes the same run folder that
 
 from __future__ import annotations
 
-import ctypes
 import multiprocessing as mp
-import multiprocessing.connection as mp_connection
 import os
 import shutil
-import signal
 import time
-import traceback
 from dataclasses import dataclass
 from pathlib import Path
+
+from ..processes import run_killable
 
 
 @dataclass(frozen=True)
@@ -87,39 +85,13 @@ def _error_outcome(task: Task, status: str, message: str, seconds: float) -> dic
             "seconds": seconds}
 
 
-def _die_with_parent() -> None:
-    """Linux: have this process killed when its parent dies (so a killed sweep
-    leaves no orphans behind); a no-op elsewhere."""
-    try:
-        libc = ctypes.CDLL("libc.so.6", use_errno=True)
-        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
-    except (OSError, AttributeError):
-        pass
-
-
-def _child(conn, task: Task) -> None:
-    _die_with_parent()
-    signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C is the parent's to handle
-    try:
-        conn.send(("ok", run_case(task)))
-    except BaseException as exc:  # noqa: BLE001 - recorded, never raised across processes
-        text = "".join(traceback.format_exception_only(type(exc), exc)).strip()
-        conn.send(("error", text[-500:]))
-    finally:
-        conn.close()
-
-
-def _context():
-    return mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context("spawn")
-
-
 def run_case_limited(task: Task) -> dict:
     """Run a case in a child process, killed after ``task.time_limit`` seconds.
 
     Where this process may not have children (a daemonic Dask worker), run it here
     instead; the limit then cannot be enforced and is only recorded."""
-    t0 = time.perf_counter()
     if mp.current_process().daemon:
+        t0 = time.perf_counter()
         try:
             out = run_case(task)
         except Exception as exc:  # noqa: BLE001
@@ -127,74 +99,35 @@ def run_case_limited(task: Task) -> dict:
         if out["seconds"] > task.time_limit:
             out["message"] += f" (took {out['seconds']:.0f} s, over the {task.time_limit:.0f} s limit)"
         return out
-    ctx = _context()
-    parent, child = ctx.Pipe(duplex=False)
-    proc = ctx.Process(target=_child, args=(child, task), daemon=True)
-    proc.start()
-    child.close()
-    try:
-        if parent.poll(task.time_limit):
-            try:
-                kind, payload = parent.recv()
-            except EOFError:
-                kind, payload = "error", f"the case's process ended with exit code {proc.exitcode}"
-        else:
-            kind, payload = "timeout", None
-    finally:
-        if proc.is_alive():
-            proc.kill()
-        proc.join()
-    seconds = time.perf_counter() - t0
-    if kind == "ok":
-        return payload
-    if kind == "timeout":
-        return _error_outcome(task, "time limit", f"stopped after the {task.time_limit:.0f} s time limit", seconds)
-    return _error_outcome(task, "error", payload, seconds)
+    box = {}
+    LocalExecutor(1).run([task], lambda t: None, lambda t, outcome: box.update(outcome=outcome), lambda: False)
+    return box["outcome"]
 
 
 class LocalExecutor:
-    """Runs up to ``workers`` cases at once, each in its own process."""
+    """Runs up to ``workers`` cases at once, each in its own killable process."""
 
     def __init__(self, workers: int):
         self.workers = max(1, int(workers))
 
     def run(self, tasks, on_start, on_done, should_stop) -> None:
-        ctx = _context()
-        pending = list(tasks)
-        running = {}  # key -> (process, connection, started, task)
-        try:
-            while pending or running:
-                if should_stop():
-                    break
-                while pending and len(running) < self.workers:
-                    task = pending.pop(0)
-                    parent, child = ctx.Pipe(duplex=False)
-                    proc = ctx.Process(target=_child, args=(child, task), daemon=True)
-                    proc.start()
-                    child.close()
-                    running[task.key] = (proc, parent, time.perf_counter(), task)
-                    on_start(task)
-                ready = mp_connection.wait([c for _, c, _, _ in running.values()], timeout=0.2)
-                now = time.perf_counter()
-                for key, (proc, conn, t0, task) in list(running.items()):
-                    if conn in ready:
-                        try:
-                            kind, payload = conn.recv()
-                        except EOFError:
-                            kind, payload = "error", f"the case's process ended with exit code {proc.exitcode}"
-                        proc.join()
-                        del running[key]
-                        on_done(task, payload if kind == "ok" else _error_outcome(task, "error", payload, now - t0))
-                    elif now - t0 > task.time_limit:
-                        proc.kill()
-                        proc.join()
-                        del running[key]
-                        on_done(task, _error_outcome(task, "time limit",
-                                                     f"stopped after the {task.time_limit:.0f} s time limit", now - t0))
-        finally:
-            for proc, _, _, _ in running.values():
-                proc.kill()
-                proc.join()
+        by_key = {t.key: t for t in tasks}
+
+        def done(key, kind, payload, seconds):
+            task = by_key[key]
+            if kind == "ok":
+                on_done(task, payload)
+            elif kind == "killed":
+                on_done(task, _error_outcome(task, "time limit", payload, seconds))
+            else:
+                on_done(task, _error_outcome(task, "error", payload, seconds))
+
+        def over_budget(key, seconds):
+            limit = by_key[key].time_limit
+            return f"stopped after the {limit:.0f} s time limit" if seconds > limit else None
+
+        run_killable([(t.key, t) for t in tasks], run_case, self.workers, done, over_budget,
+                     on_start=lambda key: on_start(by_key[key]), should_stop=should_stop)
 
 
 class DaskExecutor:

@@ -1,0 +1,102 @@
+"""Running work in child processes that can be stopped: the multistart and sweeps.
+
+:func:`run_killable` runs ``func(arg)`` for each item in a process of its own, at
+most ``workers`` at a time. A process is killed when ``over_budget`` says so, and a
+process that crashes is reported, never raised: one bad item never stops the others.
+Children ignore Ctrl-C (the parent decides) and, on Linux, die with their parent, so
+a parent killed outright leaves no orphans behind.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import multiprocessing as mp
+import multiprocessing.connection as mp_connection
+import signal
+import time
+import traceback
+
+
+def context():
+    """fork where available (fast start, no re-import), spawn elsewhere."""
+    return mp.get_context("fork") if "fork" in mp.get_all_start_methods() else mp.get_context("spawn")
+
+
+def die_with_parent() -> None:
+    """Linux: have this process killed when its parent dies; a no-op elsewhere."""
+    try:
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        pass
+
+
+def _child(conn, func, arg) -> None:
+    die_with_parent()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        conn.send(("ok", func(arg)))
+    except BaseException as exc:  # noqa: BLE001 - reported to the parent, never raised here
+        text = "".join(traceback.format_exception_only(type(exc), exc)).strip()
+        conn.send(("error", text[-500:]))
+    finally:
+        conn.close()
+
+
+def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=None, should_stop=None) -> None:
+    """Run ``func(arg)`` for every ``(key, arg)`` in ``items`` in child processes.
+
+    Parameters
+    ----------
+    items : list of (key, arg)
+        ``func`` and each ``arg`` must pickle where fork is not available.
+    workers : int
+        Processes at once.
+    on_done : callable
+        ``on_done(key, kind, payload, seconds)``: kind 'ok' (payload = the return
+        value), 'error' (payload = text) or 'killed' (payload = the budget's reason).
+    over_budget : callable, optional
+        ``over_budget(key, seconds_running) -> str or None``; a text kills the item.
+    on_start : callable, optional
+        ``on_start(key)`` when an item's process starts.
+    should_stop : callable, optional
+        Checked between events; True stops starting new items and kills the running.
+    """
+    ctx = context()
+    pending = list(items)
+    running = {}  # key -> (process, connection, started)
+    try:
+        while pending or running:
+            if should_stop and should_stop():
+                break
+            while pending and len(running) < workers:
+                key, arg = pending.pop(0)
+                parent, child = ctx.Pipe(duplex=False)
+                proc = ctx.Process(target=_child, args=(child, func, arg), daemon=True)
+                proc.start()
+                child.close()
+                running[key] = (proc, parent, time.perf_counter())
+                if on_start:
+                    on_start(key)
+            ready = mp_connection.wait([c for _, c, _ in running.values()], timeout=0.2)
+            now = time.perf_counter()
+            for key, (proc, conn, t0) in list(running.items()):
+                if conn in ready:
+                    try:
+                        kind, payload = conn.recv()
+                    except EOFError:
+                        kind, payload = "error", f"the process ended with exit code {proc.exitcode}"
+                    proc.join()
+                    del running[key]
+                    on_done(key, kind, payload, now - t0)
+                    continue
+                reason = over_budget(key, now - t0) if over_budget else None
+                if reason:
+                    proc.kill()
+                    proc.join()
+                    del running[key]
+                    on_done(key, "killed", reason, now - t0)
+    finally:
+        for proc, _, _ in running.values():
+            proc.kill()
+            proc.join()
