@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from pathlib import Path
 
 from . import status as st
 from .errors import InputError, SimulationError
 from .limits import LimitReport, build_limits, judge
-from .model import Model, build_model
+from .model import build_model
 from .outcome import Outcome, outcome_of
 from .problem import Problem, load_problem
 from .provenance import problem_digest, stamp
@@ -71,8 +71,8 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     schedule : Schedule or path
         A schedule or a schedule file (CSV or YAML).
     end_time : float, optional
-        Run length, h. Default: the problem's fixed end time; for a free end time,
-        the time of the schedule's last row rounded up to the horizon's minimum.
+        Run length, h (see :func:`run_length`): the fixed end time, or for a free
+        end time this value, by default the horizon's guess.
 
     Returns
     -------
@@ -85,7 +85,7 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     """
     if not isinstance(problem, Problem):
         problem = load_problem(problem)
-    tf = _end_time(problem, end_time)
+    tf = run_length(problem, end_time)
     model = build_model(problem)
     if not isinstance(schedule, Schedule):
         schedule = load_schedule(schedule, model.feed_names, tf)
@@ -114,11 +114,26 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record)
 
 
-def _end_time(problem: Problem, end_time):
+def run_length(problem: Problem, end_time: float | None = None, source: str = "--end-time") -> float:
+    """The run length (h) a schedule is judged over.
+
+    A fixed horizon gives its end time (``end_time`` may only repeat it); a free
+    horizon gives ``end_time`` if given (within its bounds), else its guess.
+    ``validate``, ``check``, sweeps and optimize's schedule note all use this rule.
+    """
     h = problem.horizon
-    if end_time is not None:
-        if h.free and not (h.min_end <= end_time <= h.max_end):
-            raise InputError.one(problem.source, None, "horizon.end_time",
-                                 f"end time {end_time:g} h lies outside the allowed {h.min_end:g}..{h.max_end:g} h")
-        return float(end_time)
-    return float(h.end_time if not h.free else h.guess)
+    if end_time is None:
+        return float(h.end_time if not h.free else h.guess)
+    if not (isinstance(end_time, (int, float)) and math.isfinite(end_time) and end_time > 0):
+        raise InputError.one(source, None, "--end-time", f"expected a run length in h above zero, got {end_time!r}")
+    if not h.free:
+        if abs(end_time - h.end_time) > 1e-9 * h.end_time:
+            raise InputError.one(source, None, "--end-time",
+                                 f"{problem.source} fixes the end time at {h.end_time:g} h; --end-time is for a "
+                                 "free end time")
+        return float(h.end_time)
+    if not (h.min_end <= end_time <= h.max_end):
+        raise InputError.one(source, None, "--end-time",
+                             f"end time {end_time:g} h lies outside the allowed {h.min_end:g}..{h.max_end:g} h "
+                             f"of {problem.source}")
+    return float(end_time)

@@ -31,16 +31,17 @@ def _parser() -> argparse.ArgumentParser:
     v = sub.add_parser("validate", help="read and check a problem file; solve nothing")
     v.add_argument("problem", help="problem file (YAML)")
     v.add_argument("--schedule", help="also read and check this schedule file (CSV or YAML)")
+    v.add_argument("--end-time", type=float, help="run length in h (only for a free end time)")
 
     c = sub.add_parser("check", help="simulate a proposed feed schedule and judge every limit")
     c.add_argument("problem", help="problem file (YAML)")
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
-    c.add_argument("--end-time", type=float, help="run length in h (only for a free end time)")
+    c.add_argument("--end-time", type=float, help="run length in h (only for a free end time; default: its guess)")
     _output_args(c)
 
     o = sub.add_parser("optimize", help="find the feed profile that optimises the objective inside every limit")
     o.add_argument("problem", help="problem file (YAML)")
-    o.add_argument("--workers", type=int, help="processes for the multistart (default: free cores)")
+    o.add_argument("--workers", type=int, help="processes for the multistart (default: the cores)")
     o.add_argument("--starts", type=int, help="number of starts (overrides solver.starts)")
     _output_args(o)
 
@@ -50,6 +51,8 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--scheduler", help="address of a Dask distributed scheduler, e.g. tcp://10.0.0.5:8786")
     w.add_argument("--out", help="sweep folder (default: results/<sweep name>); the same folder resumes")
     w.add_argument("--results", default="results", help="parent of the default sweep folder")
+    w.add_argument("--retry-failed", action="store_true",
+                   help="also run again the cases that ended without an answer (errors, time limits, failures)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
     return ap
 
@@ -89,13 +92,14 @@ def main(argv=None) -> int:
 
 
 def _validate(args) -> int:
+    from .check import run_length
     from .model import build_model
     from .problem import load_problem
     from .schedule import load_schedule
 
     problem = load_problem(args.problem)
     model = build_model(problem)
-    tf = problem.horizon.end_time if not problem.horizon.free else problem.horizon.max_end
+    tf = run_length(problem, args.end_time)
     if args.schedule:
         load_schedule(args.schedule, model.feed_names, tf)
     what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
@@ -164,7 +168,7 @@ def _sweep(args) -> int:
     sweep = load_sweep(args.sweep)
     folder = Path(args.out) if args.out else Path(args.results) / sweep.name
     if args.quiet:
-        result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler)
+        result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed)
     else:
         result = _sweep_with_progress(sweep, folder, args)
         print(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
@@ -198,7 +202,8 @@ def _sweep_with_progress(sweep, folder, args):
                 print(f"  [{counts['done']}/{counts['total']}] {row['status']}: {row.get('message', '')[:100]}",
                       file=sys.stderr)
 
-        return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event)
+        return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event,
+                         retry=args.retry_failed)
 
 
 def _with_progress(job):

@@ -206,7 +206,7 @@ class Transcription:
         self.limit_scale = {l.name: _limit_scale(l) for l in path + ends}
 
         # objective (minimised): sense * J / J_scale + smoothing penalty
-        J = m.end_value(xb[:, N], T)
+        J = m.end_value(xb[:, N], T, u[:, M - 1])
         self.J_expr_fun = ca.Function("J", [w], [J])
         obj = self.sense * J / self.j_scale
         if self.settings.smoothing > 0 and M > 1:
@@ -340,5 +340,4 @@ def _gain(sense: float, dJ: float) -> float:
 
 
 def _limit_scale(lim: Limit) -> float:
-    vals = [abs(v) for v in (lim.lower, lim.upper) if v is not None and v != 0]
-    return max(vals) if vals else 1.0
+    return lim.scale()

@@ -195,6 +195,8 @@ def _build(node, env):
         return env[node.id]
     if isinstance(node, ast.BinOp):
         left, right = _build(node.left, env), _build(node.right, env)
+        if isinstance(node.op, ast.Div) and isinstance(right, float) and right == 0.0:
+            raise ExprError("division by a constant zero")
         if isinstance(left, float) and isinstance(right, float):
             try:
                 value = _BINOPS[type(node.op)](left, right)
@@ -208,6 +210,16 @@ def _build(node, env):
         value = _build(node.operand, env)
         return -value if isinstance(node.op, ast.USub) else value
     if isinstance(node, ast.Call):
-        func = FUNCTIONS[node.func.id][0]
-        return func(*[_build(a, env) for a in node.args])
+        name = node.func.id
+        func = FUNCTIONS[name][0]
+        args = [_build(a, env) for a in node.args]
+        if all(isinstance(a, float) for a in args):  # a constant: compute it now, and check it
+            try:
+                value = float(ca.DM(func(*args)))
+            except (ZeroDivisionError, OverflowError, ValueError, RuntimeError):
+                raise ExprError(f"{name}() of constant arguments cannot be computed") from None
+            if not math.isfinite(value):
+                raise ExprError(f"{name}() of constant arguments is not a finite number")
+            return value
+        return func(*args)
     raise ExprError(f"unexpected {type(node).__name__}")  # unreachable after parse()

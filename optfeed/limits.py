@@ -22,6 +22,12 @@ REL_TOL = 1e-6
 ABS_TOL = 1e-9
 
 
+def bound_scale(lower, upper) -> float:
+    """The largest non-zero |bound|, or 1.0 if every bound is zero (or absent)."""
+    values = [abs(v) for v in (lower, upper) if v is not None and v != 0]
+    return max(values) if values else 1.0
+
+
 @dataclass(frozen=True)
 class Limit:
     """One limit: ``lower <= g(t, x, u) <= upper`` over the run, or at its end.
@@ -53,10 +59,18 @@ class Limit:
     at_end: bool
     key: str
 
+    def scale(self) -> float:
+        """Magnitude that relative slack and violations are measured against
+        (internal units): the largest non-zero bound, or 1 for bounds of zero."""
+        return bound_scale(self.lower, self.upper)
+
     def tolerance(self, rel_tol: float = REL_TOL) -> float:
         """Violation tolerance, internal units."""
-        scale = max(abs(v) for v in (self.lower, self.upper) if v is not None)
-        return rel_tol * scale + ABS_TOL
+        return rel_tol * self.scale() + ABS_TOL
+
+    def relative_excess(self, report) -> float:
+        """Worst violation in ``report`` (a LimitReport of this limit) relative to the scale."""
+        return (report.worst_violation / self.factor) / self.scale()
 
 
 @dataclass(frozen=True)
@@ -154,7 +168,8 @@ def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> t
         broken = np.nonzero(slack < -lim.tolerance(rel_tol))[0]
         peak = None
         if lim.upper is not None and lim.upper > 0:
-            use[lim.name] = 100.0 * g[:, i] / lim.upper
+            if not lim.at_end:  # an end bound says nothing about the run before the end
+                use[lim.name] = 100.0 * g[:, i] / lim.upper
             peak = float(np.max(100.0 * values / lim.upper))
         conv = lim.factor
         reports.append(LimitReport(

@@ -79,10 +79,11 @@ class Model:
         """A CasADi Function (t, x, u) -> outputs."""
         return ca.Function(name, [self.t, self.x, self.u], outputs, ["t", "x", "u"], [f"o{i}" for i in range(len(outputs))])
 
-    def end_value(self, xf, tf):
+    def end_value(self, xf, tf, uf=None):
         """Objective value at the end (in the objective's own sense, not negated).
 
-        ``xf`` is the final state (numeric or symbolic), ``tf`` the end time (h).
+        ``xf`` is the final state (numeric or symbolic), ``tf`` the end time (h),
+        ``uf`` the pump rates at the end (L/h; default 0), for objectives that use them.
         """
         p = self.problem
         obj = p.objective
@@ -101,7 +102,7 @@ class Model:
             value = (xf[self.index(obj.product)] * V - prod0) / ca.fmax(fed, 1e-12)
         else:
             f = ca.Function("end", [self.t, self.x, self.u], [self.expression(obj.expression)])
-            value = f(tf, xf, np.zeros(self.nu))
+            value = f(tf, xf, np.zeros(self.nu) if uf is None else uf)
         if obj.integral is not None:
             value = value + xf[self.index("J_int")]
         return value

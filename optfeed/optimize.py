@@ -16,7 +16,7 @@ from .model import build_model
 from .outcome import Outcome, objective_label, outcome_of
 from .problem import Problem, load_problem
 from .provenance import problem_digest, stamp
-from .solve import Start, end_time_info, make_guesses, multistart, scaling_for, solve_one, transcribe
+from .solve import Start, make_guesses, multistart, scaling_for, solve_one, transcribe
 from .units import factor_to
 from .verify import Verification, verify
 
@@ -187,10 +187,11 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         worst_name, worst_val = _worst_violation(trans, best.w, limits)
         where = f"; closest point misses '{worst_name}' by {worst_val}" if worst_name else ""
         if "iteration limit" in statuses or "time limit" in statuses:
-            return result(st.ITERATION_LIMIT, f"no start converged within {problem.settings.max_iter} iterations"
+            return result(st.ITERATION_LIMIT, f"no start converged within its iteration or time budget"
                           f"{where}", starts=summaries)
         if statuses == {"infeasible"}:
-            return result(st.INFEASIBLE, f"infeasible: no feed profile meets every limit{where}", starts=summaries)
+            return result(st.INFEASIBLE, f"infeasible: no start found a feed profile that meets every limit "
+                          f"(IPOPT detected local infeasibility from each){where}", starts=summaries)
         return result(st.FAILED, f"failed: IPOPT ended with {', '.join(sorted({s.ipopt_status for s in starts}))}"
                       f"{where}", starts=summaries)
 
@@ -211,14 +212,15 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         excess = _excess(limits, ver, tol)
         if ver.verified or not excess or ver.objective_rel_diff > tol:
             break
+        trial_backoff = dict(backoff)
         for name, amount in excess.items():
-            backoff[name] = backoff.get(name, 0.0) + 1.5 * amount
+            trial_backoff[name] = trial_backoff.get(name, 0.0) + 1.5 * amount
         progress(f"backing off {', '.join(excess)} (round {round_})", len(starts), len(starts))
-        trial_trans = transcribe(problem, scaling, model, limits, backoff)
+        trial_trans = transcribe(problem, scaling, model, limits, trial_backoff)
         trial = solve_one(trial_trans, best.w, f"{best.label}, backed off")
         if trial.status != "converged" or trial.objective is None:
             break
-        best, trans = trial, trial_trans
+        best, trans, backoff = trial, trial_trans, trial_backoff
         unpacked = trans.unpack(best.w)
         ver = verify(model, limits, unpacked, best.objective, tol)
     if backoff:
@@ -228,8 +230,8 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     values_out = []
     for lim, rep in zip(limits, ver.limits):
         up, low = marg.get(lim.name, (0.0, 0.0))
-        scale = max([abs(v) for v in (rep.lower, rep.upper) if v is not None and v != 0] + [1.0])
-        active = bool(rep.min_slack <= tol * scale)  # at its bound, within the verification tolerance
+        # at its bound, within the verification tolerance
+        active = bool(rep.min_slack / lim.factor <= tol * lim.scale())
         values_out.append(LimitValue(rep, active, up * f_obj / lim.factor, low * f_obj / lim.factor))
     if "end time" in marg:
         up, low = marg["end time"]
@@ -239,6 +241,8 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     if backoff:
         kept = "; kept clear of " + ", ".join(
             f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
+    if best.ipopt_status != "Solve_Succeeded":
+        kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
     if ver.verified:
         status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
     else:
@@ -261,8 +265,7 @@ def _excess(limits, ver, tol) -> dict:
     for lim, rep in zip(limits, ver.limits):
         if lim.kind == "pump" or rep.worst_violation <= 0:
             continue
-        scale = max([abs(v) for v in (rep.lower, rep.upper) if v is not None and v != 0] + [1e-300])
-        if rep.worst_violation / scale > tol:
+        if lim.relative_excess(rep) > tol:
             out[lim.name] = rep.worst_violation / lim.factor
     return out
 
@@ -286,7 +289,7 @@ def _blocked_at_start(model, limits) -> str:
             word = "above" if hi else "below"
             return (f"'{lim.name}' cannot be met at the start: its value at t = 0 is "
                     f"{v * lim.factor:.4g} {lim.unit}, {word} the limit {bound * lim.factor:.4g} {lim.unit} "
-                    f"whatever the pumps do (key {lim.key})")
+                    f"at every combination of pump limits (key {lim.key})")
     return ""
 
 

@@ -12,9 +12,15 @@ from __future__ import annotations
 import ctypes
 import multiprocessing as mp
 import multiprocessing.connection as mp_connection
+import os
 import signal
 import time
 import traceback
+
+
+def cpu_count() -> int:
+    """Cores this process may use."""
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def context():
@@ -31,8 +37,10 @@ def die_with_parent() -> None:
         pass
 
 
-def _child(conn, func, arg) -> None:
+def _child(conn, func, arg, parent_pid) -> None:
     die_with_parent()
+    if os.getppid() != parent_pid:  # the parent died before we asked to die with it
+        os._exit(1)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     try:
         conn.send(("ok", func(arg)))
@@ -72,7 +80,7 @@ def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=
             while pending and len(running) < workers:
                 key, arg = pending.pop(0)
                 parent, child = ctx.Pipe(duplex=False)
-                proc = ctx.Process(target=_child, args=(child, func, arg), daemon=True)
+                proc = ctx.Process(target=_child, args=(child, func, arg, os.getpid()), daemon=True)
                 proc.start()
                 child.close()
                 running[key] = (proc, parent, time.perf_counter())

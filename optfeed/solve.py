@@ -20,7 +20,7 @@ from .collocation import Transcription
 from .errors import SimulationError
 from .limits import build_limits
 from .model import build_model
-from .processes import run_killable
+from .processes import cpu_count, run_killable
 from .problem.spec import Problem
 from .schedule import piecewise_constant
 from .simulate import Simulator
@@ -29,7 +29,7 @@ from .simulate import Simulator
 IPOPT_STATUS = {
     "Solve_Succeeded": "converged",
     "Solved_To_Acceptable_Level": "converged",
-    "Feasible_Point_Found": "converged",
+    "Feasible_Point_Found": "failed",  # feasible is not optimal
     "Infeasible_Problem_Detected": "infeasible",
     "Restoration_Failed": "failed",
     "Maximum_Iterations_Exceeded": "iteration limit",
@@ -159,7 +159,7 @@ def make_guesses(problem: Problem, model, count: int) -> list[Guess]:
             traj = sim.run(sched, T, min_points=max(400, 4 * M))
         except SimulationError:
             continue
-        J = model.end_value(traj.final, T) if problem.objective is not None else None
+        J = model.end_value(traj.final, T, traj.u[-1]) if problem.objective is not None else None
         out.append(Guess(label, steps, T, traj.t, traj.x, None if J is None else float(J)))
     return out
 
@@ -269,15 +269,14 @@ MIN_BUDGET_S = 5.0
 def multistart(problem: Problem, scaling: Scaling, guesses: list[Guess], workers: int | None = None,
                on_done=None) -> list[Start]:
     """Solve from every guess; in parallel processes when ``workers`` > 1 (default:
-    the free cores, at most one per start), in this process otherwise.
+    the cores this process may use, at most one per start), in this process otherwise.
 
     ``on_done(start, n_done, n_total)`` is called as each start finishes. Returns the
     starts in the order of ``guesses``.
     """
     jobs = [(problem, scaling, g) for g in guesses]
     if workers is None:
-        cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-        workers = min(len(jobs), cores)
+        workers = min(len(jobs), cpu_count())
     if workers <= 1 or len(jobs) == 1:
         out = []
         for job in jobs:

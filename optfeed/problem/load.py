@@ -23,6 +23,12 @@ from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Probl
 from .yamlio import Lines, key_text, read_yaml
 
 _NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
+_FOLDER_RE = re.compile(r"^[A-Za-z0-9_\-][A-Za-z0-9_.\-]{0,79}$")
+
+
+def _folder_name(name: str) -> str:
+    """A problem name safe for a result folder (a file stem may hold anything)."""
+    return name if _FOLDER_RE.match(name) else (re.sub(r"[^A-Za-z0-9_.\-]+", "_", name).lstrip(".") or "problem")[:80]
 
 
 def load_problem(path) -> Problem:
@@ -180,6 +186,9 @@ class _Builder:
     def build(self) -> Problem:
         r = self.raw
         names = self._names()
+        if r.name and not _FOLDER_RE.match(r.name):
+            self.fail(("name",), f"name {r.name!r} is used for result folders: letters, digits, '_', '-' and '.', "
+                                 "not starting with '.'")
         species_dims = {}
         species_initial = {}
         for name, sp in r.species.items():
@@ -225,10 +234,12 @@ class _Builder:
         objective = self._objective(end_env)
         settings = self._settings(horizon)
 
+        if not self.issues:
+            self._dry_build(parameters, species, rates, vessel, bounds, objective)
         if self.issues:
             raise InputError(self.issues)
         return Problem(
-            name=r.name or Path(self.source).stem,
+            name=_folder_name(r.name or Path(self.source).stem),
             description=r.description.strip(),
             source=self.source,
             species=tuple(species),
@@ -244,6 +255,32 @@ class _Builder:
             data=self.data,
         )
 
+    def _dry_build(self, parameters, species, rates, vessel, bounds, objective):
+        """Compile every expression once with symbols for everything that varies,
+        so that a constant part that cannot be computed (a division by a zero
+        parameter, say) is reported here, with its key."""
+        import casadi as ca
+
+        env = {n: ca.SX.sym(n) for n in [s.name for s in species] + list(self.raw.feeds) +
+               ["t", "V", "D", "F_total", "OUR", "heat_load"] +
+               [f"fed_{n}" for n in self.raw.species] + [n for n, _ in rates]}
+        env.update(parameters)
+        items = [(("rates", n), e) for n, e in rates]
+        items += [(("derivatives" if s.raw else "reactions", s.name), s.rate) for s in species]
+        if vessel is not None and vessel.oxygen is not None:
+            items.append((("vessel", "oxygen", "uptake"), vessel.oxygen.uptake))
+        items += [(tuple(b.key.replace("[", ".").replace("]", "").split(".")) + ("expression",), b.expression)
+                  for b in bounds]
+        if objective is not None:
+            items += [(("objective", k), getattr(objective, k)) for k in ("expression", "integral")
+                      if getattr(objective, k) is not None]
+        for loc, e in items:
+            loc = tuple(int(p) if isinstance(p, str) and p.isdigit() else p for p in loc)
+            try:
+                ex.to_casadi(e, env)
+            except ex.ExprError as exc:
+                self.fail(loc, f"{exc} (in {e.text!r})")
+
     def _names(self):
         seen = {}
         r = self.raw
@@ -253,8 +290,8 @@ class _Builder:
                 loc = (group, name)
                 if not _NAME_RE.match(name):
                     self.fail(loc, f"name {name!r} must start with a letter and hold only letters, digits and '_'")
-                elif name in RESERVED:
-                    self.fail(loc, f"name {name!r} is reserved ({', '.join(RESERVED)})")
+                elif name in RESERVED or name.startswith("fed_"):
+                    self.fail(loc, f"name {name!r} is reserved ({', '.join(RESERVED)} and fed_<species>)")
                 elif name in ex.FUNCTIONS:
                     self.fail(loc, f"name {name!r} is a function name")
                 elif name in seen:

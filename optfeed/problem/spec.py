@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from ..expr import Expr
 
-RESERVED = ("t", "V", "D", "F_total", "OUR", "heat_load")
+RESERVED = ("t", "V", "D", "F_total", "OUR", "heat_load", "J_int")
 
 
 @dataclass(frozen=True)

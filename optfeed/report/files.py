@@ -43,6 +43,7 @@ class RunFolder:
             raise FileExistsError(f"{self.target} already exists")
         self.target.parent.mkdir(parents=True, exist_ok=True)
         self.tmp = Path(tempfile.mkdtemp(prefix=f".{self.target.name}.", dir=self.target.parent))
+        os.chmod(self.tmp, 0o755)  # mkdtemp makes it private; a run folder is for sharing
         return self.tmp
 
     def __exit__(self, exc_type, exc, tb):
@@ -51,6 +52,14 @@ class RunFolder:
             return False
         os.replace(self.tmp, self.target)
         return False
+
+
+def _best_effort_figure(folder: Path, draw) -> None:
+    """Draw a figure; if drawing fails, say so in a file rather than lose the run."""
+    try:
+        draw()
+    except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figure a convenience
+        (folder / "figure-not-drawn.txt").write_text(f"the figure could not be drawn: {exc}\n")
 
 
 def write_json(path: Path, data) -> None:
@@ -170,8 +179,8 @@ def write_check_run(result, target, figures: bool = True) -> Path:
             header, rows = trajectory_table(model, result.trajectory)
             write_csv(tmp / "trajectory.csv", header, rows)
             if figures:
-                run_figure(model, result.trajectory, result.use, tmp / "figure.png",
-                           title=f"{result.problem.name}: check - {result.status}")
+                _best_effort_figure(tmp, lambda: run_figure(model, result.trajectory, result.use, tmp / "figure.png",
+                                                            title=f"{result.problem.name}: check - {result.status}"))
     return Path(target)
 
 
@@ -237,8 +246,10 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
         if result.trajectory is not None:
             model = build_model(result.problem)
             units = {f.name: f.unit for f in result.problem.feeds}
+            end = f" --end-time {result.end_time!r}" if result.problem.horizon.free else ""
             note = (f"Pump schedule from optfeed optimize ({result.status}) for {result.problem.name}.\n"
-                    f"Run length: {result.end_time!r} h. Check it with: optfeed check PROBLEM --schedule schedule.csv")
+                    f"Run length: {result.end_time!r} h. Check it with: "
+                    f"optfeed check PROBLEM --schedule schedule.csv{end}")
             (tmp / "schedule.csv").write_text(schedule_csv_text(result.schedule, units, note))
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory))
             pts = result.points
@@ -246,6 +257,7 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
                      [f"{n} [L/h]" for n in model.feed_names]
             write_csv(tmp / "points.csv", header, np.column_stack([pts["t"], pts["x"], pts["u"]]))
             if figures:
-                run_figure(model, result.trajectory, result.verification.use, tmp / "figure.png",
-                           title=f"{result.problem.name}: optimize - {result.status}", points=pts)
+                _best_effort_figure(tmp, lambda: run_figure(
+                    model, result.trajectory, result.verification.use, tmp / "figure.png",
+                    title=f"{result.problem.name}: optimize - {result.status}", points=pts))
     return Path(target)

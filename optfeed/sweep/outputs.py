@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import math
+import os
 import re
 from pathlib import Path
 
@@ -49,7 +50,8 @@ def write_outputs(sweep, rows, folder: Path) -> None:
     folder = Path(folder)
     sense = sense_of(rows, sweep)
     paths = list(sweep.varied)
-    with (folder / "summary.csv").open("w", newline="") as fh:
+    tmp_csv = folder / ".summary.csv.tmp"
+    with tmp_csv.open("w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["key", "label", "problem"] + paths + ["status", "objective", "objective_unit", "end_time_h",
                                                           "seconds", "message", "run_dir"])
@@ -59,9 +61,15 @@ def write_outputs(sweep, rows, folder: Path) -> None:
                        [r["status"], "" if r["objective"] is None else f"{r['objective']:.10g}",
                         r.get("objective_unit") or "", "" if r["end_time_h"] is None else f"{r['end_time_h']:.6g}",
                         "" if r["seconds"] is None else f"{r['seconds']:.3f}", r["message"] or "", r["run_dir"] or ""])
+    os.replace(tmp_csv, folder / "summary.csv")
     best = ranked(rows, sense)
-    (folder / "summary.txt").write_text(summary_text(sweep, rows, best))
-    _figures(sweep, rows, best, folder, paths)
+    tmp_txt = folder / ".summary.txt.tmp"
+    tmp_txt.write_text(summary_text(sweep, rows, best))
+    os.replace(tmp_txt, folder / "summary.txt")
+    try:
+        _figures(sweep, rows, best, folder, paths)
+    except Exception as exc:  # noqa: BLE001 - figures are a convenience; the CSV is the record
+        (folder / "figures" / "NOT_DRAWN.txt").write_text(f"figures could not be drawn: {exc}\n")
 
 
 def summary_text(sweep, rows, best, top: int = 10) -> str:
@@ -78,7 +86,7 @@ def summary_text(sweep, rows, best, top: int = 10) -> str:
         lines.append("")
     bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in ("queued", "running")]
     if bad:
-        lines.append("Cases without a verified answer:")
+        lines.append("Cases that are not optimal and verified / within limits:")
         for r in bad:
             lines.append(f"  {r['status']:<24} {r['label']}: {(r['message'] or '')[:160]}")
         lines.append("")

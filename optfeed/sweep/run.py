@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import shutil
 import signal
+import sqlite3
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -52,11 +53,12 @@ class SweepResult:
         return 0 if self.failed == 0 else 1
 
 
-BAD = ("failed", "error", "time limit", "simulation failed")
+# statuses of a case that did not get an answer (limit broken and infeasible are answers)
+BAD = ("failed", "error", "time limit", "simulation failed", "iteration limit", "converged, not verified")
 
 
 def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None = None,
-              on_event=None) -> SweepResult:
+              on_event=None, retry: bool = False) -> SweepResult:
     """Run every case of ``sweep`` (a Sweep or a sweep file) not already finished in
     ``folder``'s store.
 
@@ -71,6 +73,9 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         Address of a Dask distributed scheduler (``tcp://host:8786``).
     on_event : callable, optional
         ``on_event(kind, row_or_none, counts)`` with kind 'start', 'done'.
+    retry : bool
+        Also run again the cases that ended without an answer (errors, time
+        limits, failures), e.g. after a cluster worker was lost.
     """
     t0 = time.perf_counter()
     if not isinstance(sweep, Sweep):
@@ -83,11 +88,18 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
             shutil.rmtree(leftover, ignore_errors=True)
         else:
             leftover.unlink(missing_ok=True)
-    store = Store(folder / STORE_NAME)
     stop = {"flag": False}
+    store = None
     try:
+        try:
+            store = Store(folder / STORE_NAME)
+        except sqlite3.DatabaseError as exc:
+            raise InputError.one(str(folder / STORE_NAME), None, "", f"the sweep store cannot be read ({exc}); "
+                                 "move it away to start afresh") from None
         store.queue(sweep.cases, sweep.job)
         done = store.done_keys()
+        if retry:
+            done -= {r["key"] for r in store.rows() if r["status"] in BAD}
         todo = [c for c in sweep.cases if c.key not in done]
         tasks = [Task(c.key, c.data, c.source, sweep.job, sweep.schedule_text,
                       None if sweep.schedule_path is None else Path(sweep.schedule_path).name,
@@ -131,7 +143,8 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
                                                            and r["status"] not in ("queued", "running")),
                            len(sweep.cases) - len(todo), failed, rows, time.perf_counter() - t0)
     finally:
-        store.close()
+        if store is not None:
+            store.close()
         lock.close()
 
 

@@ -9,13 +9,12 @@ that crashes is recorded as an error. Each case writes the same run folder that
 from __future__ import annotations
 
 import multiprocessing as mp
-import os
 import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..processes import run_killable
+from ..processes import cpu_count, run_killable
 
 
 @dataclass(frozen=True)
@@ -34,7 +33,7 @@ class Task:
 
 def run_case(task: Task) -> dict:
     """Run one case in this process and write its run folder; return its outcome."""
-    from ..check import check
+    from ..check import check, run_length
     from ..optimize import optimize
     from ..problem import problem_from_data
     from ..report import write_check_run, write_optimize_run
@@ -58,8 +57,7 @@ def run_case(task: Task) -> dict:
         sched_file = target.parent / f".{task.key}.{task.schedule_name}"
         sched_file.write_text(task.schedule_text)
         try:
-            tf = problem.horizon.end_time if not problem.horizon.free else None
-            schedule = load_schedule(sched_file, [f.name for f in problem.feeds], tf)
+            schedule = load_schedule(sched_file, [f.name for f in problem.feeds], run_length(problem))
         finally:
             sched_file.unlink()
         r = check(problem, schedule)
@@ -148,7 +146,7 @@ class DaskExecutor:
         with Client(self.address, timeout="30s") as client:
             futures = {}
             for task in tasks:
-                fut = client.submit(run_case_limited, task, key=f"optfeed-{task.key}", pure=False)
+                fut = client.submit(run_case_limited, task, pure=False)  # a fresh key per run
                 futures[fut] = task
                 on_start(task)
             for fut in as_completed(list(futures)):
@@ -165,4 +163,4 @@ class DaskExecutor:
 
 
 def default_workers() -> int:
-    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    return cpu_count()

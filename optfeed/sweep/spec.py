@@ -124,6 +124,8 @@ def load_sweep(path) -> Sweep:
         schedule_text = read_text(schedule_path)
     elif "schedule" in data:
         fail(("schedule",), "a schedule is only used with job: check")
+    if isinstance(data.get("time_limit"), (int, float)):
+        fail(("time_limit",), "give the time limit with its unit, e.g. '20 min'")
     try:
         limit = to_internal(parse_quantity(data.get("time_limit", "30 min"), "time")) * 3600.0
     except ValueError as exc:
@@ -166,6 +168,8 @@ def load_sweep(path) -> Sweep:
                 where = ", ".join(f"{k} = {v}" for k, v in values.items())
                 raise InputError([Issue(i.file, i.line, i.key, f"{i.message} (in the case {where})")
                                   for i in exc.issues]) from None
+            if job == "check":
+                _check_schedule(schedule_path, problem)
             key = _case_key(problem, job, schedule_text)
             if key in seen:
                 continue
@@ -177,6 +181,13 @@ def load_sweep(path) -> Sweep:
         schedule_text=schedule_text, time_limit=float(limit), cases=tuple(cases), varied=varied,
         grid_paths=grid_paths,
     )
+
+
+def _check_schedule(schedule_path, problem) -> None:
+    from ..check import run_length
+    from ..schedule import load_schedule
+
+    load_schedule(schedule_path, [f.name for f in problem.feeds], run_length(problem))
 
 
 def _case_key(problem, job, schedule_text) -> str:
@@ -233,7 +244,8 @@ def _values(spec, loc, fail) -> list:
         if "range" in spec:
             if nums[2] <= 0 or (nums[1] - nums[0]) / nums[2] > 100000:
                 fail(loc, "range step must be above zero and give at most 100000 values")
-            values = list(np.arange(nums[0], nums[1], nums[2]))
+            count = int(np.floor((nums[1] - nums[0]) / nums[2] - 1e-9)) + 1  # stop excluded
+            values = [nums[0] + i * nums[2] for i in range(max(count, 0))]
         else:
             if int(nums[2]) != nums[2] or not 1 <= nums[2] <= 100000:
                 fail(loc, "linspace count must be a whole number from 1 to 100000")
