@@ -14,8 +14,9 @@ Variables (all scaled by nominal magnitudes, so IPOPT sees numbers near 1):
     T  : 1              end time (h), only if free
 
 Constraints: collocation residuals and continuity (equalities); every path limit
-at t = 0 and at every collocation point (Radau includes each element's end);
-every end limit at T. Pump limits are variable bounds.
+at t = 0 and at every collocation point (Radau includes each element's end), and
+a limit that depends on the pump rates also at the start of every pump step; every
+end limit at T. Pump limits are variable bounds.
 
 :class:`Transcription` builds all of this and keeps the map back from flat vectors
 to named time series (:meth:`unpack`) and from limits to their rows
@@ -194,6 +195,24 @@ class Transcription:
             lbg.append(np.tile(lo, npts))
             ubg.append(np.tile(hi, npts))
             row += len(path) * npts
+        # a limit that depends on the pump rates (D, F_total, a feed) is also checked
+        # at the start of every pump step, where the new rate meets the old state
+        u_dep = [l for l in path if ca.depends_on(ca.SX(l.expr), m.u)]
+        if u_dep and M > 1:
+            cols = [s_ * k for s_ in range(1, M)]
+            scales = np.array([_limit_scale(l) for l in u_dep])
+            sfun = ca.Function("gstep", [m.t, m.x, m.u], [ca.vertcat(*[ca.SX(l.expr) for l in u_dep])])
+            t_steps = ca.DM(np.array(cols) / N).T * T
+            gvals = sfun.map(M - 1)(t_steps, xb[:, cols], u[:, 1:]) / ca.repmat(ca.DM(scales), 1, M - 1)
+            g.append(ca.vec(gvals))
+            for i, lim in enumerate(u_dep):
+                idx = row + i + len(u_dep) * np.arange(M - 1)
+                self.limit_rows[lim.name] = np.concatenate([self.limit_rows[lim.name], idx])
+            lo = np.array([(-np.inf if l.lower is None else self._lower(l) / s) for l, s in zip(u_dep, scales)])
+            hi = np.array([(np.inf if l.upper is None else self._upper(l) / s) for l, s in zip(u_dep, scales)])
+            lbg.append(np.tile(lo, M - 1))
+            ubg.append(np.tile(hi, M - 1))
+            row += len(u_dep) * (M - 1)
         if ends:
             scales = np.array([_limit_scale(l) for l in ends])
             efun = ca.Function("gend", [m.t, m.x, m.u], [ca.vertcat(*[ca.SX(l.expr) for l in ends])])

@@ -206,3 +206,21 @@ def test_unverified_answer_is_not_called_optimal(write):
     assert r.status == "converged, not verified", r.message
     assert "optimal" not in r.status
     assert r.exit_code == 1
+
+
+def test_limit_on_the_dilution_rate_holds_at_every_pump_step_start(write, tmp_path):
+    # D = F/V is largest right where a pump step starts; the NLP must check it there
+    # too, or the re-simulated schedule would exceed it between collocation points
+    from optfeed.report import write_optimize_run
+
+    text = OXYGEN_LIMITED.format(pump=0.05).replace(
+        "    horizon:", "    limits:\n      - {name: dilution cap, expression: D, max: 0.02 1/h}\n    horizon:")
+    path = write("dcap.yaml", text)
+    r = optimize(path)
+    assert r.status == "optimal, verified", r.message
+    assert "kept clear" not in r.message  # no back-off was needed
+    cap = marginal(r, "dilution cap")
+    assert cap.active and cap.marginal_max > 0
+    out = write_optimize_run(r, tmp_path / "run")
+    c = optfeed.check(path, out / "schedule.csv")
+    assert c.status == "within limits", c.message
