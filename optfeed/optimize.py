@@ -11,7 +11,7 @@ import numpy as np
 
 from . import status as st
 from .errors import InputError
-from .limits import LimitReport, build_limits
+from .limits import REL_TOL, LimitReport, build_limits
 from .model import build_model
 from .outcome import Outcome, objective_label, outcome_of
 from .problem import Problem, load_problem
@@ -209,7 +209,7 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
         # the NLP meets the limits at its points; if the re-simulated schedule
         # exceeds one between them, keep the NLP that much further away and re-solve
-        excess = _excess(limits, ver, tol)
+        excess = _excess(limits, ver, REL_TOL)
         if ver.verified or not excess or ver.objective_rel_diff > tol:
             break
         trial_backoff = dict(backoff)
@@ -217,7 +217,7 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
             trial_backoff[name] = trial_backoff.get(name, 0.0) + 1.5 * amount
         progress(f"backing off {', '.join(excess)} (round {round_})", len(starts), len(starts))
         trial_trans = transcribe(problem, scaling, model, limits, trial_backoff)
-        trial = solve_one(trial_trans, best.w, f"{best.label}, backed off")
+        trial = solve_one(trial_trans, best.w, f"{best.label}, backed off", warm=(best.lam_g, best.lam_x))
         if trial.status != "converged" or trial.objective is None:
             break
         best, trans, backoff = trial, trial_trans, trial_backoff

@@ -183,9 +183,10 @@ def transcribe(problem: Problem, scaling: Scaling, model=None, limits=None, back
 
 # Barrier strategies tried in turn until one converges. A monotone barrier from a
 # small initial mu suits these problems (guesses from simulation are near-feasible);
-# the adaptive strategy rescues some of the rest. The first gets at most
-# FIRST_PROFILE_ITER iterations: a start that wanders that long rarely converges
-# with it. Measured on the shipped examples and the published benchmarks.
+# the adaptive strategy rescues some of the rest. Each but the last gets at most
+# FIRST_PROFILE_ITER iterations (a start that wanders that long rarely converges
+# with it), and all together at most solver.max_iter. Measured on the shipped
+# examples and the published benchmarks.
 IPOPT_PROFILES = (
     {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-3},
     {"ipopt.mu_strategy": "adaptive"},
@@ -211,14 +212,30 @@ def ipopt_options(settings, profile: dict | None = None, quiet: bool = True) -> 
     }
 
 
-def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=None) -> Start:
+WARM_PROFILE = {
+    "ipopt.warm_start_init_point": "yes", "ipopt.mu_init": 1e-6, "ipopt.warm_start_bound_push": 1e-9,
+    "ipopt.warm_start_mult_bound_push": 1e-9, "ipopt.mu_strategy": "monotone",
+}
+
+
+def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=None, warm=None) -> Start:
     """Solve the NLP from ``w0``, trying each of :data:`IPOPT_PROFILES` until one
-    converges; never raises for a solver failure. Iterations and time add up."""
+    converges; never raises for a solver failure. Iterations and time add up.
+
+    ``warm`` = (lam_g, lam_x), multipliers of a nearby solution: then a warm start
+    (small barrier, the given multipliers) is tried first."""
     best, iterations, seconds = None, 0, 0.0
-    for k, profile in enumerate(IPOPT_PROFILES):
-        if k == 0 and len(IPOPT_PROFILES) > 1:
-            profile = {**profile, "ipopt.max_iter": min(trans.settings.max_iter, FIRST_PROFILE_ITER)}
-        start = _solve_profile(trans, w0, label, guess_objective, profile)
+    profiles = list(IPOPT_PROFILES)
+    if warm is not None:
+        profiles.insert(0, WARM_PROFILE)
+    for k, profile in enumerate(profiles):
+        left = trans.settings.max_iter - iterations  # max_iter bounds the start as a whole
+        if left <= 0:
+            break
+        cap = min(left, FIRST_PROFILE_ITER) if k < len(profiles) - 1 else left
+        profile = {**profile, "ipopt.max_iter": cap}
+        start = _solve_profile(trans, w0, label, guess_objective, profile,
+                               warm if profile is WARM_PROFILE or "ipopt.warm_start_init_point" in profile else None)
         iterations += start.iterations
         seconds += start.seconds
         if best is None or start.status == "converged":
@@ -231,11 +248,12 @@ def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=
     return best
 
 
-def _solve_profile(trans, w0, label, guess_objective, profile) -> Start:
+def _solve_profile(trans, w0, label, guess_objective, profile, warm=None) -> Start:
     solver = ca.nlpsol("optfeed", "ipopt", trans.nlp, ipopt_options(trans.settings, profile))
     t0 = time.perf_counter()
+    extra = {} if warm is None else {"lam_g0": warm[0], "lam_x0": warm[1]}
     try:
-        res = solver(x0=w0, lbx=trans.lbx, ubx=trans.ubx, lbg=trans.lbg, ubg=trans.ubg)
+        res = solver(x0=w0, lbx=trans.lbx, ubx=trans.ubx, lbg=trans.lbg, ubg=trans.ubg, **extra)
     except RuntimeError as exc:  # evaluation errors surface here
         return Start(label, "failed", f"error: {str(exc).splitlines()[-1][:120]}", None, 0,
                      time.perf_counter() - t0, w0, np.zeros(trans.n_g), np.zeros(trans.n_w), guess_objective)

@@ -75,7 +75,9 @@ def with_otr(problem, value):
 
 
 @pytest.mark.parametrize("pump,name,delta,change", [
-    (0.05, "OTR ceiling", 0.4, with_otr),          # mmol/L/h on 40
+    # mmol/L/h on 40; wide enough that the small back-off each solve may apply
+    # (re-simulation keeps the answer inside the ceiling) does not blur the difference
+    (0.05, "OTR ceiling", 2.0, with_otr),
     (0.012, "pump sugar", 0.0002, lambda p, v: with_feed(p, max_rate=v)),  # L/h on 0.012
 ])
 def test_marginal_matches_finite_difference(write, pump, name, delta, change):
@@ -218,7 +220,7 @@ def test_limit_on_the_dilution_rate_holds_at_every_pump_step_start(write, tmp_pa
     path = write("dcap.yaml", text)
     r = optimize(path)
     assert r.status == "optimal, verified", r.message
-    assert "kept clear" not in r.message  # no back-off was needed
+    assert "kept clear of 'dilution cap'" not in r.message  # imposed at step starts: no back-off needed
     cap = marginal(r, "dilution cap")
     assert cap.active and cap.marginal_max > 0
     out = write_optimize_run(r, tmp_path / "run")

@@ -196,9 +196,10 @@ class Settings:
     tolerance : float
         IPOPT convergence tolerance.
     verify_tolerance : float
-        Largest relative difference between the NLP and the re-simulated objective,
-        and largest violation of a limit relative to its bound, for an answer to
-        count as verified.
+        Largest relative difference between the NLP and the re-simulated
+        objective for an answer to count as verified. (Limits are judged as
+        ``optfeed check`` judges them, to 1e-6 of their bound; a limit exceeded
+        between collocation points is backed off and the problem re-solved.)
     """
 
     pump_steps: int = 40
