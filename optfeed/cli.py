@@ -107,25 +107,42 @@ def _validate(args) -> int:
     return st.EXIT_OK
 
 
-def _check(args) -> int:
-    from .check import check
-    from .report import check_text, write_check_run
-    from .report.files import check_summary, default_run_dir
+def _run_folder(args, problem_name: str, job: str) -> Path:
+    """The run folder of a check or optimize run; it must not exist yet."""
+    from .report.files import default_run_dir
 
-    result = check(args.problem, args.schedule, end_time=args.end_time)
-    target = Path(args.out) if args.out else default_run_dir(Path(args.results), result.problem.name, "check")
+    target = Path(args.out) if args.out else default_run_dir(Path(args.results), problem_name, job)
     if target.exists():
         raise InputError.one(str(target), None, "--out", "run folder already exists; choose another")
-    write_check_run(result, target, figures=not args.no_figures)
+    return target
+
+
+def _show(args, result, summary: dict, text: str, target: Path, written: str) -> int:
+    """Print a result as --json, --quiet or the full report asked for."""
     if args.json:
-        print(json.dumps({**check_summary(result), "run_folder": str(target)}, indent=2))
+        print(json.dumps({**summary, "run_folder": str(target)}, indent=2))
     elif args.quiet:
         print(f"{result.status}: {result.message}")
     else:
-        print(check_text(result), end="")
-        print(f"\nWritten: {target}/ (summary.json, report.txt, limits.csv, trajectory.csv"
-              + (", figure.png)" if not args.no_figures and result.trajectory is not None else ")"))
+        print(text, end="")
+        print(f"\nWritten: {target}/{written}")
     return result.exit_code
+
+
+def _check(args) -> int:
+    from .check import check
+    from .problem import load_problem
+    from .report import check_text, write_check_run
+    from .report.files import check_summary
+
+    problem = load_problem(args.problem)
+    target = _run_folder(args, problem.name, "check")
+    result = check(problem, args.schedule, end_time=args.end_time)
+    write_check_run(result, target, figures=not args.no_figures)
+    files = "summary.json, report.txt, limits.csv, trajectory.csv"
+    if not args.no_figures and result.trajectory is not None:
+        files += ", figure.png"
+    return _show(args, result, check_summary(result), check_text(result), target, f" ({files})")
 
 
 def _optimize(args) -> int:
@@ -134,29 +151,20 @@ def _optimize(args) -> int:
     from .optimize import optimize
     from .problem import load_problem
     from .report import optimize_text, write_optimize_run
-    from .report.files import default_run_dir, optimize_summary
+    from .report.files import optimize_summary
 
     problem = load_problem(args.problem)
     if args.starts is not None:
         if not 1 <= args.starts <= 64:
             raise InputError.one("--starts", None, "--starts", "must be between 1 and 64")
         problem = dataclasses.replace(problem, settings=dataclasses.replace(problem.settings, starts=args.starts))
-    target = Path(args.out) if args.out else default_run_dir(Path(args.results), problem.name, "optimize")
-    if target.exists():
-        raise InputError.one(str(target), None, "--out", "run folder already exists; choose another")
+    target = _run_folder(args, problem.name, "optimize")
     if args.quiet or args.json:
         result = optimize(problem, workers=args.workers)
     else:
         result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb))
     write_optimize_run(result, target, figures=not args.no_figures)
-    if args.json:
-        print(json.dumps({**optimize_summary(result), "run_folder": str(target)}, indent=2))
-    elif args.quiet:
-        print(f"{result.status}: {result.message}")
-    else:
-        print(optimize_text(result), end="")
-        print(f"\nWritten: {target}/")
-    return result.exit_code
+    return _show(args, result, optimize_summary(result), optimize_text(result), target, "")
 
 
 def _sweep(args) -> int:

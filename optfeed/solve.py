@@ -235,7 +235,7 @@ def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=
         cap = min(left, FIRST_PROFILE_ITER) if k < len(profiles) - 1 else left
         profile = {**profile, "ipopt.max_iter": cap}
         start = _solve_profile(trans, w0, label, guess_objective, profile,
-                               warm if profile is WARM_PROFILE or "ipopt.warm_start_init_point" in profile else None)
+                               warm if "ipopt.warm_start_init_point" in profile else None)
         iterations += start.iterations
         seconds += start.seconds
         if best is None or start.status == "converged":

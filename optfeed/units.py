@@ -132,6 +132,16 @@ def parse_quantity(value, kind: str):
     return q
 
 
+def written_unit(value, kind: str) -> str:
+    """The unit as the user wrote it in ``value`` ('200 mL/h' -> 'mL/h'), or the
+    default unit of ``kind`` for a bare number ('' for kind 'any')."""
+    if isinstance(value, str):
+        m = _QUANTITY_RE.match(value)
+        if m and m.group("unit"):
+            return m.group("unit")
+    return KINDS[kind].default_unit
+
+
 def internal_units(dimensionality):
     """The coherent internal unit (pint Unit) for a dimensionality."""
     unit = UREG.parse_units("")

@@ -17,7 +17,7 @@ import pydantic
 
 from .. import expr as ex
 from ..errors import InputError, Issue
-from ..units import parse_quantity, to_internal
+from ..units import parse_quantity, to_internal, written_unit
 from . import schema
 from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
@@ -169,7 +169,7 @@ class _Builder:
         except ValueError as exc:
             self.fail(loc, str(exc))
             return None
-        unit = _written_unit(value, kind)
+        unit = written_unit(value, kind)
         return internal, unit, q.dimensionality
 
     def expression(self, text, loc, known):
@@ -422,7 +422,7 @@ class _Builder:
                     got = self.quantity(value, "any", loc + (side,))
                     if got is None:
                         continue
-                    if dims is not None and got[2] != dims and _written_unit(value, "any"):
+                    if dims is not None and got[2] != dims and written_unit(value, "any"):
                         self.fail(loc + (side,), f"{value!r} has dimension {got[2]}, but {e.text.strip()!r} "
                                                  f"is in {dims}")
                     if side == "min":
@@ -535,14 +535,3 @@ class _Builder:
             self.fail(loc, "more than 20000 finite elements")
         return Settings(steps, s.elements_per_step, s.degree, s.starts, float(s.smoothing), s.max_iter,
                         float(s.tolerance), float(s.verify_tolerance))
-
-
-def _written_unit(value, kind) -> str:
-    """The unit text as the user wrote it ('' for a bare number of kind 'any')."""
-    from ..units import KINDS, _QUANTITY_RE
-
-    if isinstance(value, str):
-        m = _QUANTITY_RE.match(value)
-        if m and m.group("unit"):
-            return m.group("unit")
-    return KINDS[kind].default_unit

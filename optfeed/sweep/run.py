@@ -138,10 +138,10 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         failed = sum(1 for r in rows if r["status"] in BAD)
         finished = all(r["status"] not in ("queued", "running") for r in rows)
         write_outputs(sweep, rows, folder)
+        attempted = {t.key for t in tasks}
+        ran = sum(1 for r in rows if r["key"] in attempted and r["status"] not in ("queued", "running"))
         return SweepResult("finished" if finished and not stop["flag"] else "stopped", folder, len(sweep.cases),
-                           len(tasks) if finished else sum(1 for r in rows if r["key"] in {t.key for t in tasks}
-                                                           and r["status"] not in ("queued", "running")),
-                           len(sweep.cases) - len(todo), failed, rows, time.perf_counter() - t0)
+                           ran, len(sweep.cases) - len(todo), failed, rows, time.perf_counter() - t0)
     finally:
         if store is not None:
             store.close()

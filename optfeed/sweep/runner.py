@@ -36,6 +36,7 @@ def run_case(task: Task) -> dict:
     from ..check import check, run_length
     from ..optimize import optimize
     from ..problem import problem_from_data
+    from ..provenance import problem_digest
     from ..report import write_check_run, write_optimize_run
     from ..schedule import load_schedule
 
@@ -66,8 +67,6 @@ def run_case(task: Task) -> dict:
         figures.update({f"slack: {x.name}": x.min_slack for x in r.limits})
         objective = None if r.outcome is None or r.outcome.objective is None else r.outcome.objective.value
         end_time = r.end_time
-    from ..provenance import problem_digest
-
     unit = getattr(r, "objective_unit", None)
     if unit is None and getattr(r, "outcome", None) is not None and r.outcome.objective is not None:
         unit = r.outcome.objective.unit

@@ -161,7 +161,6 @@ def load_sweep(path) -> Sweep:
             case_data = copy.deepcopy(base_data)
             for dotted, value in values.items():
                 _set_path(case_data, dotted, value, path, lines, file)
-            label_values = {k: v for k, v in values.items()}
             try:
                 problem = problem_from_data(case_data, file, base_lines)
             except InputError as exc:
@@ -175,7 +174,7 @@ def load_sweep(path) -> Sweep:
                 continue
             seen.add(key)
             label = Path(file).stem + "".join(f" {k.split('.')[-1]}={_short(v)}" for k, v in values.items())
-            cases.append(Case(key, label, {"problem": Path(file).name, **label_values}, case_data, file))
+            cases.append(Case(key, label, {"problem": Path(file).name, **values}, case_data, file))
     return Sweep(
         name=str(data.get("name") or Path(path).stem), source=path, job=job, schedule_path=schedule_path,
         schedule_text=schedule_text, time_limit=float(limit), cases=tuple(cases), varied=varied,
