@@ -138,7 +138,7 @@ def candidate_feeds(problem: Problem, T: float, M: int, count: int) -> list[tupl
                      (10.0, None), (None, 0.9)):
         if kT is not None:
             prof = np.exp(kT * (t_mid / T - 1.0))[:, None]
-            shapes.append(fit(fmin + prof * (fmax - fmin), f"exponential, growing {kT:g}-fold e-times to max"))
+            shapes.append(fit(fmin + prof * (fmax - fmin), f"exponential feed rising e^{kT:g}-fold to the pump maximum"))
         else:
             shapes.append(fit(np.tile(fmin + frac * (fmax - fmin), (M, 1)), f"constant {frac:.0%} of pump range"))
     while len(shapes) < count:  # more starts than shapes: random piecewise profiles, fixed seed

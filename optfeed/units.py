@@ -126,10 +126,22 @@ def parse_quantity(value, kind: str):
         raise ValueError(f"{value!r} is not a finite number")
     if not k.accepts(q):
         raise ValueError(
-            f"{value!r} has dimension {q.dimensionality}, expected a {k.name.replace('_', ' ')} "
+            f"{value!r} has dimension {describe(q.dimensionality)}, expected a {k.name.replace('_', ' ')} "
             f"like '{k.example}'"
         )
     return q
+
+
+_WORDS = {"L": "a volume", "g": "a mass", "h": "a time", "L/h": "a flow", "g/L": "a mass concentration",
+          "mmol/L": "a molar concentration", "1/h": "a specific rate", "W": "a power", "mmol/L/h": "a volumetric rate"}
+
+
+def describe(dimensionality) -> str:
+    """pint's dimension text, with a word for the common ones: '[length] ** 3 (a volume)'."""
+    if len(dimensionality) == 1 and list(dimensionality.values())[0] == 1:
+        return f"{dimensionality}"  # '[mass]' says it already
+    word = next((w for u, w in _WORDS.items() if _dim(u) == dimensionality), "")
+    return f"{dimensionality}" + (f" ({word})" if word else "")
 
 
 def written_unit(value, kind: str) -> str:

@@ -17,7 +17,7 @@ import pydantic
 
 from .. import expr as ex
 from ..errors import InputError, Issue
-from ..units import parse_quantity, to_internal, written_unit
+from ..units import describe, parse_quantity, to_internal, written_unit
 from . import schema
 from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
@@ -237,7 +237,7 @@ class _Builder:
         if not self.issues:
             self._dry_build(parameters, species, rates, vessel, bounds, objective)
         if self.issues:
-            raise InputError(self.issues)
+            raise InputError(sorted(self.issues, key=lambda i: i.line or 0))  # in file order
         return Problem(
             name=_folder_name(r.name or Path(self.source).stem),
             description=r.description.strip(),
@@ -352,8 +352,8 @@ class _Builder:
                 if got is None:
                     continue
                 if sname in species_dims and got[2] != species_dims[sname]:
-                    self.fail(loc, f"{value!r} has dimension {got[2]}, but species {sname!r} is in "
-                                   f"{species_dims[sname]}")
+                    self.fail(loc, f"{value!r} has dimension {describe(got[2])}, but species {sname!r} is in "
+                                   f"{describe(species_dims[sname])}")
                     continue
                 if got[0] < 0:
                     self.fail(loc, f"feed concentration {value!r} is negative")
