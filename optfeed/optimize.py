@@ -1,24 +1,46 @@
-"""The optimize job: the best feed profile inside every limit, and proof that it holds."""
+"""The optimize job: the best feed profile inside every limit, and proof that it holds.
+
+How it searches (each stage warm-starts the next; budgets are iteration counts, so
+the answer does not depend on how busy the machine is):
+
+1. **Explore.** Each initial feed (simulated first) is solved on a coarse grid (one
+   finite element per pump step): cheap, and each start settles in its own basin.
+2. **Refine every distinct optimum.** Each distinct coarse answer is re-simulated
+   and solved again on the fine grid, starting from that exact trajectory. Every
+   answer that verifies is kept: more starts can only add candidates, never lose
+   the best one.
+3. **Verify.** The best answer's pump schedule is re-simulated with CVODES and
+   judged exactly as ``optfeed check`` judges it. If a limit is exceeded between
+   collocation points, the NLP keeps that much clear of it and is solved again
+   (a change of bounds only: the built solver and the multipliers are reused).
+4. **A grid fine enough.** Unless the pump grid is the user's own, the pump grid is
+   doubled (warm-started) until the objective changes by less than
+   ``solver.grid_tolerance``; the last change is reported as the grid's gap.
+"""
 
 from __future__ import annotations
 
 import itertools
+import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
-import casadi as ca
 import numpy as np
 
 from . import status as st
 from .errors import InputError
-from .limits import REL_TOL, LimitReport, build_limits
-from .model import build_model
+from .limits import REL_TOL, LimitReport, build_limits, judge, limit_function
 from .outcome import Outcome, objective_label, outcome_of
 from .problem import Problem, load_problem
+from .processes import cpu_count, report_progress, run_killable
 from .provenance import problem_digest, stamp
-from .solve import Start, make_guesses, multistart, scaling_for, solve_one, transcribe
+from .schedule import piecewise_constant
+from .simulate import Simulator
+from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
+                    make_guesses, models, scaling_for, solve, states_for)
+from .transcription import Grid, NLPData
 from .units import factor_to
-from .verify import Verification, verify
+from .verify import Verification, pump_schedule, verify
 
 
 @dataclass(frozen=True)
@@ -49,6 +71,8 @@ class LimitValue:
 
 @dataclass(frozen=True)
 class StartSummary:
+    """One start: where it began, how each stage ended (display units, CPU seconds)."""
+
     label: str
     status: str
     ipopt_status: str
@@ -65,7 +89,7 @@ class OptimizeResult:
     ----------
     status : str
         One of :mod:`optfeed.status`: 'optimal, verified', 'converged, not verified',
-        'infeasible', 'iteration limit', 'failed'.
+        'infeasible', 'iteration limit', 'time limit', 'failed'.
     message : str
     problem : Problem
     objective_label, objective_unit : str
@@ -77,15 +101,18 @@ class OptimizeResult:
     starts : tuple of StartSummary
         Every start of the multistart, best first.
     spread : float or None
-        (best - worst) / |best| over converged starts.
+        (best - worst) / |best| over the starts' fine-grid answers.
     verification : Verification or None
     outcome : Outcome or None
         End values from the re-simulation.
     points : dict
-        Collocation-point series ('t', 'x', 'u') of the NLP answer, for figures.
+        Collocation-point series ('t', 'x', 'u') of the NLP answer (states of the
+        full model, internal units), for figures.
     seconds : float
         Wall time of the whole job.
     record : dict
+        Provenance and how the answer was found: settings, the final grid, the
+        grid's estimated gap, distinct local optima met, back-offs.
     """
 
     status: str
@@ -118,22 +145,104 @@ class OptimizeResult:
         return None if self.verification is None else self.verification.trajectory
 
 
-def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeResult:
+# iteration caps of the stages (the whole start never exceeds solver.max_iter)
+COARSE_ITER = 600
+MAX_BACKOFF_ROUNDS = 3
+DISTINCT_REL = 1e-4  # coarse answers closer than this (objective and pump profile) are one optimum
+
+
+@dataclass
+class _Answer:
+    """A fine-grid answer on its way to the result."""
+
+    start: Start
+    nlp: object
+    data: NLPData
+    verification: Verification | None = None
+    backoff: dict = field(default_factory=dict)
+    label: str = ""
+
+
+class _Job:
+    """Everything the stages of one optimize run share."""
+
+    def __init__(self, problem: Problem, on_progress, deadline):
+        self.problem = problem
+        self.settings = problem.settings
+        self.full, self.lean, self.limits = models(problem)
+        self.full_limits = build_limits(self.full)
+        self.fixed, self.t_bounds, self.T = end_time_info(problem)
+        self.free = self.fixed is None
+        self.progress = on_progress or (lambda *a: None)
+        self.deadline = deadline
+        self.simulator = Simulator(self.full)
+        self.label, self.unit = objective_label(self.full)
+        self.f_obj = factor_to(self.unit) if self.unit else 1.0
+        self.better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
+
+    def data(self, scaling: Scaling, backoff=None) -> NLPData:
+        p, lean = self.problem, self.lean
+        lower, upper, scale = {}, {}, {}
+        for lim in self.limits:
+            b = (backoff or {}).get(lim.name, 0.0)
+            lower[lim.name] = None if lim.lower is None else lim.lower + b
+            upper[lim.name] = None if lim.upper is None else lim.upper - b
+            scale[lim.name] = lim.scale()
+        return NLPData(
+            constants=lean.p0[:, None], x0=lean.x0[:, None], end_time=self.fixed, end_bounds=self.t_bounds,
+            pump_min=np.array([f.min_rate for f in p.feeds]), pump_max=np.array([f.max_rate for f in p.feeds]),
+            lower=lower, upper=upper, scale=scale, x_scale=scaling.x, t_scale=scaling.t,
+            j_scale=scaling.objective, weights=np.ones(1), smoothing=self.settings.smoothing,
+        )
+
+    def nlp(self, grid: Grid):
+        return get_nlp(self.problem, self.lean, self.limits, grid, self.free, smoothing=self.settings.smoothing > 0)
+
+    def report(self, label, iteration, objective):
+        """Progress of a running solve (objective in the NLP's scaled units)."""
+        text = f"{label}: iteration {iteration}"
+        if not report_progress(text):
+            self.progress(text, None, None)
+
+    def pack_from_schedule(self, nlp, data, steps_u, T, traj=None):
+        """NLP vector from pump steps, with the states of their simulation."""
+        if traj is None:
+            M = steps_u.shape[0]
+            sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
+            traj = self.simulator.run(sched, T, min_points=max(400, 4 * M))
+        return nlp.pack(data, steps_u, T, traj.t, states_for(self.lean, self.full, traj.x))
+
+    def verify(self, nlp, data, start: Start) -> Verification:
+        un = nlp.unpack(start.w, data)
+        schedule = pump_schedule(self.full.feed_names, un.t_steps, un.u_steps)
+        return verify(self.full, self.full_limits, schedule, un.T, start.objective,
+                      self.settings.verify_tolerance, self.simulator)
+
+
+def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None
+             ) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
     ----------
     problem : Problem or path
     workers : int, optional
-        Processes for the multistart (default: the free cores, at most one per start).
+        Processes for the starts (default: the free cores, at most one per start).
     on_progress : callable, optional
-        ``on_progress(text, done, total)`` as the job moves on.
+        ``on_progress(text, done, total)`` as the job moves on (done/total may be None).
+    time_limit : float, optional
+        Seconds for the whole job (default: ``solver.time_limit``, else none).
 
     Returns
     -------
     OptimizeResult
         Never labelled optimal unless the solver converged and the re-simulated
-        schedule confirms the objective and every limit.
+        schedule passes ``optfeed check`` with the objective confirmed.
+
+    Raises
+    ------
+    KeyboardInterrupt
+        On Ctrl-C, within an IPOPT iteration or so; nothing is returned.
     """
     t_start = time.perf_counter()
     if not isinstance(problem, Problem):
@@ -141,144 +250,438 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     if problem.objective is None:
         raise InputError.one(problem.source, None, "objective", "optimize needs an objective "
                              "(e.g. objective: {maximize: product_mass, product: P})")
-    model = build_model(problem)
-    limits = build_limits(model)
-    label, unit = objective_label(model)
-    f_obj = factor_to(unit) if unit else 1.0
-    settings = dict(vars(problem.settings), elements=problem.settings.elements)
+    limit = time_limit if time_limit is not None else problem.settings.time_limit
+    deadline = None if limit is None else time.monotonic() + limit
+    with interrupt_guard():
+        return _optimize(problem, workers, on_progress, deadline, t_start)
+
+
+def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResult:
+    job = _Job(problem, on_progress, deadline)
+    s = job.settings
     record = {"problem_file": problem.source, "problem_digest": problem_digest(problem),
-              "settings": settings, **stamp()}
+              "settings": dict(vars(s), elements=s.elements), **stamp()}
 
     def result(status, message, **kw):
-        base = dict(status=status, message=message, problem=problem, objective_label=label, objective_unit=unit,
-                    objective_nlp=None, objective_sim=None, end_time=None, limits=(), starts=(), spread=None,
-                    verification=None, outcome=None, seconds=time.perf_counter() - t_start, record=record)
+        base = dict(status=status, message=message, problem=problem, objective_label=job.label,
+                    objective_unit=job.unit, objective_nlp=None, objective_sim=None, end_time=None, limits=(),
+                    starts=(), spread=None, verification=None, outcome=None,
+                    seconds=time.perf_counter() - t_start, record=record)
         base.update(kw)
         return OptimizeResult(**base)
 
-    blocked = _blocked_at_start(model, limits)
+    blocked = _blocked_at_start(job)
     if blocked:
         return result(st.INFEASIBLE, f"infeasible before solving: {blocked}")
 
-    progress = on_progress or (lambda *a: None)
-    progress("simulating initial feeds", 0, problem.settings.starts)
-    guesses = make_guesses(problem, model, problem.settings.starts)
+    job.progress("simulating initial feeds", 0, s.starts)
+    guesses = make_guesses(problem, job.full, s.starts)
     if not guesses:
         return result(st.FAILED, "failed: the integrator could not follow any of the initial feeds")
-    scaling = scaling_for(problem, guesses)
+    diagnosis = _always_broken(job, guesses)
+    if diagnosis:
+        record["diagnosis"] = diagnosis
+        job.progress(f"warning: {diagnosis}", None, None)
+    scaling = scaling_for(problem, job.lean, guesses, job.full)
+    data = job.data(scaling)
+    coarse = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
+    fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
+    # build the solvers the starts use before they fork, so no process builds its own
+    _solver(coarse, "cold", s.tolerance, COARSE_ITER)
+    _solver(fine, "near", s.tolerance, s.max_iter)
 
-    def done(start: Start, n, total):
-        val = "-" if start.objective is None else f"{start.objective * f_obj:.6g}"
-        progress(f"start {n}/{total}: {start.status}, objective {val}", n, total)
-
-    starts = multistart(problem, scaling, guesses, workers=workers, on_done=done)
-    better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
-    converged = [s for s in starts if s.status == "converged" and s.objective is not None]
-    ordered = sorted(starts, key=lambda s: (s.status != "converged", s.objective is None,
-                                            -(s.objective or 0) if problem.objective.sense == "maximize"
-                                            else (s.objective or 0)))
-    summaries = tuple(StartSummary(s.label, s.status, s.ipopt_status,
-                                   None if s.objective is None else s.objective * f_obj, s.iterations, s.seconds)
-                      for s in ordered)
-    trans = transcribe(problem, scaling, model, limits)
+    # 1 and 2: every start on the coarse grid, then every distinct optimum on the fine grid
+    workers = min(len(guesses), workers or cpu_count())
+    coarse_starts = _run_all(job, [("coarse", coarse, data, g) for g in guesses], workers, "start")
+    if interrupted():
+        raise KeyboardInterrupt
+    groups = _distinct(job, coarse, data, coarse_starts)
+    record["local_optima_coarse"] = len(groups)
+    fine_jobs = [("fine", fine, data, (guesses[i], coarse_starts[i])) for i, _ in groups]
+    fine_starts = _run_all(job, fine_jobs, workers, "refining optimum") if fine_jobs else []
+    if interrupted():
+        raise KeyboardInterrupt
+    summaries, spread = _summaries(job, guesses, coarse_starts, groups, fine_starts)
+    converged = [(fs, groups[k]) for k, fs in enumerate(fine_starts) if fs.status == "converged"
+                 and fs.objective is not None]
     if not converged:
-        statuses = {s.status for s in starts}
-        best = ordered[0]
-        worst_name, worst_val = _worst_violation(trans, best.w, limits)
-        where = f"; closest point misses '{worst_name}' by {worst_val}" if worst_name else ""
-        if "iteration limit" in statuses or "time limit" in statuses:
-            return result(st.ITERATION_LIMIT, f"no start converged within its iteration or time budget"
-                          f"{where}", starts=summaries)
-        if statuses == {"infeasible"}:
-            return result(st.INFEASIBLE, f"infeasible: no start found a feed profile that meets every limit "
-                          f"(IPOPT detected local infeasibility from each){where}", starts=summaries)
-        return result(st.FAILED, f"failed: IPOPT ended with {', '.join(sorted({s.ipopt_status for s in starts}))}"
-                      f"{where}", starts=summaries)
+        return _no_answer(job, result, coarse_starts + fine_starts, summaries, coarse, fine, data, diagnosis)
 
-    best = converged[0]
-    for s in converged[1:]:
-        if better(s.objective, best.objective):
-            best = s
-    values = [s.objective for s in converged]
-    spread = (max(values) - min(values)) / max(abs(best.objective), 1e-12)
-    unpacked = trans.unpack(best.w)
-    progress("re-simulating the optimal schedule", len(starts), len(starts))
-    tol = problem.settings.verify_tolerance
-    ver = verify(model, limits, unpacked, best.objective, tol)
-    backoff = {}
-    for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
-        # the NLP meets the limits at its points; if the re-simulated schedule
-        # exceeds one between them, keep the NLP that much further away and re-solve
-        excess = _excess(limits, ver, REL_TOL)
-        if ver.verified or not excess or ver.objective_rel_diff > tol:
+    # 3: verify, best first; keep the best answer that verifies
+    converged.sort(key=lambda c: -c[0].objective if problem.objective.sense == "maximize" else c[0].objective)
+    best, first_unverified = None, None
+    for fs, _ in converged:
+        if best is not None and not job.better(fs.objective, best.start.objective):
+            break  # cannot beat the verified answer in hand
+        ans = _verified(job, _Answer(fs, fine, data, label=fs.label), scaling)
+        if ans.verification.verified and (best is None or job.better(ans.start.objective, best.start.objective)):
+            best = ans
+        elif first_unverified is None:
+            first_unverified = ans
+        if _stop_now(job):
             break
-        trial_backoff = dict(backoff)
-        for name, amount in excess.items():
-            trial_backoff[name] = trial_backoff.get(name, 0.0) + 1.5 * amount
-        progress(f"backing off {', '.join(excess)} (round {round_})", len(starts), len(starts))
-        trial_trans = transcribe(problem, scaling, model, limits, trial_backoff)
-        trial = solve_one(trial_trans, best.w, f"{best.label}, backed off", warm=(best.lam_g, best.lam_x))
-        if trial.status != "converged" or trial.objective is None:
-            break
-        best, trans, backoff = trial, trial_trans, trial_backoff
-        unpacked = trans.unpack(best.w)
-        ver = verify(model, limits, unpacked, best.objective, tol)
-    if backoff:
-        by_name = {l.name: l for l in limits}
-        record["backoff"] = {n: {"amount": v * by_name[n].factor, "unit": by_name[n].unit} for n, v in backoff.items()}
-    marg = trans.marginals(best.lam_g, best.lam_x)
-    values_out = []
-    for lim, rep in zip(limits, ver.limits):
-        up, low = marg.get(lim.name, (0.0, 0.0))
-        # at its bound, within the verification tolerance
-        active = bool(rep.min_slack / lim.factor <= tol * lim.scale())
-        values_out.append(LimitValue(rep, active, up * f_obj / lim.factor, low * f_obj / lim.factor))
-    if "end time" in marg:
-        up, low = marg["end time"]
-        record["end_time_marginal_per_h"] = (up if abs(up) >= abs(low) else -low) * f_obj
-    outcome = outcome_of(model, ver.trajectory, unpacked.T) if ver.trajectory is not None else None
-    kept = ""
-    if backoff:
-        kept = "; kept clear of " + ", ".join(
-            f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
-    if best.ipopt_status != "Solve_Succeeded":
-        kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
-    if ver.verified:
-        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
+    record["local_optima_fine"] = len({round(fs.objective, 6) for fs, _ in converged})
+
+    # 4: a pump grid fine enough
+    if best is not None and s.refine_grid and not _stop_now(job):
+        best = _refine_grid(job, best, scaling, record)
+
+    chosen = best or first_unverified
+    return _final(job, result, chosen, summaries, spread, record, diagnosis)
+
+
+def _stop_now(job) -> bool:
+    if interrupted():
+        raise KeyboardInterrupt
+    return job.deadline is not None and time.monotonic() > job.deadline
+
+
+# ---------------------------------------------------------------------- stages
+
+
+def _stage(task):
+    """One start's stage in a worker (or in this process): ('coarse', nlp, data,
+    guess) solves from a simulated feed; ('fine', nlp, data, (guess, coarse start))
+    re-simulates a coarse answer and solves it on the fine grid."""
+    kind, nlp, data, payload = task
+    job = _STAGE_JOB
+    s = job.settings
+    if kind == "coarse":
+        g = payload
+        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states))
+        st_ = solve(nlp, data, w0, g.label, profile="cold", tolerance=s.tolerance,
+                    max_iter=min(COARSE_ITER, s.max_iter), deadline=job.deadline, report=job.report,
+                    guess_objective=g.objective)
+        if st_.status in ("iteration limit", "failed") and s.max_iter > st_.iterations:
+            # the adaptive barrier rescues some starts (and explores another basin)
+            second = solve(nlp, data, w0, g.label + " (adaptive barrier)", profile="adaptive",
+                           tolerance=s.tolerance, max_iter=min(COARSE_ITER, s.max_iter - st_.iterations),
+                           deadline=job.deadline, report=job.report, guess_objective=g.objective)
+            second.iterations += st_.iterations
+            second.seconds += st_.seconds
+            st_ = second if second.status == "converged" or st_.status != "converged" else st_
+        return st_
+    g, cs = payload
+    cu = _COARSE_NLP.unpack(cs.w, data)
+    try:
+        w0 = job.pack_from_schedule(nlp, data, cu.u_steps, cu.T)
+    except Exception:  # noqa: BLE001 - a coarse answer the integrator cannot follow: start from the guess
+        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states))
+    st_ = solve(nlp, data, w0, g.label, profile="near", tolerance=s.tolerance, max_iter=s.max_iter,
+                deadline=job.deadline, report=job.report, guess_objective=g.objective)
+    if st_.status in ("iteration limit", "failed") and s.max_iter > st_.iterations:
+        second = solve(nlp, data, w0, g.label + " (cold restart)", profile="cold", tolerance=s.tolerance,
+                       max_iter=s.max_iter - st_.iterations, deadline=job.deadline, report=job.report,
+                       guess_objective=g.objective)
+        second.iterations += st_.iterations
+        second.seconds += st_.seconds
+        st_ = second if second.status == "converged" else st_
+    return st_
+
+
+_STAGE_JOB = None  # the job the stage workers see (set before forking)
+_COARSE_NLP = None
+
+
+def _run_all(job, tasks, workers, word) -> list[Start]:
+    """Run stage tasks (in forked workers when workers > 1); results in task order.
+    A task whose turn never came (time limit, Ctrl-C) is reported as 'not run'."""
+    global _STAGE_JOB, _COARSE_NLP
+    _STAGE_JOB = job
+    _COARSE_NLP = job.nlp(Grid(job.settings.pump_steps, job.settings.pump_steps, job.settings.degree))
+    out: dict[int, Start] = {}
+    total = len(tasks)
+
+    def label_of(i):
+        payload = tasks[i][3]
+        return payload.label if isinstance(payload, Guess) else payload[0].label
+
+    def done(i, kind, payload, seconds):
+        if kind == "ok":
+            out[i] = payload
+        else:
+            out[i] = _empty_start(label_of(i), "failed", str(payload)[:200])
+        s_ = out[i]
+        val = "-" if s_.objective is None else f"{s_.objective * job.f_obj:.6g}"
+        job.progress(f"{word} {len(out)}/{total}: {s_.status}, objective {val} {job.unit}".rstrip(), len(out),
+                     total)
+
+    if workers <= 1 or total == 1:
+        for i, task in enumerate(tasks):
+            if _stop_now(job):
+                break
+            done(i, "ok", _stage(task), 0.0)
     else:
-        status, message = st.CONVERGED_NOT_VERIFIED, f"the solver converged but the answer is not verified: {ver.message}"
-    return result(
-        status, message, objective_nlp=best.objective * f_obj,
-        objective_sim=None if ver.objective_sim is None else ver.objective_sim * f_obj,
-        end_time=unpacked.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
-        outcome=outcome, points={"t": unpacked.t_points, "x": unpacked.x_points, "u": unpacked.u_points},
-    )
+        run_killable(list(enumerate(tasks)), _stage, workers, done,
+                     should_stop=lambda: interrupted() or (job.deadline is not None and
+                                                           time.monotonic() > job.deadline),
+                     on_progress=lambda i, text: job.progress(text, None, None))
+    return [out.get(i) or _empty_start(label_of(i), "not run", "its turn never came") for i in range(total)]
 
 
-MAX_BACKOFF_ROUNDS = 3
+def _empty_start(label, status, why) -> Start:
+    return Start(label, status, why, None, 0, 0.0, np.zeros(0), np.zeros(0), np.zeros(0))
 
 
-def _excess(limits, ver, tol) -> dict:
+def _distinct(job, nlp, data, starts) -> list[tuple[int, list[int]]]:
+    """Group converged coarse answers that are the same optimum: (first index, members)."""
+    groups: list[tuple[int, list[int]]] = []
+    for i, s_ in enumerate(starts):
+        if s_.status != "converged" or s_.objective is None:
+            continue
+        u = nlp.unpack(s_.w, data).u_steps
+        for first, members in groups:
+            f = starts[first]
+            same_J = abs(f.objective - s_.objective) <= DISTINCT_REL * max(abs(f.objective), 1e-12)
+            uf = nlp.unpack(f.w, data).u_steps
+            same_u = np.max(np.abs(uf - u)) <= 1e-3 * max(np.max(data.pump_max), 1e-12)
+            if same_J and same_u:
+                members.append(i)
+                break
+        else:
+            groups.append((i, [i]))
+    return groups
+
+
+def _summaries(job, guesses, coarse_starts, groups, fine_starts):
+    """A StartSummary per start, best first, and the spread of the fine answers."""
+    fine_of = {}
+    for (first, members), fs in zip(groups, fine_starts):
+        for m in members:
+            fine_of[m] = (first, fs)
+    rows = []
+    for i, cs in enumerate(coarse_starts):
+        label = guesses[i].label
+        if i in fine_of:
+            first, fs = fine_of[i]
+            if first != i:
+                label += f" (same optimum as start {first + 1} on the coarse grid)"
+                rows.append(StartSummary(label, fs.status, fs.ipopt_status,
+                                         None if fs.objective is None else fs.objective * job.f_obj,
+                                         cs.iterations, cs.seconds))
+                continue
+            rows.append(StartSummary(label, fs.status, fs.ipopt_status,
+                                     None if fs.objective is None else fs.objective * job.f_obj,
+                                     cs.iterations + fs.iterations, cs.seconds + fs.seconds))
+        else:
+            why = cs.status if cs.status != "converged" else "converged"
+            rows.append(StartSummary(label + " (coarse grid only)", why, cs.ipopt_status,
+                                     None if cs.objective is None else cs.objective * job.f_obj,
+                                     cs.iterations, cs.seconds))
+    sense = job.problem.objective.sense
+    rows.sort(key=lambda r: (r.status != "converged", r.objective is None,
+                             -(r.objective or 0) if sense == "maximize" else (r.objective or 0)))
+    values = [fs.objective for fs in fine_starts if fs.status == "converged" and fs.objective is not None]
+    spread = None
+    if values:
+        best = max(values) if sense == "maximize" else min(values)
+        spread = (max(values) - min(values)) / max(abs(best), 1e-12)
+    return tuple(rows), spread
+
+
+def _excess(job, ver) -> dict:
     """Limit name -> amount (internal units) by which the re-simulation exceeds it
     beyond the verification tolerance."""
     out = {}
-    for lim, rep in zip(limits, ver.limits):
+    for lim, rep in zip(job.full_limits, ver.limits):
         if lim.kind == "pump" or rep.worst_violation <= 0:
             continue
-        if lim.relative_excess(rep) > tol:
+        if lim.relative_excess(rep) > REL_TOL:
             out[lim.name] = rep.worst_violation / lim.factor
     return out
 
 
-def _blocked_at_start(model, limits) -> str:
+def _verified(job, ans: _Answer, scaling) -> _Answer:
+    """Verify an answer; if a limit is exceeded between collocation points, keep the
+    NLP that much further from it and solve again (bounds only, warm start)."""
+    s = job.settings
+    ans.verification = job.verify(ans.nlp, ans.data, ans.start)
+    for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
+        ver = ans.verification
+        excess = _excess(job, ver)
+        if ver.verified or not excess or ver.objective_rel_diff > s.verify_tolerance or _stop_now(job):
+            break
+        trial = dict(ans.backoff)
+        for name, amount in excess.items():
+            trial[name] = trial.get(name, 0.0) + 1.5 * amount
+        job.progress(f"keeping clear of {', '.join(excess)} between collocation points (round {round_})",
+                     None, None)
+        data = job.data(scaling, trial)
+        st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
+                    tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
+                    deadline=job.deadline, report=job.report)
+        if st_.status != "converged" or st_.objective is None:
+            break
+        st_.iterations += ans.start.iterations
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label)
+    return ans
+
+
+def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
+    """Double the pump grid until the objective changes by less than grid_tolerance."""
+    s = job.settings
+    grid = best.nlp.grid
+    gap = None
+    while grid.pump_steps * 2 <= s.max_pump_steps and not _stop_now(job):
+        M2 = grid.pump_steps * 2
+        N2 = grid.elements if grid.elements % M2 == 0 else M2 * max(1, grid.elements // M2)
+        N2 = max(N2, M2)
+        new_grid = Grid(M2, N2, grid.degree)
+        job.progress(f"refining the pump grid: {M2} steps", None, None)
+        nlp = job.nlp(new_grid)
+        un = best.nlp.unpack(best.start.w, best.data)
+        steps = np.repeat(un.u_steps, 2, axis=0)
+        w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
+        st_ = solve(nlp, best.data, w0, best.label + f", {M2} pump steps", profile="near",
+                    tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+        if st_.status != "converged" or st_.objective is None:
+            record["grid_refinement"] = f"stopped at {grid.pump_steps} pump steps: the {M2}-step solve {st_.status}"
+            break
+        cand = _verified(job, _Answer(st_, nlp, best.data, label=best.label, backoff=dict(best.backoff)), scaling)
+        if not cand.verification.verified:
+            record["grid_refinement"] = (f"stopped at {grid.pump_steps} pump steps: the {M2}-step answer did not "
+                                         f"verify ({cand.verification.message})")
+            break
+        change = abs(cand.start.objective - best.start.objective) / max(abs(cand.start.objective), 1e-12)
+        job.progress(f"{M2} pump steps: objective {cand.start.objective * job.f_obj:.7g} {job.unit} "
+                     f"({change:.3%} change, {cand.start.iterations} iterations)", None, None)
+        if job.better(cand.start.objective, best.start.objective) or change <= s.grid_tolerance:
+            gap = change
+            improved = job.better(cand.start.objective, best.start.objective)
+            if improved:
+                best = cand
+            grid = new_grid
+            if change <= s.grid_tolerance:
+                break
+        else:
+            record["grid_refinement"] = f"stopped at {grid.pump_steps} pump steps: {M2} steps gave a worse optimum"
+            break
+    record["grid_gap_relative"] = gap
+    return best
+
+
+# ---------------------------------------------------------------------- the result
+
+
+def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosis) -> OptimizeResult:
+    s = job.settings
+    timed_out = job.deadline is not None and time.monotonic() > job.deadline
+    if ans is None:
+        return result(st.FAILED, "failed: no answer to verify", starts=summaries, spread=spread)
+    ver, best, nlp, data = ans.verification, ans.start, ans.nlp, ans.data
+    un = nlp.unpack(best.w, data)
+    record["grid"] = {"pump_steps": nlp.grid.pump_steps, "elements": nlp.grid.elements, "degree": nlp.grid.degree}
+    if ans.backoff:
+        by_name = {l.name: l for l in job.limits}
+        record["backoff"] = {n: {"amount": v * by_name[n].factor, "unit": by_name[n].unit}
+                             for n, v in ans.backoff.items()}
+    marg = nlp.marginals(best.lam_g, best.lam_x, data)
+    values_out = []
+    tol = s.verify_tolerance
+    for lim, rep in zip(job.full_limits, ver.limits):
+        up, low = marg.get(lim.name, (0.0, 0.0))
+        active = bool(rep.min_slack / lim.factor <= tol * lim.scale())
+        values_out.append(LimitValue(rep, active, up * job.f_obj / lim.factor, low * job.f_obj / lim.factor))
+    if "end time" in marg:
+        up, low = marg["end time"]
+        record["end_time_marginal_per_h"] = (up if abs(up) >= abs(low) else -low) * job.f_obj
+    outcome = outcome_of(job.full, ver.trajectory, un.T) if ver.trajectory is not None else None
+    kept = ""
+    if ans.backoff:
+        kept = "; kept clear of " + ", ".join(
+            f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
+    if best.ipopt_status != "Solve_Succeeded":
+        kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
+    gap = record.get("grid_gap_relative")
+    if gap is not None:
+        kept += f"; pump grid {nlp.grid.pump_steps} steps (last refinement changed the objective by {gap:.2%})"
+    if ver.verified and not timed_out:
+        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
+    elif ver.verified:
+        status = st.TIME_LIMIT
+        message = (f"time limit reached; the best answer so far is verified ({ver.message}) but the search "
+                   f"did not finish{kept}")
+    else:
+        status = st.CONVERGED_NOT_VERIFIED
+        message = (f"the solver converged but the answer is not verified: {ver.message}; refine the grid "
+                   "(solver.elements_per_step, degree)")
+    points = _full_points(job, un)
+    return result(
+        status, message, objective_nlp=best.objective * job.f_obj,
+        objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+        end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
+        outcome=outcome, points=points,
+    )
+
+
+def _full_points(job, un) -> dict:
+    """Collocation points with every state of the full model: the amounts fed that
+    the NLP does not carry follow exactly from the pump steps."""
+    full, lean = job.full, job.lean
+    x = np.full((len(un.t_points), full.nx), np.nan)
+    for i, n in enumerate(lean.state_names):
+        x[:, full.index(n)] = un.x_points[:, i]
+    edges = un.t_steps
+    cum = np.vstack([np.zeros(un.u_steps.shape[1]), np.cumsum(np.diff(edges)[:, None] * un.u_steps, axis=0)])
+    for n in full.state_names:
+        if n.startswith("fed_") and n not in lean.state_names:
+            sp = n[4:]
+            conc = np.array([f.composition.get(sp, 0.0) for f in job.problem.feeds])
+            k = np.clip(np.searchsorted(edges, un.t_points, side="right") - 1, 0, len(edges) - 2)
+            fed = cum[k] + (un.t_points - edges[k])[:, None] * un.u_steps[k]
+            x[:, full.index(n)] = fed @ conc
+    return {"t": un.t_points, "x": x, "u": un.u_points}
+
+
+def _no_answer(job, result, starts, summaries, coarse, fine, data, diagnosis) -> OptimizeResult:
+    """No start converged: say why, naming the limit in words."""
+    statuses = {s_.status for s_ in starts}
+    tried = [s_ for s_ in starts if s_.w.size]
+    where = ""
+    if tried:
+        best = tried[-1]
+        nlp = fine if best.w.size == fine.n_w else coarse
+        name, amount = _worst_violation(job, nlp, data, best.w)
+        if name:
+            where = f"; the closest point misses '{name}' by {amount}"
+    hint = f"; {diagnosis}" if diagnosis else ""
+    if "interrupted" in statuses:
+        raise KeyboardInterrupt
+    if statuses & {"time limit", "not run"} and job.deadline is not None and time.monotonic() > job.deadline:
+        return result(st.TIME_LIMIT, f"time limit reached before any start converged{where}{hint}",
+                      starts=summaries)
+    if "iteration limit" in statuses:
+        return result(st.ITERATION_LIMIT, f"no start converged within its iteration budget{where}{hint}",
+                      starts=summaries)
+    if statuses <= {"infeasible"}:
+        return result(st.INFEASIBLE, f"infeasible: no start found a feed profile that meets every limit "
+                      f"(IPOPT detected local infeasibility from each){where}{hint}", starts=summaries)
+    return result(st.FAILED, f"failed: IPOPT ended with {', '.join(sorted({s_.ipopt_status for s_ in starts}))}"
+                  f"{where}{hint}", starts=summaries)
+
+
+def _worst_violation(job, nlp, data, w):
+    v = nlp.violations(w, data)
+    units = {l.name: (l.factor, l.unit) for l in job.limits}
+    rel = {n: val / data.scale[n] for n, val in v.items() if n != "model equations" and n in data.scale}
+    if not rel or max(rel.values()) <= 1e-6:
+        if v.get("model equations", 0) > 1e-6:
+            return "model equations", f"{v['model equations']:.3g} (scaled residual)"
+        return "", ""
+    name = max(rel, key=rel.get)
+    f, unit = units[name]
+    return name, f"{v[name] * f:.4g} {unit}".rstrip()
+
+
+def _blocked_at_start(job) -> str:
     """A path limit that no pump setting can meet at t = 0, described; '' if none."""
-    feeds = model.problem.feeds
+    feeds = job.problem.feeds
     corners = list(itertools.product(*[(f.min_rate, f.max_rate) for f in feeds]))[:64]
-    path = [l for l in limits if not l.at_end and l.kind != "pump"]
+    path = [l for l in job.full_limits if not l.at_end and l.kind != "pump"]
     if not path:
         return ""
-    g = ca.Function("g0", [model.t, model.x, model.u], [ca.vertcat(*[ca.SX(l.expr) for l in path])])
-    values = np.array([np.array(g(0.0, model.x0, np.array(c))).ravel() for c in corners])
+    g = limit_function(job.full, path)
+    values = np.array([np.array(g(0.0, job.full.x0, np.array(c))).ravel() for c in corners])
     for i, lim in enumerate(path):
         tol = lim.tolerance()
         hi = lim.upper is not None and np.all(values[:, i] > lim.upper + tol)
@@ -289,23 +692,43 @@ def _blocked_at_start(model, limits) -> str:
             word = "above" if hi else "below"
             return (f"'{lim.name}' cannot be met at the start: its value at t = 0 is "
                     f"{v * lim.factor:.4g} {lim.unit}, {word} the limit {bound * lim.factor:.4g} {lim.unit} "
-                    f"at every combination of pump limits (key {lim.key})")
+                    f"at every combination of pump limits (key {lim.key})").replace("  ", " ")
     return ""
 
 
-def _worst_violation(trans, w, limits):
-    v = trans.violations(w)
-    units = {l.name: (l.factor, l.unit) for l in limits}
-    rel = {}
-    for name, val in v.items():
-        if name == "model equations":
+def _always_broken(job, guesses) -> str:
+    """Limits that every trial feed breaks (pumps off, pumps at their maximum, and
+    the initial feeds), with the earliest time, in words; '' if none."""
+    feeds = job.problem.feeds
+    T = job.T
+    trials = [g.trajectory for g in guesses if g.trajectory is not None]
+    for label, rates in (("pumps off", [f.min_rate for f in feeds]), ("pumps at maximum", [f.max_rate for f in feeds])):
+        sched = piecewise_constant(job.full.feed_names, [0.0], np.array([rates]))
+        try:
+            trials.append(job.simulator.run(sched, T, min_points=400))
+        except Exception:  # noqa: BLE001 - a feed the integrator cannot follow says nothing here
             continue
-        scale = trans.limit_scale.get(name, 1.0)
-        rel[name] = val / scale
-    if not rel or max(rel.values()) <= 1e-6:
-        if v.get("model equations", 0) > 1e-6:
-            return "model equations", f"{v['model equations']:.3g} (scaled residual)"
-        return "", ""
-    name = max(rel, key=rel.get)
-    f, unit = units[name]
-    return name, f"{v[name] * f:.4g} {unit}"
+    if not trials:
+        return ""
+    broken = None
+    for traj in trials:
+        reports, _ = judge(job.full, job.full_limits, traj)
+        names = {r.name: r for r in reports if r.violated and r.kind != "pump"}
+        if broken is None:
+            broken = {n: [r] for n, r in names.items()}
+        else:
+            broken = {n: v + [names[n]] for n, v in broken.items() if n in names}
+        if not broken:
+            return ""
+    parts = []
+    by_name = {l.name: l for l in job.full_limits}
+    for name, reps in broken.items():
+        first = min(r.first_violation for r in reps)
+        least = min(r.worst_violation for r in reps)
+        lim = by_name[name]
+        key = lim.key if lim.kind in ("volume", "oxygen", "heat") else f"{lim.key}.{reps[0].side}"
+        parts.append(f"every trial feed (pumps off, pumps at maximum and the initial feeds) breaks '{name}', "
+                     f"the earliest at {first:.3g} h; to make the problem feasible, relax it ({key} by at least "
+                     f"{least:.3g} {lim.unit}) or change what drives it before then (initial values, "
+                     f"kinetics)".replace(" )", ")"))
+    return "; ".join(parts)

@@ -37,11 +37,28 @@ def die_with_parent() -> None:
         pass
 
 
+_PROGRESS = None  # in a child: the connection to the parent
+
+
+def report_progress(payload) -> bool:
+    """In a child process run by :func:`run_killable`: send ``payload`` to the
+    parent's ``on_progress``. Returns False (and does nothing) elsewhere."""
+    if _PROGRESS is None:
+        return False
+    try:
+        _PROGRESS.send(("progress", payload))
+    except (OSError, ValueError):
+        return False
+    return True
+
+
 def _child(conn, func, arg, parent_pid) -> None:
+    global _PROGRESS
     die_with_parent()
     if os.getppid() != parent_pid:  # the parent died before we asked to die with it
         os._exit(1)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    _PROGRESS = conn
     try:
         conn.send(("ok", func(arg)))
     except BaseException as exc:  # noqa: BLE001 - reported to the parent, never raised here
@@ -51,7 +68,8 @@ def _child(conn, func, arg, parent_pid) -> None:
         conn.close()
 
 
-def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=None, should_stop=None) -> None:
+def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=None, should_stop=None,
+                 on_progress=None) -> None:
     """Run ``func(arg)`` for every ``(key, arg)`` in ``items`` in child processes.
 
     Parameters
@@ -69,6 +87,8 @@ def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=
         ``on_start(key)`` when an item's process starts.
     should_stop : callable, optional
         Checked between events; True stops starting new items and kills the running.
+    on_progress : callable, optional
+        ``on_progress(key, payload)`` for what a child sends with :func:`report_progress`.
     """
     ctx = context()
     pending = list(items)
@@ -94,6 +114,10 @@ def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=
                         kind, payload = conn.recv()
                     except EOFError:
                         kind, payload = "error", f"the process ended with exit code {proc.exitcode}"
+                    if kind == "progress":
+                        if on_progress:
+                            on_progress(key, payload)
+                        continue
                     proc.join()
                     del running[key]
                     on_done(key, kind, payload, now - t0)

@@ -3,13 +3,18 @@
 Each schedule segment is integrated on its own, restarting the integrator at every
 pump change, so no step crosses a discontinuity in the feed. Long segments are cut
 into pieces so that the dense output (used for the slack checks and the figures) has
-at least ``min_points`` samples over the run.
+at least ``min_points`` samples over the run. The samples depend only on the schedule,
+the run length and ``min_points``: the same schedule is always sampled the same way.
+
+A :class:`Trajectory` can also integrate again between two of its samples with a
+finer output (:meth:`Trajectory.between`), which the limit judgement uses to find a
+limit's extremum, or the moment it is first crossed, between samples.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import casadi as ca
 import numpy as np
@@ -20,6 +25,7 @@ from .schedule import Schedule, Segment
 
 RTOL = 1e-10
 ATOL = 1e-10
+SAMPLES = 2000  # least number of samples over a run: one rule for check and verification
 
 
 @dataclass(frozen=True)
@@ -35,6 +41,9 @@ class Trajectory:
     u : ndarray, shape (n, nu)
         Pump rates, L/h, in ``feed_names`` order.
     state_names, feed_names : tuple of str
+    piece : ndarray of int, shape (n,)
+        Index of the integrated piece each sample belongs to (samples of one piece
+        lie on one smooth stretch of the run, without a pump change inside).
     """
 
     t: np.ndarray
@@ -42,6 +51,10 @@ class Trajectory:
     u: np.ndarray
     state_names: tuple
     feed_names: tuple
+    piece: np.ndarray = field(default=None, repr=False, compare=False)
+    _pieces: tuple = field(default=(), repr=False, compare=False)
+    _simulator: object = field(default=None, repr=False, compare=False)
+    _p: object = field(default=None, repr=False, compare=False)
 
     def state(self, name: str) -> np.ndarray:
         return self.x[:, self.state_names.index(name)]
@@ -53,9 +66,22 @@ class Trajectory:
     def final(self) -> np.ndarray:
         return self.x[-1]
 
+    @property
+    def constants(self):
+        """The constants (``Model.p``) this run was simulated with; None if unknown."""
+        return self._p
+
+    def between(self, i: int, t0: float, x0, t1: float):
+        """Integrate again within sample ``i``'s piece from state ``x0`` at ``t0`` to
+        ``t1`` (h) with a fine output: returns (t, x, u), ``t[0] = t0``."""
+        if self._simulator is None or self.piece is None:
+            raise ValueError("this trajectory was not made by a Simulator")
+        seg = self._pieces[self.piece[i]]
+        return self._simulator.between(seg, float(t0), np.asarray(x0, dtype=float), float(t1), self._p)
+
 
 class Simulator:
-    """CVODES integrator for one model, reusable across schedules.
+    """CVODES integrator for one model, reusable across schedules and constants.
 
     Parameters
     ----------
@@ -71,57 +97,86 @@ class Simulator:
         self.points = points_per_piece
         nu = model.nu
         tau = ca.SX.sym("tau")
-        p = ca.SX.sym("p", 2 + 3 * nu)  # t0, h, a, b, k
-        t0, h = p[0], p[1]
-        a, b, k = p[2:2 + nu], p[2 + nu:2 + 2 * nu], p[2 + 2 * nu:2 + 3 * nu]
+        q = ca.SX.sym("q", 2 + 3 * nu)  # t0, h, a, b, k of the pump law
+        t0, h = q[0], q[1]
+        a, b, k = q[2:2 + nu], q[2 + nu:2 + 2 * nu], q[2 + 2 * nu:2 + 3 * nu]
         u = (a + b * h * tau) * ca.exp(k * h * tau)
-        f = model.function("f", [model.rhs])
-        ode = h * f(t0 + h * tau, model.x, u)
+        f = model.function_p("f", [model.rhs])
+        ode = h * f(t0 + h * tau, model.x, u, model.p)
         grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
         opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False}
-        self._integrator = ca.integrator("piece", "cvodes", {"x": model.x, "p": p, "t": tau, "ode": ode},
+        self._integrator = ca.integrator("piece", "cvodes",
+                                         {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
                                          0.0, grid, opts)
         self._grid = grid
 
-    def run(self, schedule: Schedule, end_time: float, min_points: int = 2000, x0=None) -> Trajectory:
-        """Integrate ``schedule`` from 0 to ``end_time`` (h) from ``x0`` (default: model.x0).
+    def run(self, schedule: Schedule, end_time: float, min_points: int = SAMPLES, x0=None, p=None) -> Trajectory:
+        """Integrate ``schedule`` from 0 to ``end_time`` (h) from ``x0`` (default:
+        model.x0) with constants ``p`` (default: model.p0).
 
         Raises
         ------
         SimulationError
-            When CVODES fails or the state stops being finite.
+            When CVODES fails or the state stops being finite; it names the time and,
+            where it can, the quantity that blew up.
         """
         m = self.model
+        p = m.p0 if p is None else np.asarray(p, dtype=float)
         segments = schedule.segments(m.feed_names, end_time)
         max_len = end_time * self.points / max(min_points, 1)
         x = np.array(m.x0 if x0 is None else x0, dtype=float)
-        ts, xs, us = [], [], []
+        ts, xs, us, pieces, index = [], [], [], [], []
         for seg in segments:
             for piece in _pieces(seg, max_len):
-                h = piece.end - piece.start
-                p = np.concatenate([[piece.start, h], piece.a, piece.b, piece.k])
-                try:
-                    out = self._integrator(x0=x, p=p)
-                except RuntimeError as exc:
-                    raise SimulationError(f"the integrator failed: {_short(exc)}", piece.start) from None
-                xf = np.array(out["xf"]).T  # (points, nx)
-                if not np.all(np.isfinite(xf)):
-                    raise SimulationError("the state became infinite or not a number", piece.start)
-                t = piece.start + h * self._grid
+                t, xf = self._integrate(piece, piece.start, x, piece.end, p)
                 ts.append(np.concatenate([[piece.start], t]))
                 xs.append(np.vstack([x, xf]))
                 us.append(piece.rates(ts[-1]))
+                index.append(np.full(len(ts[-1]), len(pieces)))
+                pieces.append(piece)
                 x = xf[-1]
         return Trajectory(
             t=np.concatenate(ts), x=np.vstack(xs), u=np.vstack(us),
             state_names=tuple(m.state_names), feed_names=tuple(m.feed_names),
+            piece=np.concatenate(index), _pieces=tuple(pieces), _simulator=self, _p=p,
         )
+
+    def between(self, seg: Segment, t0: float, x0, t1: float, p):
+        """Dense output (t, x, u) from state ``x0`` at ``t0`` to ``t1`` within ``seg``."""
+        t, xf = self._integrate(seg, t0, np.asarray(x0, dtype=float), t1, p)
+        t = np.concatenate([[t0], t])
+        return t, np.vstack([x0, xf]), seg.rates(t)
+
+    def _integrate(self, seg: Segment, t0: float, x0, t1: float, p):
+        h = t1 - t0
+        d = t0 - seg.start
+        try:
+            a = [(ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k)]
+            b = [bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k)]
+            if not all(map(math.isfinite, a + b + [ai * math.exp(ki * h) for ai, ki in zip(a, seg.k)])):
+                raise OverflowError
+        except OverflowError:
+            raise SimulationError("a pump rate of the schedule grows past any finite number "
+                                  "(an exponential segment)", t0) from None
+        q = np.concatenate([[t0, h], a, b, seg.k, p])
+        try:
+            out = self._integrator(x0=x0, p=q)
+        except RuntimeError as exc:
+            raise SimulationError(f"the integrator failed: {_short(exc)}", t0) from None
+        xf = np.array(out["xf"]).T  # (points, nx)
+        if not np.all(np.isfinite(xf)):
+            bad = int(np.argmax(~np.all(np.isfinite(xf), axis=1)))
+            names = [n for n, ok in zip(self.model.state_names, np.isfinite(xf[bad])) if not ok]
+            raise SimulationError(f"{', '.join(names)} became infinite or not a number",
+                                  t0 + h * (self._grid[bad - 1] if bad else 0.0))
+        return t0 + h * self._grid, xf
 
 
 def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Trajectory:
     """Integrate ``schedule`` over [0, end_time] h. See :class:`Simulator`."""
-    min_points = kwargs.pop("min_points", 2000)
-    return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points)
+    min_points = kwargs.pop("min_points", SAMPLES)
+    x0, p = kwargs.pop("x0", None), kwargs.pop("p", None)
+    return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points, x0=x0, p=p)
 
 
 def _pieces(seg: Segment, max_len: float):
@@ -132,8 +187,12 @@ def _pieces(seg: Segment, max_len: float):
     edges = np.linspace(seg.start, seg.end, n + 1)
     for s, e in zip(edges[:-1], edges[1:]):
         d = s - seg.start
-        a = tuple((ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k))
-        b = tuple(bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k))
+        try:
+            a = tuple((ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k))
+            b = tuple(bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k))
+        except OverflowError:
+            raise SimulationError("a pump rate of the schedule grows past any finite number "
+                                  "(an exponential segment)", float(s)) from None
         yield Segment(float(s), float(e), a, b, seg.k)
 
 

@@ -1,29 +1,36 @@
-"""IPOPT through CasADi: initial guesses, multistart, and the status table.
+"""IPOPT through CasADi: built solvers, initial feeds, one solve, and the status table.
 
-Initial guesses come from simulating candidate feeds (constant fractions of the pump
-range, exponential feeds growing to the maximum), each scaled down if it would
-overfill the vessel. Each start is solved in its own process when more than one core
-is free; every process builds its own model from the picklable Problem.
+Build once, solve many. :func:`get_nlp` returns the :class:`~optfeed.transcription.FeedNLP`
+of a problem's structure from a per-process cache, so starts, back-off rounds and the
+cases of a sweep that differ only in numbers reuse one graph. For each IPOPT option
+profile (a cold start, a warm start...) the NLP builds its solver once; the
+profiles share the expanded NLP and its derivatives, which are most of the cost.
+
+Every solve is watched after each IPOPT iteration (:class:`Watch`): it reports
+progress, stops at a deadline (``--time-limit``) and stops at once on Ctrl-C, so an
+interrupted run never carries on to an answer. Budgets are iteration counts, never
+wall time, so a run's answer does not depend on how busy the machine is.
 """
 
 from __future__ import annotations
 
 import math
-import os
+import signal
+import threading
 import time
+from collections import OrderedDict
 from dataclasses import dataclass, field
 
 import casadi as ca
 import numpy as np
 
-from .collocation import Transcription
 from .errors import SimulationError
 from .limits import build_limits
 from .model import build_model
-from .processes import cpu_count, run_killable
 from .problem.spec import Problem
 from .schedule import piecewise_constant
 from .simulate import Simulator
+from .transcription import FeedNLP, Grid, NLPData, structure_key
 
 # IPOPT's return_status -> our word for how the solver ended
 IPOPT_STATUS = {
@@ -37,7 +44,7 @@ IPOPT_STATUS = {
     "Maximum_WallTime_Exceeded": "time limit",
     "Search_Direction_Becomes_Too_Small": "failed",
     "Diverging_Iterates": "failed",
-    "User_Requested_Stop": "failed",
+    "User_Requested_Stop": "stopped",
     "Error_In_Step_Computation": "failed",
     "Not_Enough_Degrees_Of_Freedom": "failed",
     "Invalid_Number_Detected": "failed",
@@ -48,36 +55,199 @@ IPOPT_STATUS = {
     "Insufficient_Memory": "failed",
 }
 
+# IPOPT option profiles, measured on the shipped examples and the published
+# benchmarks. 'cold': a monotone barrier from a small initial mu suits starts from
+# simulated feeds (near-feasible); 'adaptive' rescues some of the rest and explores
+# other basins; 'near': from a good point without multipliers (a coarse answer moved
+# to a finer grid); 'warm': from a nearby solution with its multipliers (back-off
+# rounds, a changed bound).
+PROFILES = {
+    "cold": {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-3},
+    "adaptive": {"ipopt.mu_strategy": "adaptive"},
+    "near": {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-5},
+    "warm": {"ipopt.warm_start_init_point": "yes", "ipopt.mu_init": 1e-6, "ipopt.warm_start_bound_push": 1e-9,
+             "ipopt.warm_start_mult_bound_push": 1e-9, "ipopt.mu_strategy": "monotone"},
+}
 
-@dataclass
-class Scaling:
-    """Nominal magnitudes shared by every start (so their NLPs are identical).
 
-    x : (nx,) states; t : end time, h; objective : internal units.
+def ipopt_options(tolerance: float, profile: str) -> dict:
+    return {
+        "print_time": False,
+        "ipopt.print_level": 0,
+        "ipopt.sb": "yes",
+        "ipopt.tol": tolerance,
+        "ipopt.acceptable_tol": max(tolerance * 100, 1e-6),
+        "ipopt.acceptable_iter": 10,
+        # approximate minimum fill ordering: on collocation KKT systems it keeps the
+        # time per iteration linear in the element count, where MUMPS' automatic
+        # choice grew about 4x faster (benchmarks/optimize_benchmark.py)
+        "ipopt.mumps_pivot_order": 2,
+        **PROFILES[profile],
+    }
+
+
+# ---------------------------------------------------------------------- watching a solve
+
+
+class Interrupted(Exception):
+    """Ctrl-C arrived during a solve (raised after the solver has stopped cleanly)."""
+
+
+class Watch(ca.Callback):
+    """Called by IPOPT after every iteration: progress, deadline, Ctrl-C.
+
+    One per built solver; what it watches for is set before each solve.
     """
 
-    x: np.ndarray
-    t: float
-    objective: float
+    def __init__(self, nx: int, ng: int, np_: int):
+        ca.Callback.__init__(self)
+        self.nx, self.ng, self.np = nx, ng, np_
+        self.reset()
+        self.construct("watch", {})
+
+    def reset(self, deadline: float | None = None, report=None, every: float = 2.0, label: str = ""):
+        self.deadline, self.report, self.every, self.label = deadline, report, every, label
+        self.iterations = 0
+        self.stopped_for = None
+        self._last = time.monotonic()
+
+    # CasADi's Callback interface
+    def get_n_in(self):
+        return ca.nlpsol_n_out()
+
+    def get_n_out(self):
+        return 1
+
+    def get_name_in(self, i):
+        return ca.nlpsol_out(i)
+
+    def get_name_out(self, i):
+        return "ret"
+
+    def get_sparsity_in(self, i):
+        name = ca.nlpsol_out(i)
+        if name == "f":
+            return ca.Sparsity.scalar()
+        if name in ("x", "lam_x"):
+            return ca.Sparsity.dense(self.nx)
+        if name in ("g", "lam_g"):
+            return ca.Sparsity.dense(self.ng)
+        return ca.Sparsity.dense(self.np)  # lam_p
+
+    def eval(self, arg):
+        self.iterations += 1
+        now = time.monotonic()
+        if _INTERRUPT.is_set():
+            self.stopped_for = "interrupted"
+            return [1]
+        if self.deadline is not None and now > self.deadline:
+            self.stopped_for = "time limit"
+            return [1]
+        if self.report is not None and now - self._last >= self.every:
+            self._last = now
+            self.report(self.label, self.iterations, float(arg[1]))
+        return [0]
+
+
+_INTERRUPT = threading.Event()
+
+
+class interrupt_guard:
+    """Context manager: Ctrl-C during the block sets a flag that every running solve
+    sees after its current iteration (it then stops); on leaving, a pending Ctrl-C is
+    raised as KeyboardInterrupt. Only in the main thread; elsewhere it does nothing."""
+
+    def __enter__(self):
+        _INTERRUPT.clear()
+        self._old = None
+        if threading.current_thread() is threading.main_thread():
+            self._old = signal.signal(signal.SIGINT, lambda *a: _INTERRUPT.set())
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        if self._old is not None:
+            signal.signal(signal.SIGINT, self._old)
+        if _INTERRUPT.is_set() and exc_type is None:
+            _INTERRUPT.clear()
+            raise KeyboardInterrupt
+        return False
+
+
+def interrupted() -> bool:
+    return _INTERRUPT.is_set()
+
+
+# ---------------------------------------------------------------------- built solvers
+
+_CACHE: OrderedDict = OrderedDict()
+CACHE_SIZE = 12
+
+
+def get_nlp(problem: Problem, model, limits, grid: Grid, free_time: bool, scenarios: int = 1,
+            combine: str = "mean", smoothing: bool = False) -> FeedNLP:
+    """The FeedNLP of this problem's structure (built on first use, then reused)."""
+    key = structure_key(problem, grid, free_time, scenarios, combine, smoothing)
+    if key in _CACHE:
+        _CACHE.move_to_end(key)
+        return _CACHE[key]
+    nlp = FeedNLP(model, limits, grid, free_time, scenarios, combine, smoothing)
+    nlp.key = key
+    _CACHE[key] = nlp
+    while len(_CACHE) > CACHE_SIZE:
+        _CACHE.popitem(last=False)
+    return nlp
+
+
+def cache_info() -> dict:
+    return {"entries": len(_CACHE), "solvers": sum(len(n._solvers) for n in _CACHE.values())}
+
+
+def clear_cache() -> None:
+    _CACHE.clear()
+
+
+def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int):
+    key = (profile, tolerance, max_iter)
+    if key in nlp._solvers:
+        return nlp._solvers[key]
+    if nlp._derivatives is None:
+        F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
+        x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
+        p = ca.SX.sym("p", nlp.nlp["p"].shape[0])
+        f, g = F(x, p)
+        nlp._sx = {"x": x, "p": p, "f": f, "g": g}
+        nlp._derivatives = {}
+    opts = ipopt_options(tolerance, profile)
+    opts["ipopt.max_iter"] = int(max_iter)
+    opts.update(nlp._derivatives)
+    watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
+    opts["iteration_callback"] = watch
+    solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
+    if not nlp._derivatives:  # the first solver made them; the others reuse them
+        nlp._derivatives = {"grad_f": solver.get_function("nlp_grad_f"),
+                            "jac_g": solver.get_function("nlp_jac_g"),
+                            "hess_lag": solver.get_function("nlp_hess_l")}
+    nlp._solvers[key] = (solver, watch)
+    return solver, watch
 
 
 @dataclass
 class Start:
-    """One start of the multistart.
+    """One solve of the NLP.
 
     Attributes
     ----------
     label : str
         The initial feed it began from.
     status : str
-        'converged', 'infeasible', 'iteration limit', 'time limit' or 'failed'.
+        'converged', 'infeasible', 'iteration limit', 'time limit', 'interrupted',
+        'failed', or 'not run' (its turn never came: time limit or Ctrl-C first).
     ipopt_status : str
-        IPOPT's own return status.
     objective : float or None
         NLP objective J (internal units, its own sense), None if not finite.
     iterations : int
     seconds : float
-        Wall time of the solve.
+        CPU time of the solve itself (never time spent waiting).
     w, lam_g, lam_x : ndarray
         Solution and multipliers.
     guess_objective : float or None
@@ -96,14 +266,70 @@ class Start:
     guess_objective: float | None = None
 
 
+def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold", tolerance: float = 1e-8,
+          max_iter: int = 3000, warm=None, deadline: float | None = None, report=None,
+          guess_objective=None) -> Start:
+    """One IPOPT solve from ``w0``; never raises for a solver failure.
+
+    ``warm`` = (lam_g, lam_x), multipliers of a nearby solution (use with profile
+    'warm'). ``deadline`` (time.monotonic) stops the solve ('time limit');
+    ``report(label, iteration, objective)`` is called every few seconds.
+    """
+    solver, watch = _solver(nlp, profile, tolerance, max_iter)
+    watch.reset(deadline, report, label=label)
+    args = nlp.arguments(data)
+    if warm is not None:
+        args["lam_g0"], args["lam_x0"] = warm
+    c0 = time.process_time()
+    try:
+        res = solver(x0=w0, **args)
+    except RuntimeError as exc:  # evaluation errors surface here
+        return Start(label, "failed", f"error: {str(exc).splitlines()[-1][:120]}", None, watch.iterations,
+                     time.process_time() - c0, np.asarray(w0, dtype=float), np.zeros(nlp.n_g), np.zeros(nlp.n_w),
+                     guess_objective)
+    seconds = time.process_time() - c0
+    stats = solver.stats()
+    ipopt_status = stats.get("return_status", "unknown")
+    status = IPOPT_STATUS.get(ipopt_status, "failed")
+    if status == "stopped":
+        status = watch.stopped_for or "failed"
+    w = np.array(res["x"]).ravel()
+    J = nlp.objective_value(w, data)
+    return Start(
+        label=label, status=status, ipopt_status=ipopt_status,
+        objective=J if math.isfinite(J) else None, iterations=int(stats.get("iter_count", 0)),
+        seconds=seconds, w=w, lam_g=np.array(res["lam_g"]).ravel(), lam_x=np.array(res["lam_x"]).ravel(),
+        guess_objective=guess_objective,
+    )
+
+
+# ---------------------------------------------------------------------- initial feeds
+
+
+@dataclass
+class Scaling:
+    """Nominal magnitudes shared by every start (so their NLPs are identical).
+
+    x : (nx,) states of the NLP's model; t : end time, h; objective : internal units.
+    """
+
+    x: np.ndarray
+    t: float
+    objective: float
+
+
 @dataclass
 class Guess:
+    """A candidate feed, simulated: its pump steps (M, nu) L/h, run length T (h),
+    the simulated states (of the full model) and objective."""
+
     label: str
-    steps_u: np.ndarray  # (M, nu), L/h
+    steps_u: np.ndarray
     T: float
     times: np.ndarray
     states: np.ndarray
     objective: float | None
+    trajectory: object = field(default=None, repr=False)
 
 
 def end_time_info(problem: Problem):
@@ -114,43 +340,66 @@ def end_time_info(problem: Problem):
     return h.end_time, (h.end_time, h.end_time), h.end_time
 
 
+# The order of the candidate feeds: a run with n starts tries the first n, so more
+# starts only add candidates. They span the range: exponential feeds of several
+# steepness, and constant feeds from low to the most the vessel can take.
+SHAPES = (("exp", 3.0), ("const", 0.1), ("const", 0.5), ("exp", 6.0), ("const", 1.0), ("exp", 1.5),
+          ("const", 0.25), ("exp", 10.0), ("const", 0.75))
+
+
 def candidate_feeds(problem: Problem, T: float, M: int, count: int) -> list[tuple[str, np.ndarray]]:
-    """Up to ``count`` candidate pump programmes, (label, (M, nu) rates in L/h)."""
+    """Up to ``count`` distinct candidate pump programmes, (label, (M, nu) rates in L/h).
+
+    Constant feeds are fractions of the largest useful constant rate: the pump
+    maximum, or the rate that fills the vessel to 95 % of its room by the end if that
+    is lower. Exponential feeds rise e^k-fold over the run to the same top, scaled
+    so that they never feed more than that room either.
+    """
     feeds = problem.feeds
     fmin = np.array([f.min_rate for f in feeds])
     fmax = np.array([f.max_rate for f in feeds])
     t_mid = (np.arange(M) + 0.5) * T / M
-    room = problem.vessel.working_volume - problem.vessel.initial_volume
+    room = 0.95 * (problem.vessel.working_volume - problem.vessel.initial_volume)
+    dt = T / M
 
-    def fit(rates, label):
+    def fit(rates):
         rates = np.clip(rates, fmin, fmax)
-        fed = rates.sum() * T / M
-        if fed > 0.95 * room and fed > 0:
+        fed = rates.sum() * dt
+        base = fmin.sum() * T
+        if fed > room and fed > base:
             extra = rates - fmin
-            need = 0.95 * room - fmin.sum() * T
-            scale = max(0.0, need / max(extra.sum() * T / M, 1e-300))
+            scale = max(0.0, (room - base) / max(extra.sum() * dt, 1e-300))
             rates = fmin + extra * min(1.0, scale)
-            label += " (scaled to fit the vessel)"
-        return label, rates
+        return rates
 
-    shapes = []
-    for kT, frac in ((3.0, None), (None, 0.25), (6.0, None), (None, 0.6), (1.5, None), (None, 0.1),
-                     (10.0, None), (None, 0.9)):
-        if kT is not None:
-            prof = np.exp(kT * (t_mid / T - 1.0))[:, None]
-            shapes.append(fit(fmin + prof * (fmax - fmin), f"exponential feed rising e^{kT:g}-fold to the pump maximum"))
+    out = []
+    for kind, value in SHAPES:
+        if kind == "const":
+            rates = fit(np.tile(fmax, (M, 1)))  # the top constant feed that fits
+            top = rates[0] - fmin
+            rates = np.tile(fmin + value * top, (M, 1))
+            label = f"constant feed at {value:.0%} of the largest that fits"
         else:
-            shapes.append(fit(np.tile(fmin + frac * (fmax - fmin), (M, 1)), f"constant {frac:.0%} of pump range"))
-    while len(shapes) < count:  # more starts than shapes: random piecewise profiles, fixed seed
-        rng = np.random.default_rng(len(shapes))
-        shapes.append(fit(fmin + rng.uniform(0, 1, (M, len(feeds))) * (fmax - fmin), f"random #{len(shapes)}"))
-    return shapes[:count]
+            prof = np.exp(value * (t_mid / T - 1.0))[:, None]
+            rates = fit(fmin + prof * (fmax - fmin))
+            label = f"exponential feed rising e^{value:g}-fold"
+        if not any(np.allclose(rates, r, rtol=1e-6, atol=1e-12) for _, r in out):
+            out.append((label, rates))
+        if len(out) == count:
+            return out
+    k = 0
+    while len(out) < count:  # more starts than shapes: random piecewise profiles, fixed seeds
+        rng = np.random.default_rng(k)
+        k += 1
+        out.append((f"random feed #{k}", fit(fmin + rng.uniform(0, 1, (M, len(feeds))) * (fmax - fmin))))
+    return out
 
 
-def make_guesses(problem: Problem, model, count: int) -> list[Guess]:
-    """Simulate the candidate feeds; drop those the integrator cannot follow."""
+def make_guesses(problem: Problem, model, count: int, M: int | None = None) -> list[Guess]:
+    """Simulate the candidate feeds with the full model; drop those the integrator
+    cannot follow."""
     fixed, bounds, T = end_time_info(problem)
-    M = problem.settings.pump_steps
+    M = M or problem.settings.pump_steps
     sim = Simulator(model)
     out = []
     for label, steps in candidate_feeds(problem, T, M, count):
@@ -160,12 +409,14 @@ def make_guesses(problem: Problem, model, count: int) -> list[Guess]:
         except SimulationError:
             continue
         J = model.end_value(traj.final, T, traj.u[-1]) if problem.objective is not None else None
-        out.append(Guess(label, steps, T, traj.t, traj.x, None if J is None else float(J)))
+        out.append(Guess(label, steps, T, traj.t, traj.x, None if J is None else float(J), traj))
     return out
 
 
-def scaling_for(problem: Problem, guesses: list[Guess]) -> Scaling:
-    xs = np.max([np.max(np.abs(g.states), axis=0) for g in guesses], axis=0)
+def scaling_for(problem: Problem, nlp_model, guesses: list[Guess], full_model) -> Scaling:
+    """Nominal magnitudes from the simulated guesses, for the NLP model's states."""
+    idx = [full_model.index(n) for n in nlp_model.state_names]
+    xs = np.max([np.max(np.abs(g.states[:, idx]), axis=0) for g in guesses], axis=0)
     xs = np.where(xs > 1e-9, xs, 1.0)
     js = [abs(g.objective) for g in guesses if g.objective is not None and math.isfinite(g.objective)]
     j = max(js) if js and max(js) > 1e-12 else 1.0
@@ -173,159 +424,13 @@ def scaling_for(problem: Problem, guesses: list[Guess]) -> Scaling:
     return Scaling(xs, float(T), float(j))
 
 
-def transcribe(problem: Problem, scaling: Scaling, model=None, limits=None, backoff=None) -> Transcription:
-    model = model or build_model(problem)
-    limits = limits if limits is not None else build_limits(model)
-    fixed, bounds, _ = end_time_info(problem)
-    return Transcription(model, limits, problem.settings, fixed, bounds, scaling.x, scaling.t, scaling.objective,
-                         backoff)
+def states_for(nlp_model, full_model, states: np.ndarray) -> np.ndarray:
+    """Columns of a full-model state array that the NLP model keeps."""
+    return states[:, [full_model.index(n) for n in nlp_model.state_names]]
 
 
-# Barrier strategies tried in turn until one converges. A monotone barrier from a
-# small initial mu suits these problems (guesses from simulation are near-feasible);
-# the adaptive strategy rescues some of the rest. Each but the last gets at most
-# FIRST_PROFILE_ITER iterations (a start that wanders that long rarely converges
-# with it), and all together at most solver.max_iter. Measured on the shipped
-# examples and the published benchmarks.
-IPOPT_PROFILES = (
-    {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-3},
-    {"ipopt.mu_strategy": "adaptive"},
-)
-FIRST_PROFILE_ITER = 1000
-
-
-def ipopt_options(settings, profile: dict | None = None, quiet: bool = True) -> dict:
-    return {
-        "expand": True,
-        "print_time": False,
-        "ipopt.print_level": 0 if quiet else 5,
-        "ipopt.sb": "yes",
-        "ipopt.max_iter": settings.max_iter,
-        "ipopt.tol": settings.tolerance,
-        "ipopt.acceptable_tol": max(settings.tolerance * 100, 1e-6),
-        "ipopt.acceptable_iter": 10,
-        # approximate minimum fill ordering: on collocation KKT systems it keeps the
-        # time per iteration linear in the element count, where MUMPS' automatic
-        # choice grew about 4x faster (benchmarks/optimize_benchmark.py)
-        "ipopt.mumps_pivot_order": 2,
-        **(profile if profile is not None else IPOPT_PROFILES[0]),
-    }
-
-
-WARM_PROFILE = {
-    "ipopt.warm_start_init_point": "yes", "ipopt.mu_init": 1e-6, "ipopt.warm_start_bound_push": 1e-9,
-    "ipopt.warm_start_mult_bound_push": 1e-9, "ipopt.mu_strategy": "monotone",
-}
-
-
-def solve_one(trans: Transcription, w0: np.ndarray, label: str, guess_objective=None, warm=None) -> Start:
-    """Solve the NLP from ``w0``, trying each of :data:`IPOPT_PROFILES` until one
-    converges; never raises for a solver failure. Iterations and time add up.
-
-    ``warm`` = (lam_g, lam_x), multipliers of a nearby solution: then a warm start
-    (small barrier, the given multipliers) is tried first."""
-    best, iterations, seconds = None, 0, 0.0
-    profiles = list(IPOPT_PROFILES)
-    if warm is not None:
-        profiles.insert(0, WARM_PROFILE)
-    for k, profile in enumerate(profiles):
-        left = trans.settings.max_iter - iterations  # max_iter bounds the start as a whole
-        if left <= 0:
-            break
-        cap = min(left, FIRST_PROFILE_ITER) if k < len(profiles) - 1 else left
-        profile = {**profile, "ipopt.max_iter": cap}
-        start = _solve_profile(trans, w0, label, guess_objective, profile,
-                               warm if "ipopt.warm_start_init_point" in profile else None)
-        iterations += start.iterations
-        seconds += start.seconds
-        if best is None or start.status == "converged":
-            best = start
-        if start.status == "converged":
-            break
-    best.iterations, best.seconds = iterations, seconds
-    if k > 0 and best.status == "converged":
-        best.label += f" (after {k} fallback)"
-    return best
-
-
-def _solve_profile(trans, w0, label, guess_objective, profile, warm=None) -> Start:
-    solver = ca.nlpsol("optfeed", "ipopt", trans.nlp, ipopt_options(trans.settings, profile))
-    t0 = time.perf_counter()
-    extra = {} if warm is None else {"lam_g0": warm[0], "lam_x0": warm[1]}
-    try:
-        res = solver(x0=w0, lbx=trans.lbx, ubx=trans.ubx, lbg=trans.lbg, ubg=trans.ubg, **extra)
-    except RuntimeError as exc:  # evaluation errors surface here
-        return Start(label, "failed", f"error: {str(exc).splitlines()[-1][:120]}", None, 0,
-                     time.perf_counter() - t0, w0, np.zeros(trans.n_g), np.zeros(trans.n_w), guess_objective)
-    seconds = time.perf_counter() - t0
-    stats = solver.stats()
-    ipopt_status = stats.get("return_status", "unknown")
-    w = np.array(res["x"]).ravel()
-    J = trans.objective_value(w)
-    return Start(
-        label=label, status=IPOPT_STATUS.get(ipopt_status, "failed"), ipopt_status=ipopt_status,
-        objective=J if math.isfinite(J) else None, iterations=int(stats.get("iter_count", 0)),
-        seconds=seconds, w=w, lam_g=np.array(res["lam_g"]).ravel(), lam_x=np.array(res["lam_x"]).ravel(),
-        guess_objective=guess_objective,
-    )
-
-
-def _worker(args):
-    problem, scaling, guess = args
-    trans = transcribe(problem, scaling)
-    w0 = trans.pack(guess.times, guess.states, guess.steps_u, guess.T)
-    return solve_one(trans, w0, guess.label, guess.objective)
-
-
-# A start still running when it has taken BUDGET_FACTOR times as long as the median
-# converged start (and at least MIN_BUDGET_S) is stopped: the others have answered,
-# and a start that wanders that long rarely finds a better optimum.
-BUDGET_FACTOR = 3.0
-MIN_BUDGET_S = 5.0
-
-
-def multistart(problem: Problem, scaling: Scaling, guesses: list[Guess], workers: int | None = None,
-               on_done=None) -> list[Start]:
-    """Solve from every guess; in parallel processes when ``workers`` > 1 (default:
-    the cores this process may use, at most one per start), in this process otherwise.
-
-    ``on_done(start, n_done, n_total)`` is called as each start finishes. Returns the
-    starts in the order of ``guesses``.
-    """
-    jobs = [(problem, scaling, g) for g in guesses]
-    if workers is None:
-        workers = min(len(jobs), cpu_count())
-    if workers <= 1 or len(jobs) == 1:
-        out = []
-        for job in jobs:
-            out.append(_worker(job))
-            if on_done:
-                on_done(out[-1], len(out), len(jobs))
-        return out
-    return _parallel(jobs, workers, on_done)
-
-
-def _parallel(jobs, workers, on_done) -> list[Start]:
-    results: dict[int, Start] = {}
-
-    def done(i, kind, payload, seconds):
-        if kind == "ok":
-            results[i] = payload
-        else:
-            results[i] = _failed_start(jobs[i], payload, seconds, "time limit" if kind == "killed" else "failed")
-        if on_done:
-            on_done(results[i], len(results), len(jobs))
-
-    def over_budget(i, seconds):
-        times = sorted(s.seconds for s in results.values() if s.status == "converged")
-        if times and seconds > max(MIN_BUDGET_S, BUDGET_FACTOR * times[len(times) // 2]):
-            return f"stopped after {seconds:.0f} s, over the multistart time budget"
-        return None
-
-    run_killable(list(enumerate(jobs)), _worker, workers, done, over_budget)
-    return [results[i] for i in range(len(jobs))]
-
-
-def _failed_start(job, why: str, seconds: float, status: str = "failed") -> Start:
-    guess = job[2]
-    return Start(guess.label, status, why, None, 0, seconds, np.zeros(0), np.zeros(0), np.zeros(0), guess.objective)
+def models(problem: Problem):
+    """(full model for simulation and reports, lean model for the NLP, its limits)."""
+    full = build_model(problem)
+    lean = build_model(problem, fed="used")
+    return full, lean, build_limits(lean)

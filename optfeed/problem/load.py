@@ -533,5 +533,18 @@ class _Builder:
                 self.fail(loc + (key,), f"must be a positive number, got {value}")
         if steps * s.elements_per_step > 20000:
             self.fail(loc, "more than 20000 finite elements")
+        if not 0 <= s.grid_tolerance <= 0.1:
+            self.fail(loc + ("grid_tolerance",), f"must be between 0 and 0.1 (a relative change), got {s.grid_tolerance}")
+        if not steps <= s.max_pump_steps <= 5000:
+            self.fail(loc + ("max_pump_steps",), f"must be between pump_steps ({steps}) and 5000, got {s.max_pump_steps}")
+        limit = None
+        if s.time_limit is not None:
+            got = self.quantity(s.time_limit, "time", loc + ("time_limit",))
+            if got:
+                limit = got[0] * 3600.0
+                if not 0 < limit <= 30 * 86400:
+                    self.fail(loc + ("time_limit",), f"must be above zero and at most 30 days, got {s.time_limit!r}")
+        refine = s.refine_grid if s.refine_grid is not None else (s.pump_steps is None and s.pump_interval is None)
         return Settings(steps, s.elements_per_step, s.degree, s.starts, float(s.smoothing), s.max_iter,
-                        float(s.tolerance), float(s.verify_tolerance))
+                        float(s.tolerance), float(s.verify_tolerance), bool(refine), float(s.grid_tolerance),
+                        int(s.max_pump_steps), limit)

@@ -94,6 +94,10 @@ class SolverIn(_Strict):
     max_iter: int = _DEFAULT.max_iter
     tolerance: float = _DEFAULT.tolerance
     verify_tolerance: float = _DEFAULT.verify_tolerance
+    refine_grid: Optional[StrictBool] = None  # default: on unless the file sets the pump grid
+    grid_tolerance: float = _DEFAULT.grid_tolerance
+    max_pump_steps: int = _DEFAULT.max_pump_steps
+    time_limit: Optional[Scalar] = None
 
 
 class ProblemIn(_Strict):

@@ -200,6 +200,19 @@ class Settings:
         objective for an answer to count as verified. (Limits are judged as
         ``optfeed check`` judges them, to 1e-6 of their bound; a limit exceeded
         between collocation points is backed off and the problem re-solved.)
+    refine_grid : bool
+        Double the pump grid (warm-started from the coarser answer) until the
+        objective changes by less than ``grid_tolerance``. On by default when the
+        file gives neither ``pump_steps`` nor ``pump_interval``: a pump grid the user
+        chose is taken as the pump's own.
+    grid_tolerance : float
+        Relative change of the objective below which the pump grid counts as fine
+        enough.
+    max_pump_steps : int
+        The finest pump grid refinement may reach.
+    time_limit : float or None
+        Seconds for the whole optimize job (None: no limit); when it is reached the
+        best verified answer so far is reported, with a status that says so.
     """
 
     pump_steps: int = 40
@@ -210,6 +223,10 @@ class Settings:
     max_iter: int = 3000
     tolerance: float = 1e-8
     verify_tolerance: float = 2e-3
+    refine_grid: bool = True
+    grid_tolerance: float = 5e-4
+    max_pump_steps: int = 320
+    time_limit: float | None = None
 
     @property
     def elements(self) -> int:

@@ -92,7 +92,7 @@ def trajectory_table(model, traj) -> tuple[list[str], np.ndarray]:
         cols.append(traj.feed(f.name) * factor_to(f.unit))
     names = [n for n in model.values if n not in ("F_total",)]
     if names:
-        fn = ca.Function("v", [model.t, model.x, model.u], [ca.vertcat(*[model.values[n] for n in names])])
+        fn = model.function("v", [ca.vertcat(*[model.values[n] for n in names])], p=traj.constants)
         vals = np.array(fn.map(len(traj.t))(traj.t[None, :], traj.x.T, traj.u.T)).reshape(len(names), -1)
         for n, row in zip(names, vals):
             if n == "OUR":
