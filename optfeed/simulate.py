@@ -16,7 +16,8 @@ import numpy as np
 
 from .errors import SimulationError
 from .model import Model
-from .schedule import Schedule, Segment
+from .schedule import Schedule, ScheduleOverflow, Segment
+from .units import factor_to
 
 RTOL = 1e-10
 ATOL = 1e-10
@@ -78,7 +79,8 @@ class Simulator:
         f = model.function("f", [model.rhs])
         ode = h * f(t0 + h * tau, model.x, u)
         grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
-        opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False}
+        opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
+                "disable_internal_warnings": True}
         self._integrator = ca.integrator("piece", "cvodes", {"x": model.x, "p": p, "t": tau, "ode": ode},
                                          0.0, grid, opts)
         self._grid = grid
@@ -92,22 +94,31 @@ class Simulator:
             When CVODES fails or the state stops being finite.
         """
         m = self.model
-        segments = schedule.segments(m.feed_names, end_time)
+        try:
+            segments = schedule.segments(m.feed_names, end_time)
+        except ScheduleOverflow as exc:
+            raise SimulationError(f"the rate of feed {exc.feed!r} grows past any finite number", exc.time) from None
         max_len = end_time * self.points / max(min_points, 1)
         x = np.array(m.x0 if x0 is None else x0, dtype=float)
         ts, xs, us = [], [], []
         for seg in segments:
-            for piece in _pieces(seg, max_len):
+            for piece in _pieces(seg, max_len, m.feed_names):
                 h = piece.end - piece.start
                 p = np.concatenate([[piece.start, h], piece.a, piece.b, piece.k])
                 try:
                     out = self._integrator(x0=x, p=p)
                 except RuntimeError as exc:
-                    raise SimulationError(f"the integrator failed: {_short(exc)}", piece.start) from None
+                    raise SimulationError(f"the integrator failed ({_short(exc)}); {self._largest(x, piece)}",
+                                          piece.start) from None
                 xf = np.array(out["xf"]).T  # (points, nx)
-                if not np.all(np.isfinite(xf)):
-                    raise SimulationError("the state became infinite or not a number", piece.start)
                 t = piece.start + h * self._grid
+                if not np.all(np.isfinite(xf)):
+                    row = int(np.argmax(~np.all(np.isfinite(xf), axis=1)))
+                    names = [n for j, n in enumerate(m.state_names) if not np.isfinite(xf[row, j])]
+                    before = piece.start if row == 0 else float(t[row - 1])
+                    raise SimulationError(f"{', '.join(names)} became infinite or not a number between "
+                                          f"{before:.6g} h and {t[row]:.6g} h; {self._largest(x, piece)}",
+                                          before)
                 ts.append(np.concatenate([[piece.start], t]))
                 xs.append(np.vstack([x, xf]))
                 us.append(piece.rates(ts[-1]))
@@ -118,13 +129,30 @@ class Simulator:
         )
 
 
+    def _largest(self, x, piece) -> str:
+        """Text naming the largest state (in its unit) and pump rate at the start of ``piece``."""
+        m = self.model
+        j = int(np.argmax(np.abs(x))) if len(x) else 0
+        name = m.state_names[j]
+        unit = next((s.unit for s in m.problem.species if s.name == name), None)
+        if name == "V":
+            unit = m.problem.vessel.unit
+        value = f"{x[j] * factor_to(unit):.4g} {unit}" if unit else f"{x[j]:.4g} (internal units)"
+        text = f"at {piece.start:.6g} h the largest state was {name} = {value}"
+        rates = piece.rates(np.array([piece.start]))[0] if len(piece.a) else []
+        if len(rates):
+            f = int(np.argmax(np.abs(rates)))
+            text += f" and the largest pump rate {m.feed_names[f]} = {rates[f]:.4g} L/h"
+        return text
+
+
 def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Trajectory:
     """Integrate ``schedule`` over [0, end_time] h. See :class:`Simulator`."""
     min_points = kwargs.pop("min_points", 2000)
     return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points)
 
 
-def _pieces(seg: Segment, max_len: float):
+def _pieces(seg: Segment, max_len: float, feed_names=()):
     n = max(1, math.ceil((seg.end - seg.start) / max_len - 1e-9))
     if n == 1:
         yield seg
@@ -132,12 +160,34 @@ def _pieces(seg: Segment, max_len: float):
     edges = np.linspace(seg.start, seg.end, n + 1)
     for s, e in zip(edges[:-1], edges[1:]):
         d = s - seg.start
-        a = tuple((ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k))
-        b = tuple(bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k))
+        try:
+            grow = [math.exp(ki * d) for ki in seg.k]
+        except OverflowError:
+            j = max(range(len(seg.k)), key=lambda i: seg.k[i])
+            raise SimulationError(f"the rate of feed {feed_names[j]!r} grows past any finite number",
+                                  float(s)) from None
+        a = tuple((ai + bi * d) * g if ai or bi else 0.0 for ai, bi, g in zip(seg.a, seg.b, grow))
+        b = tuple(bi * g if bi else 0.0 for bi, g in zip(seg.b, grow))
         yield Segment(float(s), float(e), a, b, seg.k)
 
 
+# CVODES return flags in words
+_CVODES_WORDS = {
+    "CV_TOO_MUCH_WORK": "too many integrator steps: a state changes too fast",
+    "CV_TOO_MUCH_ACC": "the accuracy asked for cannot be reached",
+    "CV_ERR_FAILURE": "the integrator could not keep its error small: a state grows too fast or the model is stiff",
+    "CV_CONV_FAILURE": "the integrator's corrector did not converge: a state grows too fast or the model is stiff",
+    "CV_RHSFUNC_FAIL": "the model's rates could not be evaluated",
+    "CV_REPTD_RHSFUNC_ERR": "the model's rates could not be evaluated (a state became too large or not a number)",
+    "CV_UNREC_RHSFUNC_ERR": "the model's rates could not be evaluated",
+}
+
+
 def _short(exc) -> str:
-    text = str(exc).strip().splitlines()
-    msg = next((line for line in reversed(text) if line.strip()), "unknown error")
+    text = str(exc)
+    for flag, words in _CVODES_WORDS.items():
+        if f'"{flag}"' in text or f"'{flag}'" in text or text.rstrip().endswith(flag):
+            return words
+    lines = text.strip().splitlines()
+    msg = next((line for line in reversed(lines) if line.strip()), "unknown error")
     return msg[:200]
