@@ -145,10 +145,13 @@ def parse_quantity(value, kind: str):
     Raises ValueError with a message for the user (what was expected, an example).
     """
     k = KINDS[kind]
-    if isinstance(value, bool) or value is None:
-        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {value!r}")
+    if isinstance(value, bool):  # YAML's yes/no/true/false/on/off
+        raise ValueError(f"a yes/no value (read as {str(value).lower()}) is not a {k.name.replace('_', ' ')} "
+                         f"like '{k.example}'")
+    if value is None:
+        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got nothing (null)")
     if isinstance(value, (int, float)):
-        q = UREG.Quantity(float(value), k.default_unit or "")
+        q = UREG.Quantity(float(value), _default_units(k.default_unit))
     elif isinstance(value, str):
         m = _QUANTITY_RE.match(value)
         if not m:
@@ -160,7 +163,7 @@ def parse_quantity(value, kind: str):
             _check_unit_text(unit)
             units = _parse_units(unit)
         else:
-            units = UREG.parse_units(k.default_unit or "")
+            units = _default_units(k.default_unit)
         q = UREG.Quantity(float(m.group("num")), units)
     else:
         raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {type(value).__name__}")
@@ -172,6 +175,11 @@ def parse_quantity(value, kind: str):
             f"like '{k.example}'"
         )
     return q
+
+
+@functools.lru_cache(maxsize=64)
+def _default_units(text: str):
+    return UREG.parse_units(text or "")
 
 
 def _units_of(name: str):
@@ -231,12 +239,18 @@ def to_internal(q) -> float:
     Raises ValueError for a quantity that cannot be converted (an offset unit) or
     whose converted value is not a finite number (1e308 days in hours)."""
     try:
-        value = float(q.to(internal_units(q.dimensionality)).magnitude)
+        value = float(q.magnitude) * _internal_factor(q.units)
     except pint.errors.OffsetUnitCalculusError:
         raise ValueError(f"'{q}' uses a temperature with an offset; write K, or delta_degC for a difference") from None
     if not math.isfinite(value):
         raise ValueError(f"'{q:~}' is too large: in optfeed's internal units it is not a finite number")
     return value
+
+
+@functools.lru_cache(maxsize=512)
+def _internal_factor(units) -> float:
+    """Internal value of 1 ``units`` (cached: a long schedule repeats a few units)."""
+    return float(UREG.Quantity(1.0, units).to(internal_units(units.dimensionality)).magnitude)
 
 
 def factor_to(unit: str) -> float:
