@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -121,16 +122,16 @@ def _validate(args) -> int:
 def _run_folder(args, problem_name: str, job: str) -> Path:
     """The run folder of a check or optimize run: it must not exist yet, and it must
     be possible to make it and write in it (checked now, before any work)."""
-    from .paths import check_output_parent
+    from .paths import check_output_names, check_output_parent
     from .report.files import default_run_dir
 
     option = "--out" if args.out is not None else "--results"
-    if (args.out if args.out is not None else args.results).strip() == "":
-        raise InputError.one(option, None, option, "is empty; give a folder name")
+    check_output_names(args.out if args.out is not None else args.results, option)
     target = Path(args.out) if args.out is not None else default_run_dir(Path(args.results), problem_name, job)
-    if target.is_symlink():
+    check_output_names(target, option)
+    if os.path.islink(target):
         raise InputError.one(str(target), None, option, "is a symbolic link; give a run folder that does not exist yet")
-    if target.exists():
+    if os.path.lexists(target):
         raise InputError.one(str(target), None, option, "run folder already exists; choose another")
     check_output_parent(target, option)
     return target

@@ -116,18 +116,8 @@ def check_output_parent(target, option: str) -> None:
     InputError
         Naming ``option`` (``--out``, ``--results``) and what is wrong.
     """
-    text = str(target)
-    if text.strip() == "":
-        raise InputError.one(option, None, option, "is empty; give a folder name")
+    check_output_names(target, option)
     path = Path(target)
-    try:
-        max_name = os.pathconf(_nearest_existing(path.absolute()), "PC_NAME_MAX")
-    except (OSError, ValueError):
-        max_name = 255
-    for part in path.parts:
-        if len(os.fsencode(part)) > max_name:
-            raise InputError.one(option, None, option, f"the name {part[:40]!r}... is longer than the "
-                                                        f"{max_name} bytes a folder name may have here")
     existing = _nearest_existing(path.absolute())
     try:
         info = existing.stat()
@@ -141,6 +131,22 @@ def check_output_parent(target, option: str) -> None:
     except OSError as exc:
         raise InputError.one(option, None, option, f"cannot write in {existing} ({exc.strerror})") from None
     os.rmdir(probe)
+
+
+def check_output_names(target, option: str) -> None:
+    """Refuse an empty output path, or one with a part longer than the file system
+    takes (looked at before anything else touches the path)."""
+    if str(target).strip() == "":
+        raise InputError.one(option, None, option, "is empty; give a folder name")
+    path = Path(target)
+    try:
+        max_name = os.pathconf(_nearest_existing(path.absolute()), "PC_NAME_MAX")
+    except (OSError, ValueError):
+        max_name = 255
+    for part in path.parts:
+        if len(os.fsencode(part)) > max_name:
+            raise InputError.one(option, None, option, f"the name {part[:40]!r}... is longer than the "
+                                                        f"{max_name} bytes a folder name may have here")
 
 
 def _nearest_existing(path: Path) -> Path:

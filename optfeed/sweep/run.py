@@ -5,12 +5,13 @@ from __future__ import annotations
 import os
 import signal
 import sqlite3
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import InputError
-from ..paths import check_output_parent
+from ..paths import check_output_names, check_output_parent
 from .outputs import write_outputs
 from .runner import (LANDING, NO_WORKER_TIMEOUT, NOT_RUN, DaskExecutor, LocalExecutor, Task, clean_leftovers,
                      default_workers, landed_outcome)
@@ -166,14 +167,16 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
             stop["flag"] = True
             raise KeyboardInterrupt
 
-        old = signal.signal(signal.SIGTERM, handle)
+        main_thread = threading.current_thread() is threading.main_thread()  # signals go to the main thread only
+        old = signal.signal(signal.SIGTERM, handle) if main_thread else None
         interrupted = False
         try:
             executor.run(tasks, on_start, on_done, lambda: stop["flag"])
         except KeyboardInterrupt:
             stop["flag"] = interrupted = True
         finally:
-            signal.signal(signal.SIGTERM, old)
+            if main_thread:
+                signal.signal(signal.SIGTERM, old)
             try:
                 store.mark_queued([t.key for t in tasks])  # anything still 'running' goes back to the queue
             except sqlite3.OperationalError:
@@ -218,6 +221,7 @@ def check_sweep_folder(folder: Path, allow_symlink: bool = False) -> None:
     """Everything about a sweep folder that can be checked before a case is run;
     reads only, writes nothing. Raises InputError (option ``--out``)."""
     folder = Path(folder)
+    check_output_names(folder, "--out")
     if folder.is_symlink() and not allow_symlink:
         raise InputError.one(str(folder), None, "--out", f"is a symbolic link (to {os.readlink(folder)}); a sweep "
                                                          "cleans up inside its folder, so it is refused unless you "

@@ -203,8 +203,22 @@ def run_case_limited(task: Task) -> dict:
             out["message"] += f" (took {out['seconds']:.0f} s, over the {task.time_limit:.0f} s limit)"
         return out
     box = {}
-    LocalExecutor(1).run([task], lambda t: None, lambda t, outcome: box.update(outcome=outcome), lambda: False)
+    LocalExecutor(1).run([task], lambda t: None, lambda t, outcome: box.update(outcome=outcome), _worker_leaving())
+    if "outcome" not in box:  # the worker is closing: the case process was killed with it
+        return _outcome(NOT_RUN, "the Dask worker closed while the case ran; run the same command again", 0.0)
     return box["outcome"]
+
+
+def _worker_leaving():
+    """A check, true once the Dask worker running this task closes (or has failed):
+    its case process must not outlive it. Always false outside a Dask worker."""
+    try:
+        from distributed import get_worker
+
+        worker = get_worker()
+    except (ImportError, ValueError):
+        return lambda: False
+    return lambda: getattr(worker.status, "name", "") in ("closing", "closed", "closing_gracefully", "failed")
 
 
 def died_outcome(payload: str, exitcode, seconds: float) -> dict:
@@ -256,6 +270,8 @@ _ADDRESS_RE = re.compile(r"^(?:(?:tcp|tls|ws|wss|ucx)://)?(?:\[[0-9A-Fa-f:.]+\]|
 
 def check_address(address: str) -> None:
     """Refuse a scheduler address that is not ``[tcp://]HOST:PORT`` (also tls, ws, wss, ucx)."""
+    if isinstance(address, str) and re.match(r"^inproc://\S+$", address):  # a cluster in this process
+        return
     m = _ADDRESS_RE.match(address or "")
     if not m or not 0 < int(m.group(1)) < 65536:
         raise InputError.one("--scheduler", None, "--scheduler",
@@ -352,8 +368,14 @@ class DaskExecutor:
         try:
             return fut.result(timeout=60)  # done: only the transfer from the worker is left
         except Exception as exc:  # noqa: BLE001 - worker lost (KilledWorker), scheduler lost (cancelled)...
-            return _outcome(NOT_RUN, f"the Dask cluster lost the case ({type(exc).__name__}: {str(exc)[:200]}); "
-                                     "run the same command again", 0.0)
+            name, text = type(exc).__name__, str(exc)
+            if "scheduler-connection-lost" in text or "Cancelled" in name:
+                why = "the connection to the Dask scheduler was lost"
+            elif name == "KilledWorker":
+                why = "the Dask workers running it were lost, one after another"
+            else:
+                why = f"the Dask cluster lost it ({name}: {text.splitlines()[0][:160] if text else ''})"
+            return _outcome(NOT_RUN, f"{why}; run the same command again", 0.0)
 
 
 def default_workers() -> int:
