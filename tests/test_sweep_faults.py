@@ -279,7 +279,9 @@ def test_a_closing_dask_worker_takes_its_case_process_with_it(tmp_path):
 
     # one case, two workers in this process: the case's process is this process's only
     # child, and the worker executing it is closed; the other worker takes the case up
-    path = sweep_file(tmp_path / "p", values="[0.003]", job="optimize", extra="time_limit: 8 s\n")
+    # (an optimize case runs for tens of seconds: it is stopped by its 12 s time limit, so
+    # a case process gone within 4 s of the close went with its worker)
+    path = sweep_file(tmp_path / "p", values="[0.003]", job="optimize", extra="time_limit: 12 s\n")
     me = psutil.Process()
     with _cluster(n_workers=2, processes=False) as cluster:
         seen = {}
@@ -291,9 +293,14 @@ def test_a_closing_dask_worker_takes_its_case_process_with_it(tmp_path):
                 busy = [w for w in cluster.workers.values() if w.state.executing]
                 time.sleep(0.02)
             seen["case"] = me.children()
-            cluster.sync(busy[0].close)
-            time.sleep(3)
+            closing = threading.Thread(target=cluster.sync, args=(busy[0].close,))
+            closing.start()
+            t0 = time.time()
+            while time.time() - t0 < 4 and any(p.is_running() and p.status() != psutil.STATUS_ZOMBIE
+                                               for p in seen["case"]):
+                time.sleep(0.05)
             seen["alive"] = [p.pid for p in seen["case"] if p.is_running() and p.status() != psutil.STATUS_ZOMBIE]
+            closing.join()
 
         th = threading.Thread(target=close_the_worker)
         th.start()

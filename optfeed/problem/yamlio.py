@@ -122,7 +122,12 @@ def read_yaml(path, text: str | None = None):
     """
     if text is None:
         text = read_text(path)
-    loader = _Loader(text)
+    try:
+        loader = _Loader(text)  # checks every character first
+    except yaml.reader.ReaderError as exc:
+        line = text[: exc.position].count("\n") + 1 if isinstance(exc.position, int) else None
+        raise InputError.one(path, line, "", f"character {chr(exc.character)!r} (code {exc.character:#04x}) "
+                                             "is not allowed in a YAML file") from None
     try:
         try:
             node = loader.get_single_node()
