@@ -138,6 +138,8 @@ CASES = [
     # ---- settings that decide a status word
     Case("problem_verify_tolerance.yaml", 26, "solver.verify_tolerance",
          r"^must be between 1e-06 and 0\.01 \(largest relative difference .*\), got 0\.9"),
+    Case("problem_pump_interval.yaml", 26, "solver.pump_interval",
+         r"^a pump interval of 1e-308 h gives more than 5000 pump steps over the run \(10 h\)"),
     Case("problem_tolerance.yaml", 26, "solver.tolerance",
          r"^must be between 1e-12 and 0\.0001 \(IPOPT's convergence tolerance; default 1e-08\), got 0\.5"),
     # ---- structure and size: bounded before anything grows

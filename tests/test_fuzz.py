@@ -37,11 +37,17 @@ from conftest import CONFIGS, ROOT
 
 EXAMPLES = int(os.environ.get("OPTFEED_FUZZ_EXAMPLES", "300"))
 
-PAIRS = [  # (problem, schedule)
-    (CONFIGS / "fast_microbe.yaml", CONFIGS / "fast_microbe_plan.csv"),
-    (CONFIGS / "inhibited_product.yaml", CONFIGS / "inhibited_product_plan.yaml"),
-    (CONFIGS / "animal_cell.yaml", CONFIGS / "animal_cell_plan.csv"),
-    (ROOT / "tests" / "bad_input" / "ok_problem.yaml", ROOT / "tests" / "bad_input" / "ok_schedule.csv"),
+OK_PROBLEM = ROOT / "tests" / "bad_input" / "ok_problem.yaml"
+# the shipped problems have no solver section: one variant spells out every setting
+SOLVER = ("solver:\n  pump_interval: 30 min\n  elements_per_step: 4\n  degree: 3\n  starts: 4\n  smoothing: 0\n"
+          "  max_iter: 3000\n  tolerance: 1.0e-8\n  verify_tolerance: 2.0e-3\n")
+PAIRS = [  # (problem file name, its text, schedule)
+    ("fast_microbe.yaml", (CONFIGS / "fast_microbe.yaml").read_bytes(), CONFIGS / "fast_microbe_plan.csv"),
+    ("inhibited_product.yaml", (CONFIGS / "inhibited_product.yaml").read_bytes(),
+     CONFIGS / "inhibited_product_plan.yaml"),
+    ("animal_cell.yaml", (CONFIGS / "animal_cell.yaml").read_bytes(), CONFIGS / "animal_cell_plan.csv"),
+    ("ok_problem.yaml", OK_PROBLEM.read_bytes(), ROOT / "tests" / "bad_input" / "ok_schedule.csv"),
+    ("solver_problem.yaml", OK_PROBLEM.read_bytes() + SOLVER.encode(), ROOT / "tests" / "bad_input" / "ok_schedule.csv"),
 ]
 SWEEPS = [CONFIGS / "sweep_otr.yaml", CONFIGS / "sweep_check.yaml"]
 
@@ -53,7 +59,8 @@ TOKENS = [
     "!!python/object/apply:os.system [echo hi]", "!!binary aGk=", "../../../etc/passwd", "/etc/passwd",
     "/dev/zero", "x" * 3000, "ｍｕ", "mu_max ** 1000", "exp(1000)", "1/0", "__import__('os')", "lambda: 1",
     "None", "if", "[" * 300 + "]" * 300, "0x10", "1_000", "-0", "a.b", "S[0]", "max(S)", "monod(S)",
-    "sqrt(-1)", "log(0)", "1e-300", "*", "- 1", "１", "nan", "inf", "", " ", "\t",
+    "sqrt(-1)", "log(0)", "1e-300", "*", "- 1", "１", "nan", "inf", "", " ", "\t", "1e-308 h", "{min: 1 h, max: 0 h}",
+    "1e9", "2.5", "64", "5000", "1e-12", "0.01 s",
 ]
 CELLS = ["", "nan", "inf", "-inf", "-1", "1e308", "1e-308", "０", "yes", "1,2", '"', "0x1", "1e400", "-0",
          "100000", "abc", "1e5"]
@@ -133,16 +140,15 @@ def _judge(label, code, out, err):
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(data=st.data())
 def test_validate_and_check_on_mutated_files(data):
-    problem, schedule = data.draw(st.sampled_from(PAIRS), label="files")
+    name, problem, schedule = data.draw(st.sampled_from(PAIRS), label="files")
     which = data.draw(st.sampled_from(["problem", "schedule"]), label="mutated")
-    source = problem if which == "problem" else schedule
-    text = data.draw(mutated(source.read_bytes()), label="text")
+    text = data.draw(mutated(problem if which == "problem" else schedule.read_bytes()), label="text")
     with tempfile.TemporaryDirectory(prefix="optfeed-fuzz-") as tmp:
         work = Path(tmp)
         inputs = work / "inputs"
         inputs.mkdir()
-        p, s = inputs / problem.name, inputs / schedule.name
-        shutil.copy(problem, p)
+        p, s = inputs / name, inputs / schedule.name
+        p.write_bytes(problem)
         shutil.copy(schedule, s)
         (p if which == "problem" else s).write_bytes(text)
         results = work / "results"

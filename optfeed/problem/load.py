@@ -533,6 +533,9 @@ class _Builder:
                 length = horizon.end_time if not horizon.free else horizon.guess
                 if got[0] <= 0:
                     self.fail(loc + ("pump_interval",), "pump interval must be above zero")
+                elif not length / got[0] <= 5000:  # also infinite for a tiny interval
+                    self.fail(loc + ("pump_interval",), f"a pump interval of {got[0]:g} h gives more than 5000 "
+                                                        f"pump steps over the run ({length:g} h)")
                 else:
                     steps = max(1, round(length / got[0]))
                     if abs(steps * got[0] - length) > 1e-6 * length:
