@@ -144,7 +144,7 @@ def load_sweep(path, max_cases: int | None = None) -> Sweep:
         schedule_path, schedule_text = _schedule(data["schedule"], base, path, lines.get(("schedule",)))
     elif "schedule" in data:
         fail(("schedule",), "a schedule is only used with job: check")
-    if isinstance(data.get("time_limit"), (int, float)):
+    if _number(data.get("time_limit")):
         fail(("time_limit",), "give the time limit with its unit, e.g. '20 min'")
     try:
         limit = to_internal(parse_quantity(data.get("time_limit", "30 min"), "time")) * 3600.0
