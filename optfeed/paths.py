@@ -33,7 +33,7 @@ def safe_folder_name(name: str, default: str = "problem") -> str:
     return name if SAFE_NAME.match(name) else (re.sub(r"[^A-Za-z0-9_.\-]+", "_", name).lstrip(".") or default)[:80]
 
 
-def safe_name_problem(name) -> str | None:
+def why_not_folder_name(name) -> str | None:
     """Why ``name`` cannot name a results folder, or None if it can."""
     if not isinstance(name, str) or not SAFE_NAME.match(name):
         return (f"name {name!r} is used for result folders: 1 to 80 letters, digits, '_', '-' and '.', "

@@ -410,6 +410,10 @@ def test_a_full_disk_loses_nothing_and_the_same_command_completes_later(tmp_path
     script = f"""
 set -u
 mount -t tmpfs -o size=4m tmpfs {disk} || exit 99
+dd if=/dev/zero of={disk}/filler bs=1k count=8000 2>/dev/null
+{cmd}; echo "full exit $?"
+echo "left: $(ls -A {disk})"
+rm {disk}/filler
 dd if=/dev/zero of={disk}/filler bs=1k count=2200 2>/dev/null
 {cmd}; echo "first exit $?"
 sqlite3_rows() {{ {sys.executable} -c "import sqlite3; print(sorted(sqlite3.connect('{disk}/out/sweep.sqlite').execute('SELECT key, status, finished_at FROM cases').fetchall()))"; }}
@@ -421,6 +425,9 @@ ls {disk}/out/cases | wc -l | sed 's/^/cases /'
 """
     proc = subprocess.run(["unshare", "-m", "bash", "-c", script], capture_output=True, text=True, timeout=300)
     out = proc.stdout
+    # a disk full from the start: bad input (the results cannot go there), and nothing is left
+    assert "full exit 2" in out and "left: filler\n" in out, out + proc.stderr
+    assert "the sweep's store cannot be written here" in proc.stderr
     assert "first exit 1" in out, out + proc.stderr
     assert "incomplete" in out and ("disk is full" in out or "could not be written" in out), out
     assert "Traceback" not in proc.stderr, proc.stderr

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 import signal
 import sqlite3
 import threading
@@ -118,14 +119,7 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
     stop = {"flag": False, "why": ""}
     store = lock = None
     try:
-        (folder / "cases").mkdir(parents=True, exist_ok=True)
-        lock = _lock(folder)
-        why = store_problem(folder / STORE_NAME)  # again, now that this run holds the folder
-        if why:
-            raise InputError.one(str(folder / STORE_NAME), None, "", why)
-        store = Store(folder / STORE_NAME)
-        clean_leftovers(folder / "cases", store.keys())
-        store.queue(sweep.cases, sweep.job)
+        lock, store = _open_folder(folder, sweep)
         done = store.done_keys()
         if retry:
             done -= {r["key"] for r in store.rows() if r["status"] in BAD and r["status"] != NOT_RUN}
@@ -210,6 +204,35 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
             store.close()
         if lock is not None:
             lock.close()
+
+
+def _open_folder(folder: Path, sweep):
+    """Make the folder (if new), lock it, open the store and queue the cases. A
+    failure here (the folder in use, a store of another shape, no space) is bad
+    input, and a folder made just now is removed again."""
+    created = not os.path.lexists(folder)
+    lock = store = None
+    try:
+        (folder / "cases").mkdir(parents=True, exist_ok=True)
+        lock = _lock(folder)
+        why = store_problem(folder / STORE_NAME)  # again, now that this run holds the folder
+        if why:
+            raise InputError.one(str(folder / STORE_NAME), None, "", why)
+        store = Store(folder / STORE_NAME)
+        clean_leftovers(folder / "cases", store.keys())
+        store.queue(sweep.cases, sweep.job)
+        return lock, store
+    except (OSError, sqlite3.Error, InputError) as exc:
+        if store is not None:
+            store.close()
+        if created and lock is not None:  # made by this run, which holds it: nobody else is in it
+            shutil.rmtree(folder, ignore_errors=True)
+        if lock is not None:
+            lock.close()
+        if isinstance(exc, InputError):
+            raise
+        raise InputError.one(str(folder), None, "--out", f"the sweep's store cannot be written here ({exc}); "
+                                                         "free some space or choose another --out") from None
 
 
 def _reasons(rows) -> str:

@@ -184,10 +184,6 @@ def _outcome(status: str, message: str, seconds: float) -> dict:
             "seconds": seconds}
 
 
-def _error_outcome(task: Task, status: str, message: str, seconds: float) -> dict:
-    return _outcome(status, message, seconds)
-
-
 def run_case_limited(task: Task) -> dict:
     """Run a case in a child process, killed after ``task.time_limit`` seconds.
 
@@ -198,7 +194,7 @@ def run_case_limited(task: Task) -> dict:
         try:
             out = run_case(task)
         except Exception as exc:  # noqa: BLE001
-            return _error_outcome(task, "error", f"{type(exc).__name__}: {exc}", time.perf_counter() - t0)
+            return _outcome("error", f"{type(exc).__name__}: {exc}", time.perf_counter() - t0)
         if out["seconds"] > task.time_limit:
             out["message"] += f" (took {out['seconds']:.0f} s, over the {task.time_limit:.0f} s limit)"
         return out
@@ -251,11 +247,11 @@ class LocalExecutor:
             if kind == "ok":
                 on_done(task, payload)
             elif kind == "killed":
-                on_done(task, _error_outcome(task, "time limit", payload, seconds))
+                on_done(task, _outcome("time limit", payload, seconds))
             elif isinstance(payload, ProcessEnded):
                 on_done(task, died_outcome(str(payload), payload.exitcode, seconds))
             else:
-                on_done(task, _error_outcome(task, "error", payload, seconds))
+                on_done(task, _outcome("error", payload, seconds))
 
         def over_budget(key, seconds):
             limit = by_key[key].time_limit

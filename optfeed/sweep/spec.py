@@ -3,7 +3,7 @@
 A sweep file (YAML)::
 
     problems: fast_microbe.yaml        # a file, a list of files, or a glob; relative
-                                       # to the sweep file
+                                       # to the sweep file, inside its folder
     job: optimize                      # or: check (then give schedule:)
     schedule: plan.csv                 # for check
     time_limit: 20 min                 # per case
@@ -25,6 +25,9 @@ or ``{linspace: [start, stop, count], unit: ...}``. The cases are the product of
 (problems) x (grid) x (zip) x (samples); each section is optional. A dotted path
 must name a value that exists in the problem file (list items by index:
 ``limits.0.max``); anything else is bad input, reported before any case starts.
+The problem files and the schedule must lie in the sweep file's folder or below it
+(:func:`optfeed.paths.inside`); the cases are counted before any is built, and a
+sweep of more than ``max_cases`` (default :data:`MAX_CASES`) is refused.
 """
 
 from __future__ import annotations
@@ -41,7 +44,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError, Issue
-from ..paths import glob_inside, inside, safe_folder_name, safe_name_problem
+from ..paths import glob_inside, inside, safe_folder_name, why_not_folder_name
 from ..problem import problem_from_data
 from ..problem.yamlio import key_text, read_text, read_yaml
 from ..provenance import problem_digest
@@ -125,7 +128,7 @@ def load_sweep(path, max_cases: int | None = None) -> Sweep:
         if k not in _KEYS:
             fail((k,), f"unknown key; expected one of: {', '.join(sorted(_KEYS))}")
     if "name" in data:
-        why = safe_name_problem(data["name"])
+        why = why_not_folder_name(data["name"])
         if why:
             fail(("name",), why)
         name = data["name"]
