@@ -97,7 +97,7 @@ def summary_text(sweep, rows, best, top: int = 10) -> str:
         for r in lost:
             lines.append(f"  {r['label']}: {(r['message'] or '')[:160]}")
         lines.append("")
-    left = [r for r in rows if r["status"] in PENDING]
+    left = [r for r in rows if r["status"] in ("queued", "running")]
     if left:
         lines.append(f"{len(left)} case(s) not run yet: run the same command again to resume.")
         lines.append("")

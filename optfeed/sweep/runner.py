@@ -222,7 +222,7 @@ def died_outcome(payload: str, exitcode, seconds: float) -> dict:
     killed from outside (it runs again), 'error' if it crashed."""
     if exitcode is not None and exitcode < 0 and -exitcode in _OUTSIDE_SIGNALS:
         name = signal.Signals(-exitcode).name
-        return _outcome(NOT_RUN, f"the case's process was killed from outside ({name}; the system's "
+        return _outcome(NOT_RUN, f"the case's process was killed from outside by {name} (the system's "
                                  "out-of-memory killer does this); run the same command again", seconds)
     return _outcome("error", payload, seconds)
 
