@@ -90,8 +90,7 @@ def main(argv=None) -> int:
         for issue in exc.issues[:MAX_ISSUES_SHOWN]:
             print(f"  {issue}", file=sys.stderr)
         if len(exc.issues) > MAX_ISSUES_SHOWN:
-            print(f"  ... and {len(exc.issues) - MAX_ISSUES_SHOWN} more issue(s) in {exc.issues[0].file}",
-                  file=sys.stderr)
+            print(f"  ... and {len(exc.issues) - MAX_ISSUES_SHOWN} more issue(s)", file=sys.stderr)
         return st.EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("optfeed: interrupted", file=sys.stderr)

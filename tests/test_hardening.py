@@ -137,3 +137,15 @@ def test_empty_file_names_on_the_command_line_are_refused(tmp_path, capsys):
     assert "--out: is empty" in capsys.readouterr().err
     assert main(["check", problem, "--schedule", sched, "--results", " "]) == 2
     assert "--results: is empty" in capsys.readouterr().err
+
+
+def test_thousands_of_faults_are_not_read_out_in_full(write, capsys):
+    # a YAML schedule naming 5000 feeds the problem does not have: one issue each, 30 shown
+    from conftest import CONFIGS
+
+    feeds = "".join(f"  f{i}: [{{time: 0, rate: 0}}]\n" for i in range(5000))
+    sched = write("many.yaml", "feeds:\n" + feeds)
+    assert main(["validate", str(CONFIGS / "animal_cell.yaml"), "--schedule", str(sched)]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert err[0] == "optfeed: bad input" and len(err) == 32
+    assert err[-1] == "  ... and 4972 more issue(s)"
