@@ -141,7 +141,7 @@ def check_output_names(target, option: str) -> None:
     path = Path(target)
     try:
         max_name = os.pathconf(_nearest_existing(path.absolute()), "PC_NAME_MAX")
-    except (OSError, ValueError):
+    except (OSError, ValueError, AttributeError):  # no pathconf (Windows): the common limit
         max_name = 255
     for part in path.parts:
         if len(os.fsencode(part)) > max_name:
