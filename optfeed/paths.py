@@ -95,8 +95,8 @@ def glob_inside(pattern, folder, file, line, key, what: str = "file", limit: int
                                               f"{Path(file).name}, without '..'")
     found = list(itertools.islice(glob.iglob(pattern, root_dir=str(base)), limit + 1))
     if len(found) > limit:
-        raise InputError.one(file, line, key, f"{pattern!r} matches more than {limit} files; a sweep takes at most "
-                                              f"{limit} problem files: narrow the pattern")
+        raise InputError.one(file, line, key, f"{pattern!r} matches more than {limit} files; at most {limit} "
+                                              f"{what}s are taken: narrow the pattern")
     if not found:
         raise InputError.one(file, line, key, f"no {what} matches {pattern!r} (relative to {base})")
     return sorted({inside(m, base, file, line, key, what) for m in found})
