@@ -95,7 +95,7 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     try:
         traj = simulate(model, schedule, tf)
     except SimulationError as exc:
-        return CheckResult(st.SIMULATION_FAILED, f"simulation failed: {exc}", (), None, tf, problem,
+        return CheckResult(st.SIMULATION_FAILED, str(exc), (), None, tf, problem,  # the status says 'failed'
                            schedule, None, {}, record)
     reports, use = judge(model, limits, traj)
     outcome = outcome_of(model, traj, tf)

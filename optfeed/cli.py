@@ -3,7 +3,8 @@
     optfeed validate PROBLEM [--schedule FILE]
     optfeed check PROBLEM --schedule FILE [--out DIR | --results DIR] [--json] [--quiet]
     optfeed optimize PROBLEM [--workers N] [--out DIR | --results DIR] [--json] [--quiet]
-    optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--quiet]
+    optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
+                  [--allow-symlink] [--retry-failed] [--quiet]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
 verified optimum), 2 bad input, 3 a solver or integrator failure.
@@ -13,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -20,6 +22,8 @@ from pathlib import Path
 from . import __version__
 from . import status as st
 from .errors import InputError
+
+MAX_ISSUES_SHOWN = 30  # a file with thousands of faults is not read out in full
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -53,6 +57,11 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--results", default="results", help="parent of the default sweep folder")
     w.add_argument("--retry-failed", action="store_true",
                    help="also run again the cases that ended without an answer (errors, time limits, failures)")
+    w.add_argument("--max-cases", type=int, default=None,
+                   help="refuse a sweep of more cases than this (default 10000, optfeed.sweep.spec.MAX_CASES); "
+                        "cases are counted before any is built")
+    w.add_argument("--allow-symlink", action="store_true",
+                   help="accept a sweep folder that is a symbolic link (refused by default)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
     return ap
 
@@ -78,8 +87,10 @@ def main(argv=None) -> int:
             return _sweep(args)
     except InputError as exc:
         print("optfeed: bad input", file=sys.stderr)
-        for issue in exc.issues:
+        for issue in exc.issues[:MAX_ISSUES_SHOWN]:
             print(f"  {issue}", file=sys.stderr)
+        if len(exc.issues) > MAX_ISSUES_SHOWN:
+            print(f"  ... and {len(exc.issues) - MAX_ISSUES_SHOWN} more issue(s)", file=sys.stderr)
         return st.EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("optfeed: interrupted", file=sys.stderr)
@@ -100,20 +111,28 @@ def _validate(args) -> int:
     problem = load_problem(args.problem)
     model = build_model(problem)
     tf = run_length(problem, args.end_time)
-    if args.schedule:
+    if args.schedule is not None:
         load_schedule(args.schedule, model.feed_names, tf)
     what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
-    print(f"{args.problem}: valid ({what})" + (f"; {args.schedule}: valid" if args.schedule else ""))
+    print(f"{args.problem}: valid ({what})" + (f"; {args.schedule}: valid" if args.schedule is not None else ""))
     return st.EXIT_OK
 
 
 def _run_folder(args, problem_name: str, job: str) -> Path:
-    """The run folder of a check or optimize run; it must not exist yet."""
+    """The run folder of a check or optimize run: it must not exist yet, and it must
+    be possible to make it and write in it (checked now, before any work)."""
+    from .paths import check_output_names, check_output_parent
     from .report.files import default_run_dir
 
-    target = Path(args.out) if args.out else default_run_dir(Path(args.results), problem_name, job)
-    if target.exists():
-        raise InputError.one(str(target), None, "--out", "run folder already exists; choose another")
+    option = "--out" if args.out is not None else "--results"
+    check_output_names(args.out if args.out is not None else args.results, option)
+    target = Path(args.out) if args.out is not None else default_run_dir(Path(args.results), problem_name, job)
+    check_output_names(target, option)
+    if os.path.islink(target):
+        raise InputError.one(str(target), None, option, "is a symbolic link; give a run folder that does not exist yet")
+    if os.path.lexists(target):
+        raise InputError.one(str(target), None, option, "run folder already exists; choose another")
+    check_output_parent(target, option)
     return target
 
 
@@ -154,6 +173,8 @@ def _optimize(args) -> int:
     from .report.files import optimize_summary
 
     problem = load_problem(args.problem)
+    if args.workers is not None and not 1 <= args.workers <= 256:
+        raise InputError.one("--workers", None, "--workers", "must be between 1 and 256")
     if args.starts is not None:
         if not 1 <= args.starts <= 64:
             raise InputError.one("--starts", None, "--starts", "must be between 1 and 64")
@@ -173,16 +194,29 @@ def _sweep(args) -> int:
 
     if args.workers is not None and not 1 <= args.workers <= 256:
         raise InputError.one("--workers", None, "--workers", "must be between 1 and 256")
-    sweep = load_sweep(args.sweep)
-    folder = Path(args.out) if args.out else Path(args.results) / sweep.name
+    if args.max_cases is not None and args.max_cases < 1:
+        raise InputError.one("--max-cases", None, "--max-cases", "must be 1 or more")
+    for option, value in (("--out", args.out), ("--results", args.results)):
+        if value is not None and value.strip() == "":
+            raise InputError.one(option, None, option, "is empty; give a folder name")
+    if args.scheduler is not None:
+        from .sweep.runner import check_address
+
+        check_address(args.scheduler)
+    sweep = load_sweep(args.sweep, max_cases=args.max_cases)
+    folder = Path(args.out) if args.out is not None else Path(args.results) / sweep.name
     if args.quiet:
-        result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed)
+        result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed,
+                           allow_symlink=args.allow_symlink)
     else:
         result = _sweep_with_progress(sweep, folder, args)
         print(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
-    word = "finished" if result.status == "finished" else "stopped (run the same command to resume)"
+    word = {"finished": "finished", "stopped": "stopped (run the same command to resume)",
+            "incomplete": "incomplete (run the same command to complete it)"}[result.status]
     print(f"sweep {word}: {result.total} cases, {result.ran} run now, {result.skipped} already done, "
           f"{result.failed} without an answer; {folder}/")
+    if result.message and result.status != "stopped":
+        print(f"  {result.message}")
     return result.exit_code
 
 
@@ -211,7 +245,7 @@ def _sweep_with_progress(sweep, folder, args):
                       file=sys.stderr)
 
         return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event,
-                         retry=args.retry_failed)
+                         retry=args.retry_failed, allow_symlink=args.allow_symlink)
 
 
 def _with_progress(job):

@@ -15,6 +15,7 @@ from __future__ import annotations
 import ast
 import difflib
 import math
+import unicodedata
 from dataclasses import dataclass
 
 import casadi as ca
@@ -103,6 +104,13 @@ def parse(text) -> Expr:
         raise ExprError("expression is empty")
     if len(text) > MAX_LENGTH:
         raise ExprError(f"expression is longer than {MAX_LENGTH} characters")
+    # Python folds look-alike letters (fullwidth, ligatures, ...) into ASCII names, so
+    # 'ｍｕ' would quietly mean 'mu': names are plain ASCII, and so is the rest
+    odd = next((i for i, ch in enumerate(text) if ord(ch) > 127), None)
+    if odd is not None:
+        ch = text[odd]
+        raise ExprError(f"character {ch!r} ({unicodedata.name(ch, f'U+{ord(ch):04X}')}) at position {odd + 1}: "
+                        "expressions use plain ASCII letters, digits and operators")
     try:
         # '^' is power here; Python would read it as xor with a lower precedence
         tree = ast.parse(text.strip().replace("^", "**"), mode="eval")
@@ -167,14 +175,15 @@ def _check_name(name):
 
 
 def _suggest(name, known) -> str:
-    close = difflib.get_close_matches(name, list(known), n=3, cutoff=0.6)
+    close = difflib.get_close_matches(name, sorted(known), n=3, cutoff=0.6)
     return f"; did you mean {', '.join(repr(c) for c in close)}?" if close else ""
 
 
 def unknown_names(expr: Expr, known) -> list[str]:
     """Messages for every name in ``expr`` that is not in ``known``."""
+    known = known if isinstance(known, (set, frozenset)) else set(known)
     out = []
-    for name in sorted(expr.names - set(known)):
+    for name in sorted(expr.names - known):
         if name in FUNCTIONS:
             out.append(f"{name!r} is a function; call it as {name}(...)")
         else:

@@ -18,6 +18,26 @@ import time
 import traceback
 
 
+class ProcessEnded(str):
+    """The text of an 'error' for a process that ended without sending a result;
+    ``exitcode`` is its exit code (negative: the signal that killed it)."""
+
+    exitcode: int | None = None
+
+    @classmethod
+    def of(cls, exitcode):
+        if exitcode is not None and exitcode < 0:
+            try:
+                name = signal.Signals(-exitcode).name
+            except ValueError:
+                name = f"signal {-exitcode}"
+            text = cls(f"the process was killed by {name}")
+        else:
+            text = cls(f"the process ended with exit code {exitcode}")
+        text.exitcode = exitcode
+        return text
+
+
 def cpu_count() -> int:
     """Cores this process may use."""
     return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
@@ -80,7 +100,9 @@ def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=
         Processes at once.
     on_done : callable
         ``on_done(key, kind, payload, seconds)``: kind 'ok' (payload = the return
-        value), 'error' (payload = text) or 'killed' (payload = the budget's reason).
+        value), 'error' (payload = text; a :class:`ProcessEnded` with the exit code
+        when the process ended without a word) or 'killed' (payload = the budget's
+        reason).
     over_budget : callable, optional
         ``over_budget(key, seconds_running) -> str or None``; a text kills the item.
     on_start : callable, optional
@@ -113,7 +135,8 @@ def run_killable(items, func, workers: int, on_done, over_budget=None, on_start=
                     try:
                         kind, payload = conn.recv()
                     except EOFError:
-                        kind, payload = "error", f"the process ended with exit code {proc.exitcode}"
+                        proc.join()
+                        kind, payload = "error", ProcessEnded.of(proc.exitcode)
                     if kind == "progress":
                         if on_progress:
                             on_progress(key, payload)

@@ -38,11 +38,14 @@ integrator never steps across a segment boundary.
 
 from __future__ import annotations
 
+import bisect
+import collections
 import csv
 import difflib
 import io
 import math
 import re
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -52,6 +55,7 @@ from .errors import InputError, Issue
 from .problem.yamlio import key_text, read_text, read_yaml
 from .units import factor_to, parse_quantity, to_internal
 
+_LOG_LARGEST = math.log(sys.float_info.max)  # ~709.8: exp() of more overflows
 _HEADER_RE = re.compile(r"^\s*(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\]]*)\])?\s*$")
 
 
@@ -74,6 +78,19 @@ class Segment:
         tau = np.asarray(t, dtype=float)[:, None] - self.start
         a, b, k = (np.asarray(v, dtype=float)[None, :] for v in (self.a, self.b, self.k))
         return (a + b * tau) * np.exp(k * tau)
+
+
+class ScheduleOverflow(ArithmeticError):
+    """A pump rate past any finite number (an exponential segment run too long).
+
+    Attributes: feed (str), time (float, h)."""
+
+    def __init__(self, feed: str, time: float):
+        self.feed, self.time = feed, time
+        super().__init__(f"the rate of feed {feed!r} grows past any finite number by {time:.6g} h")
+
+    def __reduce__(self):
+        return (type(self), (self.feed, self.time))
 
 
 @dataclass(frozen=True)
@@ -102,7 +119,14 @@ class Schedule:
     source: str = ""
 
     def segments(self, feed_names, end_time: float) -> list[Segment]:
-        """Split [0, end_time] at every row time of every feed."""
+        """Split [0, end_time] at every row time of every feed.
+
+        Raises
+        ------
+        ScheduleOverflow
+            When an exponential segment's rate is past any finite number at the
+            start of a segment (a schedule longer than the one it was checked for).
+        """
         cuts = {0.0, float(end_time)}
         for rows in self.feeds.values():
             cuts.update(t for t in rows.times if 0 < t < end_time)
@@ -111,20 +135,25 @@ class Schedule:
         for t0, t1 in zip(cuts[:-1], cuts[1:]):
             a, b, k = [], [], []
             for name in feed_names:
-                ai, bi, ki = self._law(self.feeds[name], t0)
+                ai, bi, ki = self._law(name, self.feeds[name], t0)
                 a.append(ai), b.append(bi), k.append(ki)
             out.append(Segment(t0, t1, tuple(a), tuple(b), tuple(k)))
         return out
 
-    def _law(self, rows: FeedRows, t0: float):
-        i = max(j for j, t in enumerate(rows.times) if t <= t0 + 1e-12)
+    def _law(self, name: str, rows: FeedRows, t0: float):
+        i = max(bisect.bisect_right(rows.times, t0 + 1e-12) - 1, 0)  # the last row at or before t0
         if self.interpolation == "linear" and i + 1 < len(rows.times):
             slope = (rows.rates[i + 1] - rows.rates[i]) / (rows.times[i + 1] - rows.times[i])
             return rows.rates[i] + slope * (t0 - rows.times[i]), slope, 0.0
         if self.interpolation == "linear":
             return rows.rates[i], 0.0, 0.0
         k = rows.growth[i]
-        return rows.rates[i] * math.exp(k * (t0 - rows.times[i])), 0.0, k
+        if rows.rates[i] == 0.0:  # an exponential of zero stays zero
+            return 0.0, 0.0, 0.0
+        try:
+            return rows.rates[i] * math.exp(k * (t0 - rows.times[i])), 0.0, k
+        except OverflowError:
+            raise ScheduleOverflow(name, t0) from None
 
     def last_time(self) -> float:
         return max(rows.times[-1] for rows in self.feeds.values())
@@ -165,21 +194,27 @@ def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: 
             header.append(f"{name} growth [1/h]")
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(header)
-    for t in times:
-        row = [repr(float(t))]
-        for name in names:
-            rows = schedule.feeds[name]
-            f = factor_to(feed_units.get(name, "L/h"))
-            if schedule.interpolation == "linear":
-                value = float(np.interp(t, rows.times, rows.rates))
-                g = 0.0
-            else:
-                i = max(j for j, tj in enumerate(rows.times) if tj <= t + 1e-12)
+    columns = []  # per feed: (values, growth) at every time, in one pass each
+    for name in names:
+        rows = schedule.feeds[name]
+        f = factor_to(feed_units.get(name, "L/h"))
+        if schedule.interpolation == "linear":
+            values = [float(v) * f for v in np.interp(times, rows.times, rows.rates)]
+            gs = [0.0] * len(times)
+        else:
+            values, gs = [], []
+            for t in times:
+                i = max(bisect.bisect_right(rows.times, t + 1e-12) - 1, 0)
                 g = rows.growth[i]
-                value = rows.rates[i] * math.exp(g * (t - rows.times[i]))
-            row.append(repr(value * f))
+                values.append((rows.rates[i] * math.exp(g * (t - rows.times[i])) if rows.rates[i] else 0.0) * f)
+                gs.append(g)
+        columns.append((values, gs))
+    for j, t in enumerate(times):
+        row = [repr(float(t))]
+        for values, gs in columns:
+            row.append(repr(values[j]))
             if growth:
-                row.append(repr(g))
+                row.append(repr(gs[j]))
         w.writerow(row)
     return buf.getvalue()
 
@@ -226,8 +261,19 @@ def _check_rows(path, name, times, rates, growth, lines, interpolation, end_time
             issues.append(Issue(path, lines[i], name, f"rate {rates[i]:g} L/h is negative"))
         if growth[i] != 0 and interpolation == "linear":
             issues.append(Issue(path, lines[i], name, "growth is only allowed with interpolation: constant"))
-        if not math.isfinite(rates[i] * math.exp(min(growth[i] * 1000, 700))):
+        if not math.isfinite(rates[i]):
             issues.append(Issue(path, lines[i], name, "rate is not a finite number"))
+        elif growth[i] != 0 and interpolation != "linear":
+            until = times[i + 1] if i + 1 < len(times) else end_time
+            if rates[i] == 0:
+                issues.append(Issue(path, lines[i], name,
+                                    f"growth {growth[i]:g} 1/h on a rate of 0 keeps the pump off (an exponential "
+                                    "of zero stays zero); give a starting rate above zero, or growth 0"))
+            elif rates[i] > 0 and math.isfinite(until) and \
+                    math.log(rates[i]) + growth[i] * (until - times[i]) > _LOG_LARGEST:
+                issues.append(Issue(path, lines[i], name,
+                                    f"rate {rates[i]:g} L/h growing at {growth[i]:g} 1/h passes any finite number "
+                                    f"before {until:g} h"))
     return issues
 
 
@@ -268,6 +314,11 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     if not rows:
         raise InputError.one(path, None, "", "no header row")
     header_line, header = rows[0]
+    most = 1 + 2 * len(feed_names)
+    if len(header) > most + 10:  # a few stray columns get their own message below
+        raise InputError.one(path, header_line, "", f"the header has {len(header)} columns; a schedule for "
+                                                    f"{len(feed_names)} feed(s) has at most {most} (time, and a rate "
+                                                    "and a growth column per feed)")
     columns = []  # (feed name, 'rate'|'growth'|'time', factor)
     issues = []
     for c, cell in enumerate(header):
@@ -296,11 +347,12 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     if issues:
         raise InputError(issues)
     given = [n for n, role, _, _ in columns if role == "rate"]
-    dup = {n for n in given if given.count(n) > 1}
+    dup = {n for n, count in collections.Counter(given).items() if count > 1}
     if dup:
         raise InputError.one(path, header_line, sorted(dup)[0], "column appears twice")
+    given_set = set(given)
     for n, role, _, cell in columns:
-        if role == "growth" and n not in given:
+        if role == "growth" and n not in given_set:
             raise InputError.one(path, header_line, cell, f"growth column for {n!r} without its rate column")
     issues = _missing(path, feed_names, given, header_line)
     if issues:
@@ -316,6 +368,8 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
             if role == "growth" and text_value == "":
                 continue
             try:
+                if not text_value.isascii():  # float() would read fullwidth digits as numbers
+                    raise ValueError
                 value = float(text_value)
                 if not math.isfinite(value):
                     raise ValueError

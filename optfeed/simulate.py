@@ -21,7 +21,8 @@ import numpy as np
 
 from .errors import SimulationError
 from .model import Model
-from .schedule import Schedule, Segment
+from .schedule import Schedule, ScheduleOverflow, Segment
+from .units import factor_to
 
 RTOL = 1e-10
 ATOL = 1e-10
@@ -104,7 +105,8 @@ class Simulator:
         f = model.function_p("f", [model.rhs])
         ode = h * f(t0 + h * tau, model.x, u, model.p)
         grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
-        opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False}
+        opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
+                "disable_internal_warnings": True}
         self._integrator = ca.integrator("piece", "cvodes",
                                          {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
                                          0.0, grid, opts)
@@ -122,12 +124,15 @@ class Simulator:
         """
         m = self.model
         p = m.p0 if p is None else np.asarray(p, dtype=float)
-        segments = schedule.segments(m.feed_names, end_time)
+        try:
+            segments = schedule.segments(m.feed_names, end_time)
+        except ScheduleOverflow as exc:
+            raise SimulationError(f"the rate of feed {exc.feed!r} grows past any finite number", exc.time) from None
         max_len = end_time * self.points / max(min_points, 1)
         x = np.array(m.x0 if x0 is None else x0, dtype=float)
         ts, xs, us, pieces, index = [], [], [], [], []
         for seg in segments:
-            for piece in _pieces(seg, max_len):
+            for piece in _pieces(seg, max_len, m.feed_names):
                 t, xf = self._integrate(piece, piece.start, x, piece.end, p)
                 ts.append(np.concatenate([[piece.start], t]))
                 xs.append(np.vstack([x, xf]))
@@ -150,26 +155,49 @@ class Simulator:
     def _integrate(self, seg: Segment, t0: float, x0, t1: float, p):
         h = t1 - t0
         d = t0 - seg.start
-        try:
-            a = [(ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k)]
-            b = [bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k)]
-            if not all(map(math.isfinite, a + b + [ai * math.exp(ki * h) for ai, ki in zip(a, seg.k)])):
+        try:  # a pump that is off stays off, whatever its growth rate
+            a = [(ai + bi * d) * math.exp(ki * d) if ai or bi else 0.0 for ai, bi, ki in zip(seg.a, seg.b, seg.k)]
+            b = [bi * math.exp(ki * d) if bi else 0.0 for bi, ki in zip(seg.b, seg.k)]
+            ends = [float(ai) * math.exp(ki * h) if ai else 0.0 for ai, ki in zip(a, seg.k)]
+            if not all(map(math.isfinite, a + b + ends)):
                 raise OverflowError
         except OverflowError:
-            raise SimulationError("a pump rate of the schedule grows past any finite number "
-                                  "(an exponential segment)", t0) from None
+            j = max(range(len(seg.k)), key=lambda i: seg.k[i])
+            raise SimulationError(f"the rate of feed {self.model.feed_names[j]!r} grows past any finite number",
+                                  t0) from None
         q = np.concatenate([[t0, h], a, b, seg.k, p])
         try:
             out = self._integrator(x0=x0, p=q)
         except RuntimeError as exc:
-            raise SimulationError(f"the integrator failed: {_short(exc)}", t0) from None
+            raise SimulationError(f"the integrator failed ({_short(exc)}); {self._largest(x0, seg, t0)}",
+                                  t0) from None
         xf = np.array(out["xf"]).T  # (points, nx)
+        t = t0 + h * self._grid
         if not np.all(np.isfinite(xf)):
-            bad = int(np.argmax(~np.all(np.isfinite(xf), axis=1)))
-            names = [n for n, ok in zip(self.model.state_names, np.isfinite(xf[bad])) if not ok]
-            raise SimulationError(f"{', '.join(names)} became infinite or not a number",
-                                  t0 + h * (self._grid[bad - 1] if bad else 0.0))
-        return t0 + h * self._grid, xf
+            row = int(np.argmax(~np.all(np.isfinite(xf), axis=1)))
+            names = [n for n, ok in zip(self.model.state_names, np.isfinite(xf[row])) if not ok]
+            before = t0 if row == 0 else float(t[row - 1])
+            raise SimulationError(f"{', '.join(names)} became infinite or not a number between "
+                                  f"{before:.6g} h and {t[row]:.6g} h; {self._largest(x0, seg, t0)}", before)
+        return t, xf
+
+    def _largest(self, x, piece, t0=None) -> str:
+        """Text naming the largest state (in its unit) and pump rate at ``t0`` (default:
+        the start of ``piece``)."""
+        t0 = piece.start if t0 is None else t0
+        m = self.model
+        j = int(np.argmax(np.abs(x))) if len(x) else 0
+        name = m.state_names[j]
+        unit = next((s.unit for s in m.problem.species if s.name == name), None)
+        if name == "V":
+            unit = m.problem.vessel.unit
+        value = f"{x[j] * factor_to(unit):.4g} {unit}" if unit else f"{x[j]:.4g} (internal units)"
+        text = f"at {t0:.6g} h the largest state was {name} = {value}"
+        rates = piece.rates(np.array([t0]))[0] if len(piece.a) else []
+        if len(rates):
+            f = int(np.argmax(np.abs(rates)))
+            text += f" and the largest pump rate {m.feed_names[f]} = {rates[f]:.4g} L/h"
+        return text
 
 
 def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Trajectory:
@@ -179,7 +207,7 @@ def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Tra
     return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points, x0=x0, p=p)
 
 
-def _pieces(seg: Segment, max_len: float):
+def _pieces(seg: Segment, max_len: float, feed_names=()):
     n = max(1, math.ceil((seg.end - seg.start) / max_len - 1e-9))
     if n == 1:
         yield seg
@@ -188,15 +216,33 @@ def _pieces(seg: Segment, max_len: float):
     for s, e in zip(edges[:-1], edges[1:]):
         d = s - seg.start
         try:
-            a = tuple((ai + bi * d) * math.exp(ki * d) for ai, bi, ki in zip(seg.a, seg.b, seg.k))
-            b = tuple(bi * math.exp(ki * d) for bi, ki in zip(seg.b, seg.k))
+            grow = [math.exp(ki * d) for ki in seg.k]
         except OverflowError:
-            raise SimulationError("a pump rate of the schedule grows past any finite number "
-                                  "(an exponential segment)", float(s)) from None
+            j = max(range(len(seg.k)), key=lambda i: seg.k[i])
+            raise SimulationError(f"the rate of feed {feed_names[j]!r} grows past any finite number",
+                                  float(s)) from None
+        a = tuple((ai + bi * d) * g if ai or bi else 0.0 for ai, bi, g in zip(seg.a, seg.b, grow))
+        b = tuple(bi * g if bi else 0.0 for bi, g in zip(seg.b, grow))
         yield Segment(float(s), float(e), a, b, seg.k)
 
 
+# CVODES return flags in words
+_CVODES_WORDS = {
+    "CV_TOO_MUCH_WORK": "too many integrator steps: a state changes too fast",
+    "CV_TOO_MUCH_ACC": "the accuracy asked for cannot be reached",
+    "CV_ERR_FAILURE": "the integrator could not keep its error small: a state grows too fast or the model is stiff",
+    "CV_CONV_FAILURE": "the integrator's corrector did not converge: a state grows too fast or the model is stiff",
+    "CV_RHSFUNC_FAIL": "the model's rates could not be evaluated",
+    "CV_REPTD_RHSFUNC_ERR": "the model's rates could not be evaluated (a state became too large or not a number)",
+    "CV_UNREC_RHSFUNC_ERR": "the model's rates could not be evaluated",
+}
+
+
 def _short(exc) -> str:
-    text = str(exc).strip().splitlines()
-    msg = next((line for line in reversed(text) if line.strip()), "unknown error")
+    text = str(exc)
+    for flag, words in _CVODES_WORDS.items():
+        if f'"{flag}"' in text or f"'{flag}'" in text or text.rstrip().endswith(flag):
+            return words
+    lines = text.strip().splitlines()
+    msg = next((line for line in reversed(lines) if line.strip()), "unknown error")
     return msg[:200]

@@ -11,10 +11,17 @@ model expression evaluated on internal values gives its result in internal units
 Conversion back to a user's unit happens only when reporting.
 
 A bare number takes the default unit of its kind (:data:`KINDS`).
+
+Only units with a use in bioprocess work are accepted (:data:`KNOWN_UNITS`, with any
+SI prefix): a parsec or a light year in a problem file is a typing slip or a joke,
+not a model. Temperatures with an offset (degC, degF) are refused, because a value
+in them cannot be converted by a factor: write K, or ``delta_degC`` for a
+difference.
 """
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -68,10 +75,48 @@ KINDS = {
     "any": Kind("any", "", "0.5 g/L", ()),
 }
 
-_NUMBER = r"[-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?"
+_NUMBER = r"[-+]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][-+]?[0-9]+)?"  # ASCII digits only
 _QUANTITY_RE = re.compile(rf"^\s*(?P<num>{_NUMBER})\s*(?P<unit>.*?)\s*$")
 # unit text: names, '1' alone (as in 1/h), small integer exponents, * / ( ) and spaces
-_UNIT_TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-z_µμ%°][A-Za-z_µμ°0-9]*)|(?P<op>\*\*|[*/^()])|(?P<int>-?\d+))")
+_UNIT_TOKEN = re.compile(r"\s*(?:(?P<name>[A-Za-z_µμ%°][A-Za-z_µμ°0-9]*)|(?P<op>\*\*|[*/^()])|(?P<int>-?[0-9]+))")
+
+
+# pint's names of the units a bioprocess model may use (each with any SI prefix):
+# mass, volume, length (vessel and impeller sizes, bubble and cell diameters), time,
+# amount of substance, temperature (absolute or a difference), energy, power,
+# pressure, stirring speed and frequency, force, cell counts, fractions.
+KNOWN_UNITS = frozenset({
+    "gram", "metric_ton", "pound", "ounce",
+    "liter", "cubic_centimeter", "gallon",
+    "meter", "inch", "foot",
+    "second", "minute", "hour", "day", "week",
+    "mole", "equivalent",
+    "kelvin", "delta_degree_Celsius", "delta_degree_Fahrenheit",
+    "joule", "calorie", "watt_hour", "watt", "horsepower",
+    "pascal", "bar", "standard_atmosphere", "pound_force_per_square_inch", "meter_Hg", "torr",
+    "hertz", "revolutions_per_minute", "revolution", "newton", "volt", "ampere", "siemens", "ohm",
+    "cell", "percent", "ppm", "dimensionless",
+})
+_OFFSET_UNITS = frozenset({"degree_Celsius", "degree_Fahrenheit", "degree_Reaumur", "degree_Rankine"})
+
+
+def _check_unit_names(units, text: str) -> None:
+    """Refuse unit names with no bioprocess use, and temperatures with an offset
+    (pint quietly reads 'degC/L' as a temperature difference per litre: refused too)."""
+    for m in _UNIT_TOKEN.finditer(text):
+        name = m.group("name")
+        if name and any(n in _OFFSET_UNITS for n in _units_of(name)):
+            raise ValueError(f"unit {text!r}: {name!r} is a temperature with an offset, which cannot be converted "
+                             "by a factor; write K, or delta_degC for a temperature difference")
+    for name in units._units:
+        try:
+            parsed = UREG.parse_unit_name(name, case_sensitive=True)
+        except Exception:  # noqa: BLE001 - pint raises several types
+            parsed = ()
+        if not any(unit in KNOWN_UNITS or unit in _OFFSET_UNITS for _, unit, _ in parsed):
+            raise ValueError(f"unit {text!r}: {name!r} has no use in a bioprocess model; write the value in "
+                             "units of mass, volume, length, time, amount, temperature, energy, power, pressure, "
+                             "cells or a fraction (g, L, m, h, mol, K, J, W, bar, cell, %)")
 
 
 def _check_unit_text(text: str) -> None:
@@ -100,10 +145,13 @@ def parse_quantity(value, kind: str):
     Raises ValueError with a message for the user (what was expected, an example).
     """
     k = KINDS[kind]
-    if isinstance(value, bool) or value is None:
-        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {value!r}")
+    if isinstance(value, bool):  # YAML's yes/no/true/false/on/off
+        raise ValueError(f"a yes/no value (read as {str(value).lower()}) is not a {k.name.replace('_', ' ')} "
+                         f"like '{k.example}'")
+    if value is None:
+        raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got nothing (null)")
     if isinstance(value, (int, float)):
-        q = UREG.Quantity(float(value), k.default_unit or "")
+        q = UREG.Quantity(float(value), _default_units(k.default_unit))
     elif isinstance(value, str):
         m = _QUANTITY_RE.match(value)
         if not m:
@@ -113,12 +161,9 @@ def parse_quantity(value, kind: str):
         unit = m.group("unit")
         if unit:
             _check_unit_text(unit)
-            try:
-                units = UREG.parse_units(unit.replace("^", "**"))
-            except Exception as exc:  # pint raises several types
-                raise ValueError(f"unknown unit {unit!r} ({exc.__class__.__name__})") from None
+            units = _parse_units(unit)
         else:
-            units = UREG.parse_units(k.default_unit or "")
+            units = _default_units(k.default_unit)
         q = UREG.Quantity(float(m.group("num")), units)
     else:
         raise ValueError(f"expected a {k.name.replace('_', ' ')} like '{k.example}', got {type(value).__name__}")
@@ -130,6 +175,30 @@ def parse_quantity(value, kind: str):
             f"like '{k.example}'"
         )
     return q
+
+
+@functools.lru_cache(maxsize=64)
+def _default_units(text: str):
+    return UREG.parse_units(text or "")
+
+
+def _units_of(name: str):
+    try:
+        return UREG.parse_units(name)._units
+    except Exception:  # noqa: BLE001 - unknown names are reported by the caller
+        return {}
+
+
+@functools.lru_cache(maxsize=512)
+def _parse_units(text: str):
+    """pint units of ``text`` (already checked by :func:`_check_unit_text`), cached:
+    a long schedule repeats the same few units thousands of times."""
+    try:
+        units = UREG.parse_units(text.replace("^", "**"))
+    except Exception as exc:  # pint raises several types
+        raise ValueError(f"unknown unit {text!r} ({exc.__class__.__name__})") from None
+    _check_unit_names(units, text)
+    return units
 
 
 _WORDS = {"L": "a volume", "g": "a mass", "h": "a time", "L/h": "a flow", "g/L": "a mass concentration",
@@ -165,8 +234,23 @@ def internal_units(dimensionality):
 
 
 def to_internal(q) -> float:
-    """Magnitude of pint Quantity ``q`` in the coherent internal units."""
-    return float(q.to(internal_units(q.dimensionality)).magnitude)
+    """Magnitude of pint Quantity ``q`` in the coherent internal units.
+
+    Raises ValueError for a quantity that cannot be converted (an offset unit) or
+    whose converted value is not a finite number (1e308 days in hours)."""
+    try:
+        value = float(q.magnitude) * _internal_factor(q.units)
+    except pint.errors.OffsetUnitCalculusError:
+        raise ValueError(f"'{q}' uses a temperature with an offset; write K, or delta_degC for a difference") from None
+    if not math.isfinite(value):
+        raise ValueError(f"'{q:~}' is too large: in optfeed's internal units it is not a finite number")
+    return value
+
+
+@functools.lru_cache(maxsize=512)
+def _internal_factor(units) -> float:
+    """Internal value of 1 ``units`` (cached: a long schedule repeats a few units)."""
+    return float(UREG.Quantity(1.0, units).to(internal_units(units.dimensionality)).magnitude)
 
 
 def factor_to(unit: str) -> float:

@@ -2,7 +2,8 @@
 
 Each ``problem_*`` file is a copy of ``ok_problem.yaml`` and each ``schedule_*`` file a
 copy of ``ok_schedule.csv`` (or a small YAML schedule) with exactly one defect; the
-header comment of each file says which. Two binary files are generated at run time.
+header comment of each file says which. Two binary files, two very large ones, two
+FIFOs and a link to /dev/zero are made at run time.
 
 For every case both ``optfeed validate`` and ``optfeed check`` run as subprocesses
 (side by side, to keep the suite quick) and must:
@@ -116,6 +117,45 @@ CASES = [
     Case("schedule_row_key.yaml", 6, "feeds.glucose[1].rte", r"^unknown key; rows take time, rate, growth"),
     Case("schedule_python_tag.yaml", 2, "interpolation",
          r"^YAML tag 'tag:yaml\.org,2002:python/object/apply:os\.system' is not allowed"),
+    # ---- yes/no values where a quantity or an expression belongs (YAML reads yes/on/true as booleans)
+    Case("problem_bool_rate.yaml", 19, "feeds.glucose.max_rate",
+         r"^a yes/no value \(read as true\) is not a number, quantity or expression"),
+    Case("problem_bool_initial.yaml", 5, "species.X.initial", r"^a yes/no value \(read as true\)"),
+    Case("problem_bool_expression.yaml", 14, "reactions.X", r"^a yes/no value \(read as true\)"),
+    Case("schedule_bool_rate.yaml", 6, "feeds.glucose[1].rate",
+         r"^a yes/no value \(read as true\) is not a flow like '0.2 L/h'"),
+    # ---- units and numbers that cannot mean anything here
+    Case("problem_offset_unit.yaml", 6, "species.S.initial",
+         r"^unit 'degC/L': 'degC' is a temperature with an offset, which cannot be converted by a factor"),
+    Case("problem_parsec.yaml", 9, "parameters.K_s", r"^unit 'parsec': 'parsec' has no use in a bioprocess model"),
+    Case("problem_end_time_overflow.yaml", 24, "horizon.end_time",
+         r"is too large: in optfeed's internal units it is not a finite number"),
+    Case("problem_fullwidth.yaml", 14, "reactions.X",
+         r"^character 'ｍ' \(FULLWIDTH LATIN SMALL LETTER M\) at position 1: expressions use plain ASCII"),
+    Case("schedule_fullwidth_number.csv", 5, "glucose [L/h]", r"^expected a number, got '０\.０５'"),
+    Case("problem_keyword_name.yaml", 11, "parameters.lambda",
+         r"^name 'lambda' is a word of the expression language and cannot name a value"),
+    # ---- settings that decide a status word
+    Case("problem_verify_tolerance.yaml", 26, "solver.verify_tolerance",
+         r"^must be between 1e-06 and 0\.01 \(largest relative difference .*\), got 0\.9"),
+    Case("problem_pump_interval.yaml", 26, "solver.pump_interval",
+         r"^a pump interval of 1e-308 h gives more than 5000 pump steps over the run \(10 h\)"),
+    Case("problem_tolerance.yaml", 26, "solver.tolerance",
+         r"^must be between 1e-12 and 0\.0001 \(IPOPT's convergence tolerance; default 1e-08\), got 0\.5"),
+    # ---- structure and size: bounded before anything grows
+    Case("problem_self_anchor.yaml", 11, "parameters.loop",
+         r"^YAML nested more than 64 levels deep \(an anchor that contains itself\?\)"),
+    Case("problem_deep_brackets.yaml", 11, None, r"^YAML nested more than 64 levels deep"),
+    Case("problem_fifo.yaml", None, None, r"^is a FIFO \(named pipe\), expected a regular file"),
+    Case("problem_dev_zero.yaml", None, None, r"^is a device, expected a regular file"),
+    Case("schedule_fifo.csv", None, None, r"^is a FIFO \(named pipe\), expected a regular file"),
+    Case("schedule_wide_header.csv", 3, None,
+         r"^the header has 150002 columns; a schedule for 1 feed\(s\) has at most 3"),
+    # ---- schedules whose pump law runs away
+    Case("schedule_growth_stopped_pump.csv", 4, "glucose",
+         r"^growth 1000 1/h on a rate of 0 keeps the pump off \(an exponential of zero stays zero\)"),
+    Case("schedule_growth_overflow.csv", 5, "glucose",
+         r"^rate 0\.05 L/h growing at 150 1/h passes any finite number before 10 h"),
 ]
 
 
@@ -133,10 +173,39 @@ GENERATED = {
 }
 
 
+def _deep_brackets() -> bytes:
+    """ok_problem.yaml with a parameter nested 5000 brackets deep at line 11."""
+    lines = OK_PROBLEM.read_text().splitlines()
+    lines.insert(10, "  deep: " + "[" * 5000 + "]" * 5000)
+    return ("\n".join(lines) + "\n").encode()
+
+
+def _wide_header() -> bytes:
+    """ok_schedule.csv with 150,000 made-up feed columns in its header (line 3)."""
+    lines = OK_SCHEDULE.read_text().splitlines()
+    lines[2] += "".join(f",f{i} [L/h]" for i in range(150_000))
+    return ("\n".join(lines) + "\n").encode()
+
+
+# files made at run time that are not plain bytes: name -> maker(path)
+MADE = {
+    "problem_deep_brackets.yaml": lambda p: p.write_bytes(_deep_brackets()),
+    "schedule_wide_header.csv": lambda p: p.write_bytes(_wide_header()),
+    "problem_fifo.yaml": os.mkfifo,  # reading it would block forever
+    "schedule_fifo.csv": os.mkfifo,
+    "problem_dev_zero.yaml": lambda p: p.symlink_to("/dev/zero"),  # endless zeros
+}
+
+
 def _input_path(case: Case, tmp_path: Path) -> Path:
     if case.file in GENERATED:
         path = tmp_path / case.file
         path.write_bytes(GENERATED[case.file])
+        return path
+    if case.file in MADE:
+        path = tmp_path / "made" / case.file
+        path.parent.mkdir(exist_ok=True)
+        MADE[case.file](path)
         return path
     return CORPUS / case.file
 
@@ -232,8 +301,9 @@ def test_corpus_lists_every_file():
     on_disk = {p.name for p in CORPUS.iterdir() if p.is_file() and not p.name.startswith("ok_")}
     in_table = {c.file for c in CASES}
     assert len({c.file for c in CASES}) == len(CASES), "a file is listed twice"
-    assert on_disk == in_table - set(GENERATED), (
-        f"not in the table: {sorted(on_disk - in_table)}; missing on disk: {sorted(in_table - set(GENERATED) - on_disk)}"
+    made = set(GENERATED) | set(MADE)
+    assert on_disk == in_table - made, (
+        f"not in the table: {sorted(on_disk - in_table)}; missing on disk: {sorted(in_table - made - on_disk)}"
     )
     assert len(CASES) >= 20
 

@@ -83,9 +83,15 @@ def test_missing_path_is_bad_input_and_nothing_starts(tmp_path):
 
 
 def test_case_that_breaks_the_problem_names_the_case(tmp_path):
+    # the swept value is at fault: the sweep file's line and key are named
     path = sweep_file(tmp_path, "grid:\n  vessel.initial_volume: [10 L, 20 L]\n")
-    with pytest.raises(InputError, match=r"initial volume .* is above the working volume .*in the case "
-                                         r"vessel.initial_volume = 20 L"):
+    with pytest.raises(InputError, match=r"s.yaml:5: vessel.initial_volume: initial volume '20 L' is above the "
+                                         r"working volume '14 L' \(the value '20 L' in animal_cell.yaml\)"):
+        load_sweep(path)
+    # another key of the problem is at fault: the problem file is named, with the case
+    path = sweep_file(tmp_path, "grid:\n  vessel.working_volume: [14 L, 5 L]\n")
+    with pytest.raises(InputError, match=r"animal_cell.yaml:\d+: vessel.initial_volume: initial volume .* is above "
+                                         r"the working volume .*in the case vessel.working_volume = 5 L"):
         load_sweep(path)
 
 

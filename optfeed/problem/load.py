@@ -9,6 +9,7 @@ internal units. All problems found are reported together in one
 from __future__ import annotations
 
 import difflib
+import keyword
 import re
 import typing
 from pathlib import Path
@@ -17,18 +18,26 @@ import pydantic
 
 from .. import expr as ex
 from ..errors import InputError, Issue
+from ..paths import SAFE_NAME, safe_folder_name
 from ..units import describe, parse_quantity, to_internal, written_unit
 from . import schema
 from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
 
 _NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
-_FOLDER_RE = re.compile(r"^[A-Za-z0-9_\-][A-Za-z0-9_.\-]{0,79}$")
+
+# Solver settings that decide a status word, and their sane ranges: past them an answer
+# could be called converged or verified when it is not (a verify tolerance of 0.9
+# accepts a re-simulated objective 68 % off), or never could be.
+SETTING_RANGES = {
+    "smoothing": (0.0, 1e6, "a weight relative to the objective"),
+    "tolerance": (1e-12, 1e-4, "IPOPT's convergence tolerance"),
+    "verify_tolerance": (1e-6, 1e-2, "largest relative difference between the NLP and the re-simulated "
+                                     "objective for a verified answer"),
+}
+_FOLDER_RE = SAFE_NAME
 
 
-def _folder_name(name: str) -> str:
-    """A problem name safe for a result folder (a file stem may hold anything)."""
-    return name if _FOLDER_RE.match(name) else (re.sub(r"[^A-Za-z0-9_.\-]+", "_", name).lstrip(".") or "problem")[:80]
 
 
 def load_problem(path) -> Problem:
@@ -84,8 +93,12 @@ def _pydantic_issues(errors, source, lines) -> list[Issue]:
             allowed = _fields_at(schema.ProblemIn, loc[:-1])
             for close in difflib.get_close_matches(str(loc[-1]), allowed, n=1, cutoff=0.5):
                 misspelt.add(loc[:-1] + (close,))
-    return [_pydantic_issue(e, source, lines) for e in errors
-            if not (e["type"] == "missing" and tuple(e["loc"]) in misspelt)]
+    issues = [_pydantic_issue(e, source, lines) for e in errors
+              if not (e["type"] == "missing" and tuple(e["loc"]) in misspelt)]
+    # a union reports one error per member: where one of them says what is wrong in
+    # words (a yes/no value), keep that one alone for its key
+    worded = {i.key for e, i in zip(errors, issues) if e["type"] == "value_error"}
+    return list(dict.fromkeys(i for e, i in zip(errors, issues) if e["type"] == "value_error" or i.key not in worded))
 
 
 def _pydantic_issue(err, source, lines) -> Issue:
@@ -113,6 +126,8 @@ def _pydantic_issue(err, source, lines) -> Issue:
         msg = f"wrong type: {msg.lower()}, got {got_text}"
     elif kind == "literal_error":
         msg = f"{msg}, got {got_text}"
+    elif kind == "value_error":
+        msg = msg.removeprefix("Value error, ")
     return Issue(source, line, key_text(loc), msg)
 
 
@@ -208,24 +223,25 @@ class _Builder:
         feed_names = list(r.feeds)
         base = list(r.species) + list(r.parameters) + feed_names + ["t", "V", "D", "F_total"]
         rates = []
-        known = list(base)
-        for name, text in r.rates.items():
-            later = [n for n in r.rates if n not in known and n != name]
-            e = self.expression(text, ("rates", name), known + later)
+        # one set of every name and each rate's position: checking a rate costs only
+        # the names it uses, so thousands of chained rates load in linear time
+        order = {n: i for i, n in enumerate(r.rates)}
+        all_names = set(base) | set(order)
+        for i, (name, text) in enumerate(r.rates.items()):
+            e = self.expression(text, ("rates", name), all_names)
             if e is not None:
-                for used in sorted(e.names & set(later)):
+                for used in sorted(n for n in e.names if order.get(n, -1) > i):
                     self.fail(("rates", name), f"uses rate {used!r}, which is defined below it; "
                                                "rates are evaluated in the order written")
                 if name in e.names:
                     self.fail(("rates", name), "a rate cannot use itself")
                 rates.append((name, e))
-            known.append(name)
-        rate_env = list(known)
+        rate_env = frozenset(all_names)
 
         vessel = self._vessel(rate_env)
-        with_oxygen = rate_env + (["OUR"] if r.vessel.oxygen else [])
-        fed = [f"fed_{n}" for n in r.species if any(n in f.composition for f in r.feeds.values())]
-        end_env = with_oxygen + (["heat_load"] if r.vessel.heat else []) + fed
+        with_oxygen = rate_env | ({"OUR"} if r.vessel.oxygen else set())
+        fed = {f"fed_{n}" for n in r.species if any(n in f.composition for f in r.feeds.values())}
+        end_env = with_oxygen | ({"heat_load"} if r.vessel.heat else set()) | fed
 
         species = self._species(species_initial, rate_env)
         feeds = self._feeds(species_dims)
@@ -239,7 +255,7 @@ class _Builder:
         if self.issues:
             raise InputError(sorted(self.issues, key=lambda i: i.line or 0))  # in file order
         return Problem(
-            name=_folder_name(r.name or Path(self.source).stem),
+            name=safe_folder_name(r.name or Path(self.source).stem),
             description=r.description.strip(),
             source=self.source,
             species=tuple(species),
@@ -290,6 +306,8 @@ class _Builder:
                 loc = (group, name)
                 if not _NAME_RE.match(name):
                     self.fail(loc, f"name {name!r} must start with a letter and hold only letters, digits and '_'")
+                elif keyword.iskeyword(name):
+                    self.fail(loc, f"name {name!r} is a word of the expression language and cannot name a value")
                 elif name in RESERVED or name.startswith("fed_"):
                     self.fail(loc, f"name {name!r} is reserved ({', '.join(RESERVED)} and fed_<species>)")
                 elif name in ex.FUNCTIONS:
@@ -515,6 +533,9 @@ class _Builder:
                 length = horizon.end_time if not horizon.free else horizon.guess
                 if got[0] <= 0:
                     self.fail(loc + ("pump_interval",), "pump interval must be above zero")
+                elif not length / got[0] <= 5000:  # also infinite for a tiny interval
+                    self.fail(loc + ("pump_interval",), f"a pump interval of {got[0]:g} h gives more than 5000 "
+                                                        f"pump steps over the run ({length:g} h)")
                 else:
                     steps = max(1, round(length / got[0]))
                     if abs(steps * got[0] - length) > 1e-6 * length:
@@ -527,10 +548,11 @@ class _Builder:
         for key, value, lo, hi in checks:
             if not lo <= value <= hi:
                 self.fail(loc + (key,), f"must be between {lo} and {hi}, got {value}")
-        for key in ("smoothing", "tolerance", "verify_tolerance"):
+        for key, (lo, hi, what) in SETTING_RANGES.items():
             value = getattr(s, key)
-            if not (value >= 0 and value < 1e6) or (key != "smoothing" and value == 0):
-                self.fail(loc + (key,), f"must be a positive number, got {value}")
+            if not lo <= value <= hi:  # also refuses NaN
+                self.fail(loc + (key,), f"must be between {lo:g} and {hi:g} ({what}; default "
+                                        f"{getattr(Settings(), key):g}), got {value:g}")
         if steps * s.elements_per_step > 20000:
             self.fail(loc, "more than 20000 finite elements")
         if not 0 <= s.grid_tolerance <= 0.1:

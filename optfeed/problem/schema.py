@@ -7,13 +7,24 @@ models into the plain :class:`optfeed.problem.spec.Problem`.
 
 from __future__ import annotations
 
-from typing import Literal, Optional, Union
+from typing import Annotated, Literal, Optional, Union
 
-from pydantic import BaseModel, ConfigDict, Field, StrictBool
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, StrictBool
 
 from .spec import Settings
 
-Scalar = Union[float, int, str]  # a number, or a number with a unit as text
+
+def _no_yes_no(value):
+    """YAML reads yes/no/true/false/on/off as booleans, which pydantic would take as
+    1 and 0: a pump of 'yes' L/h. A boolean is never a quantity, expression or count."""
+    if isinstance(value, bool):
+        raise ValueError(f"a yes/no value (read as {str(value).lower()}) is not a number, quantity or expression")
+    return value
+
+
+Scalar = Annotated[Union[float, int, str], BeforeValidator(_no_yes_no)]  # a number, or a number with a unit as text
+Number = Annotated[float, BeforeValidator(_no_yes_no)]
+Count = Annotated[int, BeforeValidator(_no_yes_no)]
 Text = str
 
 
@@ -86,17 +97,17 @@ _DEFAULT = Settings()  # the defaults live in one place: spec.Settings
 
 class SolverIn(_Strict):
     pump_interval: Optional[Scalar] = None
-    pump_steps: Optional[int] = None  # default: Settings.pump_steps, applied in load
-    elements_per_step: int = _DEFAULT.elements_per_step
-    degree: int = _DEFAULT.degree
-    starts: int = _DEFAULT.starts
-    smoothing: float = _DEFAULT.smoothing
-    max_iter: int = _DEFAULT.max_iter
-    tolerance: float = _DEFAULT.tolerance
-    verify_tolerance: float = _DEFAULT.verify_tolerance
+    pump_steps: Optional[Count] = None  # default: Settings.pump_steps, applied in load
+    elements_per_step: Count = _DEFAULT.elements_per_step
+    degree: Count = _DEFAULT.degree
+    starts: Count = _DEFAULT.starts
+    smoothing: Number = _DEFAULT.smoothing
+    max_iter: Count = _DEFAULT.max_iter
+    tolerance: Number = _DEFAULT.tolerance
+    verify_tolerance: Number = _DEFAULT.verify_tolerance
     refine_grid: Optional[StrictBool] = None  # default: on unless the file sets the pump grid
-    grid_tolerance: float = _DEFAULT.grid_tolerance
-    max_pump_steps: int = _DEFAULT.max_pump_steps
+    grid_tolerance: Number = _DEFAULT.grid_tolerance
+    max_pump_steps: Count = _DEFAULT.max_pump_steps
     time_limit: Optional[Scalar] = None
 
 

@@ -4,11 +4,18 @@
 :class:`Lines` map from key paths to 1-based line numbers, so that later checks can
 name the line of a bad value. Only the YAML core types are accepted: any other tag
 (``!!python/object``, ``!!binary``, custom tags) is an error, and so is an alias
-expansion that grows past :data:`MAX_NODES` nodes (an "alias bomb").
+expansion that grows past :data:`MAX_NODES` values (an "alias bomb"), a nesting
+deeper than :data:`MAX_DEPTH` levels and an anchor that contains itself.
+
+:func:`read_text` looks at a file before reading it: only a regular file of at most
+:data:`MAX_BYTES` bytes is read (a device such as /dev/zero, a FIFO or a socket is
+refused without being opened), and never more than that many bytes.
 """
 
 from __future__ import annotations
 
+import os
+import stat
 from pathlib import Path
 
 import yaml
@@ -16,7 +23,8 @@ import yaml
 from ..errors import InputError
 
 MAX_BYTES = 2_000_000
-MAX_NODES = 50_000
+MAX_NODES = 50_000  # values built from aliases (a plain document is bounded by MAX_BYTES)
+MAX_DEPTH = 64  # nesting levels, counting those reached through aliases
 
 _PLAIN_TAGS = {
     "tag:yaml.org,2002:str",
@@ -49,14 +57,33 @@ class Lines:
 
 
 def read_text(path) -> str:
-    """Read a small UTF-8 text file, or raise InputError naming it."""
+    """Read a small UTF-8 text file, or raise InputError naming it.
+
+    The file is looked at first (kind and size), so a device, a FIFO or a huge file
+    is refused without reading it; at most MAX_BYTES + 1 bytes are ever read."""
+    if str(path) == "":
+        raise InputError.one(path, None, "", "no file name given")
     p = Path(path)
     try:
-        raw = p.read_bytes()
+        info = os.stat(p)
     except FileNotFoundError:
         raise InputError.one(path, None, "", "file not found") from None
-    except IsADirectoryError:
-        raise InputError.one(path, None, "", "is a folder, expected a file") from None
+    except NotADirectoryError:
+        raise InputError.one(path, None, "", "file not found (a part of the path is a file, not a folder)") from None
+    except OSError as exc:
+        raise InputError.one(path, None, "", f"cannot be read ({exc.strerror})") from None
+    if stat.S_ISDIR(info.st_mode):
+        raise InputError.one(path, None, "", "is a folder, expected a file")
+    if not stat.S_ISREG(info.st_mode):
+        what = ("a FIFO (named pipe)" if stat.S_ISFIFO(info.st_mode) else
+                "a device" if stat.S_ISCHR(info.st_mode) or stat.S_ISBLK(info.st_mode) else
+                "a socket" if stat.S_ISSOCK(info.st_mode) else "not a regular file")
+        raise InputError.one(path, None, "", f"is {what}, expected a regular file")
+    if info.st_size > MAX_BYTES:
+        raise InputError.one(path, None, "", f"file is larger than {MAX_BYTES} bytes")
+    try:
+        with open(p, "rb") as fh:
+            raw = fh.read(MAX_BYTES + 1)
     except OSError as exc:
         raise InputError.one(path, None, "", f"cannot be read ({exc.strerror})") from None
     if len(raw) > MAX_BYTES:
@@ -95,10 +122,17 @@ def read_yaml(path, text: str | None = None):
     """
     if text is None:
         text = read_text(path)
-    loader = yaml.SafeLoader(text)
+    try:
+        loader = _Loader(text)  # checks every character first
+    except yaml.reader.ReaderError as exc:
+        line = text[: exc.position].count("\n") + 1 if isinstance(exc.position, int) else None
+        raise InputError.one(path, line, "", f"character {chr(exc.character)!r} (code {exc.character:#04x}) "
+                                             "is not allowed in a YAML file") from None
     try:
         try:
             node = loader.get_single_node()
+        except _TooDeep as exc:
+            raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
         except yaml.MarkedYAMLError as exc:
             mark = exc.problem_mark or exc.context_mark
             line = mark.line + 1 if mark else None
@@ -115,22 +149,57 @@ def read_yaml(path, text: str | None = None):
         if node is None:
             raise InputError.one(path, None, "", "file holds no YAML document")
         lines = Lines()
-        counter = [0]
-        data = _build(node, (), path, lines, loader, counter)
+        data = _build(node, (), path, lines, loader, _Seen())
         return data, lines
     finally:
         loader.dispose()
 
 
-def _build(node, keypath, file, lines, loader, counter):
-    counter[0] += 1
-    if counter[0] > MAX_NODES:
-        # name the key whose value blows up, not the depths of the expansion
-        named = keypath[: next((i for i, k in enumerate(keypath) if isinstance(k, int)), len(keypath))]
-        raise InputError.one(
-            file, lines.get(named), key_text(named),
-            f"document expands to more than {MAX_NODES} values (alias bomb?)",
-        )
+class _TooDeep(Exception):
+    def __init__(self, line):
+        self.line = line
+
+
+class _Loader(yaml.SafeLoader):
+    """PyYAML's safe loader, with the nesting bounded: its composer recurses once per
+    level, so 5000 nested brackets would otherwise end in a RecursionError."""
+
+    def __init__(self, text):
+        super().__init__(text)
+        self._depth = 0
+
+    def compose_node(self, parent, index):
+        self._depth += 1
+        try:
+            if self._depth > MAX_DEPTH:
+                raise _TooDeep(self.peek_event().start_mark.line + 1)
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+
+class _Seen:
+    """Nodes already built once, and how many values were built again through aliases."""
+
+    def __init__(self):
+        self.ids = set()
+        self.again = 0
+
+
+def _build(node, keypath, file, lines, loader, seen):
+    # name the key whose value blows up, not the depths of the expansion
+    named = keypath[: next((i for i, k in enumerate(keypath) if isinstance(k, int)), len(keypath))]
+    if id(node) in seen.ids:  # reached again through an alias
+        seen.again += 1
+        if seen.again > MAX_NODES:
+            raise InputError.one(
+                file, lines.get(named), key_text(named),
+                f"document expands to more than {MAX_NODES} values (alias bomb?)",
+            )
+    seen.ids.add(id(node))
+    if len(keypath) > MAX_DEPTH:  # an anchor that holds itself, or aliases stacked deep
+        raise InputError.one(file, lines.get(named), key_text(named),
+                             f"YAML nested more than {MAX_DEPTH} levels deep (an anchor that contains itself?)")
     lines.set(keypath, node.start_mark.line + 1)
     if isinstance(node, yaml.MappingNode):
         if node.tag != _MAP:
@@ -148,13 +217,13 @@ def _build(node, keypath, file, lines, loader, counter):
                 raise InputError.one(file, knode.start_mark.line + 1, key_text(keypath + (key,)),
                                      "duplicate key")
             lines.set(keypath + (key,), knode.start_mark.line + 1)
-            out[key] = _build(vnode, keypath + (key,), file, lines, loader, counter)
+            out[key] = _build(vnode, keypath + (key,), file, lines, loader, seen)
         return out
     if isinstance(node, yaml.SequenceNode):
         if node.tag != _SEQ:
             raise _bad_tag(node, keypath, file)
         return [
-            _build(item, keypath + (i,), file, lines, loader, counter)
+            _build(item, keypath + (i,), file, lines, loader, seen)
             for i, item in enumerate(node.value)
         ]
     if node.tag not in _PLAIN_TAGS:

@@ -16,8 +16,9 @@ import numpy as np  # noqa: E402
 
 from ..report.text import CAUTION, fmt  # noqa: E402
 
-_NUM = re.compile(r"^\s*([-+]?(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)\s*(.*)$")
+_NUM = re.compile(r"^\s*([-+]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][-+]?[0-9]+)?)\s*(.*)$")
 GOOD = ("optimal, verified", "within limits")
+PENDING = ("queued", "running", "not run")  # no final status yet: the same command runs them
 
 
 def number(value):
@@ -84,11 +85,17 @@ def summary_text(sweep, rows, best, top: int = 10) -> str:
         for i, r in enumerate(best[:top], 1):
             lines.append(f"  {i:>3}. {fmt(r['objective'], 6):>12}  {r['label']}")
         lines.append("")
-    bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in ("queued", "running")]
+    bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in PENDING]
     if bad:
         lines.append("Cases that are not optimal and verified / within limits:")
         for r in bad:
             lines.append(f"  {r['status']:<24} {r['label']}: {(r['message'] or '')[:160]}")
+        lines.append("")
+    lost = [r for r in rows if r["status"] == "not run"]
+    if lost:
+        lines.append("Cases not run, for a reason outside them (the same command runs them again):")
+        for r in lost:
+            lines.append(f"  {r['label']}: {(r['message'] or '')[:160]}")
         lines.append("")
     left = [r for r in rows if r["status"] in ("queued", "running")]
     if left:
@@ -110,7 +117,7 @@ def _figures(sweep, rows, best, folder: Path, paths) -> None:
         xunit = next((number(r["values"].get(p))[1] for r in good if number(r["values"].get(p))[1]), "")
         fig, ax = plt.subplots(figsize=(6, 4))
         ax.plot(xs, [r["objective"] for r in good], "o", color="#1f5f8b")
-        bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in ("queued", "running")]
+        bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in PENDING]
         for r in bad:
             ax.axvline(number(r["values"].get(p))[0], color="#b03a2e", lw=0.8, alpha=0.5)
         ax.set_xlabel(f"{p} ({xunit})" if xunit else p)

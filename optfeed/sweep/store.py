@@ -2,13 +2,15 @@
 
 Rows are written as cases are queued, started and finished, each in its own
 transaction, so a sweep killed at any moment loses nothing that finished. A row whose
-status is final is never run again; a row left 'running' by a killed sweep is run
-again on resume.
+status is final is never run again; a row left 'running' by a killed sweep, and a
+row 'not run' (its process or worker was lost, the disk was full), is run again on
+resume.
 """
 
 from __future__ import annotations
 
 import json
+import os
 import sqlite3
 import time
 from pathlib import Path
@@ -40,6 +42,43 @@ CREATE TABLE IF NOT EXISTS cases (
 """
 
 
+COLUMNS = ("key", "label", "source", "job", "values_json", "problem_digest", "status", "exit_code", "objective",
+           "objective_unit", "end_time_h", "figures_json", "message", "run_dir", "seconds", "queued_at",
+           "started_at", "finished_at")
+
+
+def store_problem(path) -> str | None:
+    """Why the file at ``path`` is not a sweep store optfeed can use, or None (also
+    None when there is no file yet). Reads only; leaves nothing behind."""
+    path = Path(path)
+    if not os.path.lexists(path):
+        return None
+    if path.is_symlink():
+        return "is a symbolic link; optfeed makes this file itself: move the link away"
+    if not path.is_file():
+        return "is not a regular file"
+    if path.stat().st_size == 0:
+        return None  # an empty file is an empty database
+    try:
+        db = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=5.0)
+    except sqlite3.Error as exc:
+        return f"cannot be opened as a sweep store ({exc})"
+    try:
+        tables = {r[0] for r in db.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if "cases" not in tables:
+            return (f"is an SQLite file without optfeed's 'cases' table (it holds {', '.join(sorted(tables)) or 'nothing'})"
+                    "; move it away or choose another --out")
+        columns = tuple(r[1] for r in db.execute("PRAGMA table_info(cases)"))
+        if columns != COLUMNS:
+            return ("holds a 'cases' table of another shape (not this version's sweep store); move it away or "
+                    "choose another --out")
+    except sqlite3.DatabaseError as exc:
+        return f"cannot be read as a sweep store ({exc}); move it away to start afresh"
+    finally:
+        db.close()
+    return None
+
+
 class Store:
     """The SQLite store of one sweep (``path``, created if missing)."""
 
@@ -54,6 +93,9 @@ class Store:
         except sqlite3.DatabaseError:
             self.db.close()
             raise
+
+    def keys(self) -> set:
+        return {r[0] for r in self.db.execute("SELECT key FROM cases")}
 
     def close(self) -> None:
         self.db.close()
@@ -76,6 +118,7 @@ class Store:
         self.db.execute("UPDATE cases SET status='running', started_at=? WHERE key=?", (time.time(), key))
 
     def mark_queued(self, keys) -> None:
+        """Rows still 'running' (a run that stopped) go back to the queue."""
         self.db.executemany("UPDATE cases SET status='queued' WHERE key=? AND status='running'",
                             [(k,) for k in keys])
 
