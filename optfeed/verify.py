@@ -8,7 +8,7 @@ import numpy as np
 
 from .errors import SimulationError
 from .limits import REL_TOL, judge
-from .schedule import Schedule, piecewise_constant
+from .schedule import Schedule, piecewise_constant, round_schedule
 from .simulate import Trajectory, simulate
 
 
@@ -56,8 +56,10 @@ def pump_schedule(feed_names, t_steps, u_steps, source: str = "") -> Schedule:
 
 def verify(model, limits, unpacked, objective_nlp, tolerance: float) -> Verification:
     """Re-simulate the pump schedule of ``unpacked`` with CVODES and judge it."""
-    schedule = pump_schedule(model.feed_names, unpacked.t_steps, unpacked.u_steps)
     T = unpacked.T
+    # verify the schedule exactly as schedule.csv will hold it: rounded, exact zeros
+    schedule = round_schedule(pump_schedule(model.feed_names, unpacked.t_steps, unpacked.u_steps),
+                              model.problem.feeds, end_time=T)
     try:
         traj = simulate(model, schedule, T, min_points=4000)
     except SimulationError as exc:
