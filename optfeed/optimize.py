@@ -12,10 +12,13 @@ import numpy as np
 from . import status as st
 from .errors import InputError
 from .limits import REL_TOL, LimitReport, build_limits
+from .marginals import is_active
 from .model import build_model
 from .outcome import Outcome, objective_label, outcome_of
-from .problem import Problem, load_problem
+from .problem import Problem
+from .problem.paths import as_problem
 from .provenance import problem_digest, stamp
+from .results import result_repr, result_trajectory_table
 from .solve import Start, make_guesses, multistart, scaling_for, solve_one, transcribe
 from .units import factor_to
 from .verify import Verification, verify
@@ -30,7 +33,8 @@ class LimitValue:
     report : LimitReport
         Slack etc. from the re-simulation.
     active : bool
-        The optimum sits on it (smallest slack within the verification tolerance).
+        It holds the optimum back: its marginal value is not zero
+        (:func:`optfeed.marginals.is_active`, the one rule for 'ACTIVE').
     marginal_max, marginal_min : float
         Gain in the objective (its unit) per unit relaxation of the limit (its
         unit), summed over the run: for raising its maximum, and for lowering its
@@ -117,8 +121,18 @@ class OptimizeResult:
     def trajectory(self):
         return None if self.verification is None else self.verification.trajectory
 
+    # -- for people (optfeed.results): a one-line repr, the run as plain columns
+    def trajectory_table(self) -> dict:
+        """The re-simulated run as plain columns in display units, units in the names
+        (``{'time [h]': ..., 'X [g/L]': ...}``; see :mod:`optfeed.tables`); {} if
+        there is no answer."""
+        return result_trajectory_table(self)
 
-def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeResult:
+    def __repr__(self) -> str:
+        return result_repr(self)
+
+
+def optimize(problem, workers: int | None = None, on_progress=None, set: dict | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -128,6 +142,10 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         Processes for the multistart (default: the free cores, at most one per start).
     on_progress : callable, optional
         ``on_progress(text, done, total)`` as the job moves on.
+    set : dict, optional
+        Values of the problem to change first, by dotted path as in sweep files:
+        ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``. (The name
+        shadows the builtin ``set`` inside this function.)
 
     Returns
     -------
@@ -136,8 +154,7 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
         schedule confirms the objective and every limit.
     """
     t_start = time.perf_counter()
-    if not isinstance(problem, Problem):
-        problem = load_problem(problem)
+    problem = as_problem(problem, set)  # a file or a Problem, with overrides by dotted path
     if problem.objective is None:
         raise InputError.one(problem.source, None, "objective", "optimize needs an objective "
                              "(e.g. objective: {maximize: product_mass, product: P})")
@@ -230,9 +247,10 @@ def optimize(problem, workers: int | None = None, on_progress=None) -> OptimizeR
     values_out = []
     for lim, rep in zip(limits, ver.limits):
         up, low = marg.get(lim.name, (0.0, 0.0))
-        # at its bound, within the verification tolerance
-        active = bool(rep.min_slack / lim.factor <= tol * lim.scale())
-        values_out.append(LimitValue(rep, active, up * f_obj / lim.factor, low * f_obj / lim.factor))
+        up, low = float(up * f_obj / lim.factor), float(low * f_obj / lim.factor)
+        # active: it holds the optimum back (the one rule, optfeed.marginals)
+        active = is_active(rep, up, low, best.objective * f_obj)
+        values_out.append(LimitValue(rep, active, up, low))
     if "end time" in marg:
         up, low = marg["end time"]
         record["end_time_marginal_per_h"] = (up if abs(up) >= abs(low) else -low) * f_obj

@@ -16,6 +16,7 @@ from pathlib import Path
 import pydantic
 
 from .. import expr as ex
+from ..dimensions import annotate
 from ..errors import InputError, Issue
 from ..units import describe, parse_quantity, to_internal, written_unit
 from . import schema
@@ -31,13 +32,17 @@ def _folder_name(name: str) -> str:
     return name if _FOLDER_RE.match(name) else (re.sub(r"[^A-Za-z0-9_.\-]+", "_", name).lstrip(".") or "problem")[:80]
 
 
-def load_problem(path) -> Problem:
+def load_problem(path, set: dict | None = None) -> Problem:
     """Read and check a problem file.
 
     Parameters
     ----------
     path : str or Path
         A YAML problem file.
+    set : dict, optional
+        Values to change before checking, by dotted path as in sweep files:
+        ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``
+        (see :mod:`optfeed.problem.paths`).
 
     Returns
     -------
@@ -53,10 +58,18 @@ def load_problem(path) -> Problem:
     --------
     >>> p = load_problem("configs/fast_microbe.yaml")  # doctest: +SKIP
     >>> p.vessel.working_volume                        # doctest: +SKIP
-    8.0
+    80.0
     """
     data, lines = read_yaml(path)
-    return problem_from_data(data, str(path), lines)
+    if not set:
+        return problem_from_data(data, str(path), lines)
+    from .paths import apply_overrides, note_overrides
+
+    data = apply_overrides(data, set, str(path))
+    try:
+        return problem_from_data(data, str(path), lines)
+    except InputError as exc:
+        raise note_overrides(exc, set) from None
 
 
 def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
@@ -68,7 +81,7 @@ def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
         raw = schema.ProblemIn.model_validate(data)
     except pydantic.ValidationError as exc:
         raise InputError(_pydantic_issues(exc.errors(), source, lines)) from None
-    return _Builder(raw, data, source, lines).build()
+    return annotate(_Builder(raw, data, source, lines).build(), lines)  # units for people, unit warnings
 
 
 # ---------------------------------------------------------------- pydantic errors
