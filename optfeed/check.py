@@ -11,7 +11,7 @@ from .limits import LimitReport, build_limits, judge
 from .model import build_model
 from .outcome import Outcome, outcome_of
 from .problem import Problem
-from .problem.paths import as_problem
+from .problem.dotted import as_problem
 from .provenance import problem_digest, stamp
 from .results import result_repr, result_trajectory_table
 from .schedule import Schedule, checked_schedule, load_schedule

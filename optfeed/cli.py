@@ -70,7 +70,7 @@ def _set_arg(p):
 def _overrides(pairs) -> dict:
     """--set KEY=VALUE items -> {dotted path: value}; values are read as YAML scalars
     (2 is a number, '0.5 1/h' a quantity)."""
-    from .problem.paths import WHERE
+    from .problem.dotted import WHERE
     from .problem.yamlio import read_yaml
 
     out, issues = {}, []

@@ -16,8 +16,9 @@ from .marginals import is_active
 from .model import build_model
 from .outcome import Outcome, objective_label, outcome_of
 from .problem import Problem
-from .problem.paths import as_problem
+from .problem.dotted import as_problem
 from .provenance import problem_digest, stamp
+from .report.text import unit_words
 from .results import result_repr, result_trajectory_table
 from .solve import Start, make_guesses, multistart, scaling_for, solve_one, transcribe
 from .units import factor_to
@@ -258,7 +259,7 @@ def optimize(problem, workers: int | None = None, on_progress=None, set: dict | 
     kept = ""
     if backoff:
         kept = "; kept clear of " + ", ".join(
-            f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
+            f"'{n}' by {v['amount']:.3g} {unit_words(v['unit'])}" for n, v in record["backoff"].items())
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
     if ver.verified:

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 from . import status as st
 from .problem import Problem
-from .problem.paths import as_problem
+from .problem.dotted import as_problem
 from .schedule import Schedule, checked_schedule, load_schedule
 
 

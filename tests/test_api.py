@@ -75,6 +75,7 @@ def test_overrides_reach_every_job(tmp_path):
     ({"solver.strats": 2}, "solver.strats", r"did you mean 'starts'"),
     ({"species.Z.initial": 1}, "species.Z.initial", r"'Z' not found"),
     ({"limits.3.max": 1}, "limits.3.max", r"the list has 1 items"),
+    ({"limits.\u00b2.max": 1}, "limits.\u00b2.max", r"no item '\u00b2'"),  # a digit to isdigit(), not to int()
     ({"vessel.working_volume.x": 1}, "vessel.working_volume.x", r"is a single value"),
     ({"parameters.mu_max": [1, 2]}, "parameters.mu_max", r"single value"),
 ])

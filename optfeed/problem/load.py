@@ -42,7 +42,7 @@ def load_problem(path, set: dict | None = None) -> Problem:
     set : dict, optional
         Values to change before checking, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``
-        (see :mod:`optfeed.problem.paths`).
+        (see :mod:`optfeed.problem.dotted`).
 
     Returns
     -------
@@ -63,7 +63,7 @@ def load_problem(path, set: dict | None = None) -> Problem:
     data, lines = read_yaml(path)
     if not set:
         return problem_from_data(data, str(path), lines)
-    from .paths import apply_overrides, note_overrides
+    from .dotted import apply_overrides, note_overrides
 
     data = apply_overrides(data, set, str(path))
     try:

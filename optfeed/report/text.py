@@ -150,7 +150,7 @@ def optimize_text(result) -> str:
             if low and v.report.kind == "pump" and not parts:
                 parts.append("only its minimum (zero flow) binds")
             if v.name in kept:
-                parts.append(f"kept {fmt(kept[v.name]['amount'], 3)} {kept[v.name]['unit']} clear (back-off)")
+                parts.append(f"kept {fmt(kept[v.name]['amount'], 3)} {unit_words(kept[v.name]['unit'])} clear (back-off)")
             state = "ACTIVE" if v.active else "slack "
             lines.append(f"  {state} {v.name:<24} " + ("; ".join(parts) if parts else "0 (does not hold the optimum back)"))
         lines.append("")

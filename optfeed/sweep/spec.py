@@ -26,7 +26,7 @@ or ``{linspace: [start, stop, count], unit: ...}``. The cases are the product of
 must name a value that exists in the problem file (list items by index:
 ``limits.0.max``) or a key it leaves at its default (``solver.starts``); anything
 else is bad input, reported before any case starts (see
-:mod:`optfeed.problem.paths`, shared with ``--set``).
+:mod:`optfeed.problem.dotted`, shared with ``--set``).
 """
 
 from __future__ import annotations
@@ -43,7 +43,7 @@ import numpy as np
 
 from ..errors import InputError, Issue
 from ..problem import problem_from_data
-from ..problem.paths import PathError, set_path
+from ..problem.dotted import PathError, set_path
 from ..problem.yamlio import read_text, read_yaml
 from ..provenance import problem_digest
 from ..units import parse_quantity, to_internal

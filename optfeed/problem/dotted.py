@@ -55,7 +55,7 @@ def set_path(data: dict, dotted: str, value, problem_file: str) -> None:
             if not last:
                 node = node[part]
         elif isinstance(node, list):
-            if not part.isdigit() or int(part) >= len(node):
+            if not (part.isascii() and part.isdigit()) or int(part) >= len(node):  # not '²'
                 raise PathError(f"{problem_file} has no item {part!r} here (the list has {len(node)} items)")
             if last:
                 node[int(part)] = value
