@@ -58,7 +58,7 @@ def _state_label(name: str) -> str:
     return {"J_int": "objective integral"}.get(name, name)
 
 
-def trajectory_columns(model, traj) -> dict:
+def trajectory_columns(model, traj, unique: bool = True) -> dict:
     """Columns of a simulated run: ``{'time [h]': array, 'X [g/L]': array, ...}``.
 
     Parameters
@@ -66,15 +66,17 @@ def trajectory_columns(model, traj) -> dict:
     model : Model
     traj : Trajectory
         As simulated (internal units, pump changes sampled twice).
+    unique : bool
+        One row per time (see the module docstring for pump changes); False keeps
+        every sample, row for row with ``traj.t``.
 
     Returns
     -------
     dict of str -> numpy.ndarray
-        Plain float columns of equal length, time strictly increasing (see the
-        module docstring for pump changes).
+        Plain float columns of equal length.
     """
     p = model.problem
-    keep = _unique_times(traj.t)
+    keep = unique_times(traj.t) if unique else np.arange(len(traj.t))
     t, x, u = traj.t[keep], traj.x[keep], traj.u[keep]
     cols = {"time [h]": t}
     units = state_units(model)
@@ -106,10 +108,15 @@ def points_columns(model, points) -> dict:
     return cols
 
 
-def _unique_times(t) -> np.ndarray:
-    """Indices that keep, of samples at the same time, the last one."""
-    t = np.asarray(t)
+TIME_TOL = 1e-12  # relative to max(1 h, |t|): samples closer than this share a time
+
+
+def unique_times(t) -> np.ndarray:
+    """Indices that keep, of samples at the same time (within :data:`TIME_TOL`; the
+    end of one integrated piece and the start of the next may differ in the last
+    bit), the last one."""
+    t = np.asarray(t, dtype=float)
     if len(t) == 0:
         return np.arange(0)
-    later = np.append(t[1:] > t[:-1], True)
-    return np.nonzero(later)[0]
+    apart = np.abs(np.diff(t)) > TIME_TOL * np.maximum(1.0, np.abs(t[1:]))
+    return np.nonzero(np.append(apart, True))[0]

@@ -73,9 +73,12 @@ def _json_default(obj):
     raise TypeError(type(obj).__name__)
 
 
-def trajectory_table(model, traj) -> tuple[list[str], np.ndarray]:
-    """Header and rows of trajectory.csv (see :func:`optfeed.tables.trajectory_columns`)."""
-    return _table(trajectory_columns(model, traj))
+def trajectory_table(model, traj, unique: bool = False) -> tuple[list[str], np.ndarray]:
+    """Header and rows of a simulated run in display units (see
+    :func:`optfeed.tables.trajectory_columns`): by default row for row with
+    ``traj.t`` (a pump change sampled twice); ``unique=True`` gives one row per
+    time, as trajectory.csv holds it."""
+    return _table(trajectory_columns(model, traj, unique=unique))
 
 
 def _table(cols: dict) -> tuple[list[str], np.ndarray]:
@@ -153,7 +156,7 @@ def write_check_run(result, target, figures: bool = True) -> Path:
         write_csv(tmp / "limits.csv", *limits_rows(result.limits))
         if result.trajectory is not None:
             model = build_model(result.problem)
-            header, rows = trajectory_table(model, result.trajectory)
+            header, rows = trajectory_table(model, result.trajectory, unique=True)
             write_csv(tmp / "trajectory.csv", header, rows)
             if figures:
                 _best_effort_figure(tmp, lambda: run_figure(model, result.trajectory, result.use, tmp / "figure.png",
@@ -232,7 +235,7 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
                     f"Run length: {result.end_time!r} h. Check it with: "
                     f"optfeed check PROBLEM --schedule schedule.csv{end}")
             (tmp / "schedule.csv").write_text(schedule_csv_text(result.schedule, units, note))
-            write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory))
+            write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
             if figures:
