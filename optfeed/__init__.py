@@ -1,19 +1,42 @@
 """optfeed: feed profiles for fed-batch cultures, checked against the vessel's limits.
 
-Python API (mirrors the command line):
+Python API (mirrors the command line; each job returns a result object):
 
 * :func:`load_problem` - read and check a problem file;
-* :func:`check` - simulate a proposed schedule and judge every limit.
+* :func:`validate` - read and check a problem (and a schedule), solve nothing;
+* :func:`check` - simulate a proposed schedule and judge every limit;
+* :func:`optimize` - the best feed profile inside every limit, verified;
+* :func:`sweep` - many variants of a problem, unattended and resumable.
+
+Every job takes ``set={"parameters.mu_max": "0.5 1/h", ...}`` to change values by
+dotted path, as sweep files do. Example::
+
+    import optfeed
+    r = optfeed.optimize("configs/inhibited_product.yaml", set={"solver.starts": 2})
+    r.status, r.objective_sim, r.objective_unit
+    table = r.trajectory_table()     # {'time [h]': array, 'X [g/L]': array, ...}
+
+The job modules stay importable as before (``from optfeed.optimize import
+optimize, OptimizeResult``); at the top level the names are the functions.
 """
 
 __version__ = "0.1.0"
 
-from .check import CheckResult, check  # noqa: E402
+# The job functions share their names with the modules that hold them
+# (optfeed/optimize.py, optfeed/check.py, optfeed/validate.py, optfeed/sweep/):
+# each module is imported first, then its function takes the name here.
 from .errors import InputError, OptfeedError, SimulationError  # noqa: E402
 from .problem import Problem, load_problem  # noqa: E402
-from .schedule import Schedule, load_schedule  # noqa: E402
+from .schedule import Schedule, load_schedule, piecewise_constant  # noqa: E402
+from .validate import ValidateResult, validate  # noqa: E402
+from .check import CheckResult, check  # noqa: E402
+from .optimize import OptimizeResult, optimize  # noqa: E402
+from .sweep import SweepResult, load_sweep, run_sweep  # noqa: E402
+
+sweep = run_sweep  # the sweep job under the name of the command
 
 __all__ = [
-    "__version__", "load_problem", "check", "CheckResult", "Problem", "Schedule",
-    "load_schedule", "InputError", "OptfeedError", "SimulationError",
+    "__version__", "load_problem", "validate", "check", "optimize", "sweep", "run_sweep", "load_sweep",
+    "ValidateResult", "CheckResult", "OptimizeResult", "SweepResult", "Problem", "Schedule",
+    "load_schedule", "piecewise_constant", "InputError", "OptfeedError", "SimulationError",
 ]

@@ -10,9 +10,11 @@ from .errors import InputError, SimulationError
 from .limits import LimitReport, build_limits, judge
 from .model import build_model
 from .outcome import Outcome, outcome_of
-from .problem import Problem, load_problem
+from .problem import Problem
+from .problem.dotted import as_problem
 from .provenance import problem_digest, stamp
-from .schedule import Schedule, load_schedule
+from .results import result_repr, result_trajectory_table
+from .schedule import Schedule, checked_schedule, load_schedule
 from .simulate import Trajectory, simulate
 
 
@@ -60,8 +62,17 @@ class CheckResult:
     def violations(self) -> list[LimitReport]:
         return sorted((r for r in self.limits if r.violated), key=lambda r: r.first_violation)
 
+    def trajectory_table(self) -> dict:
+        """The simulated run as plain columns in display units, units in the names
+        (``{'time [h]': ..., 'X [g/L]': ...}``; see :mod:`optfeed.tables`); {} if
+        the simulation failed."""
+        return result_trajectory_table(self)
 
-def check(problem, schedule, end_time: float | None = None) -> CheckResult:
+    def __repr__(self) -> str:
+        return result_repr(self)
+
+
+def check(problem, schedule, end_time: float | None = None, set: dict | None = None) -> CheckResult:
     """Simulate ``schedule`` on ``problem`` and judge every limit.
 
     Parameters
@@ -69,10 +80,14 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     problem : Problem or path
         A loaded problem or a problem file.
     schedule : Schedule or path
-        A schedule or a schedule file (CSV or YAML).
+        A schedule or a schedule file (CSV or YAML). A Schedule built in code is
+        checked as strictly as a file (every feed named, times in order).
     end_time : float, optional
         Run length, h (see :func:`run_length`): the fixed end time, or for a free
         end time this value, by default the horizon's guess.
+    set : dict, optional
+        Values of the problem to change first, by dotted path as in sweep files:
+        ``{"parameters.mu_max": "0.5 1/h"}``.
 
     Returns
     -------
@@ -83,11 +98,12 @@ def check(problem, schedule, end_time: float | None = None) -> CheckResult:
     InputError
         For a bad problem or schedule file.
     """
-    if not isinstance(problem, Problem):
-        problem = load_problem(problem)
+    problem = as_problem(problem, set)
     tf = run_length(problem, end_time)
     model = build_model(problem)
-    if not isinstance(schedule, Schedule):
+    if isinstance(schedule, Schedule):
+        schedule = checked_schedule(schedule, model.feed_names, tf)
+    else:
         schedule = load_schedule(schedule, model.feed_names, tf)
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}

@@ -1,8 +1,9 @@
 """The command line: a thin layer over the Python API.
 
-    optfeed validate PROBLEM [--schedule FILE]
-    optfeed check PROBLEM --schedule FILE [--out DIR | --results DIR] [--json] [--quiet]
-    optfeed optimize PROBLEM [--workers N] [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed validate PROBLEM [--schedule FILE] [--set KEY=VALUE ...]
+    optfeed check PROBLEM --schedule FILE [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed optimize PROBLEM [--workers N] [--set KEY=VALUE ...] [--time-limit T] [--out DIR | --results DIR]
+                     [--json] [--quiet]
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
                   [--allow-symlink] [--retry-failed] [--quiet]
 
@@ -21,7 +22,7 @@ from pathlib import Path
 
 from . import __version__
 from . import status as st
-from .errors import InputError
+from .errors import InputError, Issue
 
 MAX_ISSUES_SHOWN = 30  # a file with thousands of faults is not read out in full
 
@@ -36,17 +37,20 @@ def _parser() -> argparse.ArgumentParser:
     v.add_argument("problem", help="problem file (YAML)")
     v.add_argument("--schedule", help="also read and check this schedule file (CSV or YAML)")
     v.add_argument("--end-time", type=float, help="run length in h (only for a free end time)")
+    _set_arg(v)
 
     c = sub.add_parser("check", help="simulate a proposed feed schedule and judge every limit")
     c.add_argument("problem", help="problem file (YAML)")
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
     c.add_argument("--end-time", type=float, help="run length in h (only for a free end time; default: its guess)")
+    _set_arg(c)
     _output_args(c)
 
     o = sub.add_parser("optimize", help="find the feed profile that optimises the objective inside every limit")
     o.add_argument("problem", help="problem file (YAML)")
     o.add_argument("--workers", type=int, help="processes for the multistart (default: the cores)")
     o.add_argument("--starts", type=int, help="number of starts (overrides solver.starts)")
+    _set_arg(o)
     _output_args(o)
 
     w = sub.add_parser("sweep", help="run many variants unattended; run again to resume")
@@ -66,6 +70,40 @@ def _parser() -> argparse.ArgumentParser:
     return ap
 
 
+def _set_arg(p):
+    p.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
+                   help="change a value of the problem by dotted path, as sweep files do, e.g. "
+                        "--set parameters.mu_max='0.5 1/h' --set solver.starts=2 (repeatable)")
+
+
+def _overrides(pairs) -> dict:
+    """--set KEY=VALUE items -> {dotted path: value}; values are read as YAML scalars
+    (2 is a number, '0.5 1/h' a quantity)."""
+    from .problem.dotted import WHERE
+    from .problem.yamlio import read_yaml
+
+    out, issues = {}, []
+    for item in pairs:
+        key, eq, text = item.partition("=")
+        key = key.strip()
+        if not eq or not key or not text.strip():
+            issues.append(Issue("--set", None, key or item, f"expected KEY=VALUE, e.g. parameters.mu_max='0.5 1/h', "
+                                                            f"got {item!r}"))
+            continue
+        try:
+            value, _ = read_yaml(f"--set {key}", text=text)
+        except InputError as exc:
+            issues += exc.issues
+            continue
+        if isinstance(value, (dict, list)):
+            issues.append(Issue(WHERE, None, key, "each value must be a single value"))
+            continue
+        out[key] = value
+    if issues:
+        raise InputError(issues)
+    return out
+
+
 def _output_args(p):
     p.add_argument("--out", help="run folder to write (must not exist)")
     p.add_argument("--results", default="results", help="parent of the run folder (default: results)")
@@ -76,6 +114,34 @@ def _output_args(p):
 
 def main(argv=None) -> int:
     args = _parser().parse_args(argv)
+    try:
+        code = _run(args)
+        sys.stdout.flush()  # a reader that went away (optfeed ... | head) is found here, not at exit
+    except BrokenPipeError:
+        _stdout_gone()
+        code = st.EXIT_FAILED
+    return code
+
+
+def _out(text: str = "", end: str = "\n") -> None:
+    """Print to stdout; if its reader has gone (``optfeed check ... --json | head``),
+    stop printing quietly: the job goes on and keeps its exit code."""
+    try:
+        print(text, end=end)
+        sys.stdout.flush()
+    except BrokenPipeError:
+        _stdout_gone()
+
+
+def _stdout_gone() -> None:
+    # point stdout at /dev/null so that nothing (not even the flush at exit) tries again
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    os.dup2(devnull, sys.stdout.fileno())
+    os.close(devnull)
+
+
+def _run(args) -> int:
+    """Run the command; exit code."""
     try:
         if args.command == "validate":
             return _validate(args)
@@ -103,19 +169,18 @@ def main(argv=None) -> int:
 
 
 def _validate(args) -> int:
-    from .check import run_length
-    from .model import build_model
-    from .problem import load_problem
-    from .schedule import load_schedule
+    from .validate import validate
 
-    problem = load_problem(args.problem)
-    model = build_model(problem)
-    tf = run_length(problem, args.end_time)
-    if args.schedule is not None:
-        load_schedule(args.schedule, model.feed_names, tf)
-    what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
-    print(f"{args.problem}: valid ({what})" + (f"; {args.schedule}: valid" if args.schedule is not None else ""))
-    return st.EXIT_OK
+    result = validate(args.problem, args.schedule, end_time=args.end_time, set=_overrides(args.set))
+    _warn(result.problem)
+    _out(result.message)
+    return result.exit_code
+
+
+def _warn(problem) -> None:
+    """Unit warnings of a problem, on stderr (the files are still valid)."""
+    for w in problem.warnings:
+        print(f"optfeed: warning: {w}", file=sys.stderr)
 
 
 def _run_folder(args, problem_name: str, job: str) -> Path:
@@ -139,12 +204,12 @@ def _run_folder(args, problem_name: str, job: str) -> Path:
 def _show(args, result, summary: dict, text: str, target: Path, written: str) -> int:
     """Print a result as --json, --quiet or the full report asked for."""
     if args.json:
-        print(json.dumps({**summary, "run_folder": str(target)}, indent=2))
+        _out(json.dumps({**summary, "run_folder": str(target)}, indent=2))
     elif args.quiet:
-        print(f"{result.status}: {result.message}")
+        _out(f"{result.status}: {result.message}")
     else:
-        print(text, end="")
-        print(f"\nWritten: {target}/{written}")
+        _out(text, end="")
+        _out(f"\nWritten: {target}/{written}")
     return result.exit_code
 
 
@@ -154,7 +219,8 @@ def _check(args) -> int:
     from .report import check_text, write_check_run
     from .report.files import check_summary
 
-    problem = load_problem(args.problem)
+    problem = load_problem(args.problem, set=_overrides(args.set))
+    _warn(problem)
     target = _run_folder(args, problem.name, "check")
     result = check(problem, args.schedule, end_time=args.end_time)
     write_check_run(result, target, figures=not args.no_figures)
@@ -172,7 +238,8 @@ def _optimize(args) -> int:
     from .report import optimize_text, write_optimize_run
     from .report.files import optimize_summary
 
-    problem = load_problem(args.problem)
+    problem = load_problem(args.problem, set=_overrides(args.set))
+    _warn(problem)
     if args.workers is not None and not 1 <= args.workers <= 256:
         raise InputError.one("--workers", None, "--workers", "must be between 1 and 256")
     if args.starts is not None:
@@ -210,13 +277,13 @@ def _sweep(args) -> int:
                            allow_symlink=args.allow_symlink)
     else:
         result = _sweep_with_progress(sweep, folder, args)
-        print(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
+        _out(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
     word = {"finished": "finished", "stopped": "stopped (run the same command to resume)",
             "incomplete": "incomplete (run the same command to complete it)"}[result.status]
-    print(f"sweep {word}: {result.total} cases, {result.ran} run now, {result.skipped} already done, "
+    _out(f"sweep {word}: {result.total} cases, {result.ran} run now, {result.skipped} already done, "
           f"{result.failed} without an answer; {folder}/")
     if result.message and result.status != "stopped":
-        print(f"  {result.message}")
+        _out(f"  {result.message}")
     return result.exit_code
 
 

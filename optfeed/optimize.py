@@ -30,11 +30,15 @@ import numpy as np
 from . import status as st
 from .errors import InputError
 from .limits import REL_TOL, LimitReport, build_limits, judge, limit_function
+from .marginals import is_active
 from .outcome import Outcome, objective_label, outcome_of
-from .problem import Problem, load_problem
+from .problem import Problem
+from .problem.dotted import as_problem
 from .processes import cpu_count, report_progress, run_killable
 from .provenance import problem_digest, stamp
-from .schedule import piecewise_constant
+from .report.text import unit_words
+from .results import result_repr, result_trajectory_table
+from .schedule import piecewise_constant, round_schedule
 from .simulate import Simulator
 from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
                     make_guesses, models, scaling_for, solve, states_for)
@@ -52,7 +56,8 @@ class LimitValue:
     report : LimitReport
         Slack etc. from the re-simulation.
     active : bool
-        The optimum sits on it (smallest slack within the verification tolerance).
+        It holds the optimum back: its marginal value is not zero
+        (:func:`optfeed.marginals.is_active`, the one rule for 'ACTIVE').
     marginal_max, marginal_min : float
         Gain in the objective (its unit) per unit relaxation of the limit (its
         unit), summed over the run: for raising its maximum, and for lowering its
@@ -144,6 +149,16 @@ class OptimizeResult:
     def trajectory(self):
         return None if self.verification is None else self.verification.trajectory
 
+    # -- for people (optfeed.results): a one-line repr, the run as plain columns
+    def trajectory_table(self) -> dict:
+        """The re-simulated run as plain columns in display units, units in the names
+        (``{'time [h]': ..., 'X [g/L]': ...}``; see :mod:`optfeed.tables`); {} if
+        there is no answer."""
+        return result_trajectory_table(self)
+
+    def __repr__(self) -> str:
+        return result_repr(self)
+
 
 # iteration caps of the stages (the whole start never exceeds solver.max_iter)
 COARSE_ITER = 600
@@ -214,13 +229,15 @@ class _Job:
 
     def verify(self, nlp, data, start: Start) -> Verification:
         un = nlp.unpack(start.w, data)
-        schedule = pump_schedule(self.full.feed_names, un.t_steps, un.u_steps)
+        # verify the schedule exactly as schedule.csv will hold it: rounded, exact zeros
+        schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
+                                  self.problem.feeds, end_time=un.T)
         return verify(self.full, self.full_limits, schedule, un.T, start.objective,
                       self.settings.verify_tolerance, self.simulator)
 
 
-def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None
-             ) -> OptimizeResult:
+def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
+             set: dict | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -232,6 +249,10 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         ``on_progress(text, done, total)`` as the job moves on (done/total may be None).
     time_limit : float, optional
         Seconds for the whole job (default: ``solver.time_limit``, else none).
+    set : dict, optional
+        Values of the problem to change first, by dotted path as in sweep files:
+        ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``. (The name
+        shadows the builtin ``set`` inside this function.)
 
     Returns
     -------
@@ -245,8 +266,7 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         On Ctrl-C, within an IPOPT iteration or so; nothing is returned.
     """
     t_start = time.perf_counter()
-    if not isinstance(problem, Problem):
-        problem = load_problem(problem)
+    problem = as_problem(problem, set)  # a file or a Problem, with overrides by dotted path
     if problem.objective is None:
         raise InputError.one(problem.source, None, "objective", "optimize needs an objective "
                              "(e.g. objective: {maximize: product_mass, product: P})")
@@ -577,11 +597,11 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
                              for n, v in ans.backoff.items()}
     marg = nlp.marginals(best.lam_g, best.lam_x, data)
     values_out = []
-    tol = s.verify_tolerance
     for lim, rep in zip(job.full_limits, ver.limits):
         up, low = marg.get(lim.name, (0.0, 0.0))
-        active = bool(rep.min_slack / lim.factor <= tol * lim.scale())
-        values_out.append(LimitValue(rep, active, up * job.f_obj / lim.factor, low * job.f_obj / lim.factor))
+        up, low = float(up * job.f_obj / lim.factor), float(low * job.f_obj / lim.factor)
+        # active: it holds the optimum back (the one rule, optfeed.marginals)
+        values_out.append(LimitValue(rep, is_active(rep, up, low, best.objective * job.f_obj), up, low))
     if "end time" in marg:
         up, low = marg["end time"]
         record["end_time_marginal_per_h"] = (up if abs(up) >= abs(low) else -low) * job.f_obj
@@ -589,7 +609,7 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     kept = ""
     if ans.backoff:
         kept = "; kept clear of " + ", ".join(
-            f"'{n}' by {v['amount']:.3g} {v['unit']}" for n, v in record["backoff"].items())
+            f"'{n}' by {v['amount']:.3g} {unit_words(v['unit'])}" for n, v in record["backoff"].items())
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
     gap = record.get("grid_gap_relative")

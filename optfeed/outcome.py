@@ -66,10 +66,33 @@ def objective_label(model: Model) -> tuple[str, str]:
         "yield": (f"yield of {obj.product} on fed {obj.substrate}", ""),
         "expression": (f"{obj.expression.text}" if obj.expression else "", ""),
     }[obj.quantity]
+    if obj.quantity == "yield":
+        unit = _yield_unit(model.problem, obj)
+    elif obj.quantity == "expression":
+        unit = _expression_unit(model.problem, obj)
     if obj.integral is not None:
         label += f" + integral of {obj.integral.text}"
         unit = "" if obj.quantity != "expression" else unit
     return f"{obj.sense} {label}", unit
+
+
+def _yield_unit(problem, obj) -> str:
+    """Product formed per substrate fed: 'g/g' for two mass concentrations (a unit
+    for people; the value is the same ratio), else '' (internal units)."""
+    p, s = problem.species_by_name(obj.product), problem.species_by_name(obj.substrate)
+    up, us = extensive_unit(p.unit), extensive_unit(s.unit)
+    return f"{up}/{us}" if up and us else ""
+
+
+def _expression_unit(problem, obj) -> str:
+    """The unit of an objective expression, from the dimension inference ('' if it
+    cannot tell: the value is then in internal units)."""
+    from .dimensions import Inference, unit_for
+
+    if obj.expression is None:
+        return ""
+    t = Inference(problem).infer(obj.expression, ("objective", "expression"))
+    return "" if t.dims is None else unit_for(t.dims)
 
 
 def outcome_of(model: Model, traj: Trajectory, tf: float) -> Outcome:

@@ -16,7 +16,7 @@ def _plain(obj):
     if isinstance(obj, Expr):
         return obj.text
     if dataclasses.is_dataclass(obj):
-        return {f.name: _plain(getattr(obj, f.name)) for f in dataclasses.fields(obj) if f.name not in ("data", "source")}
+        return {f.name: _plain(getattr(obj, f.name)) for f in dataclasses.fields(obj) if f.name not in ("data", "source", "warnings")}
     if isinstance(obj, dict):
         return {str(k): _plain(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):

@@ -21,6 +21,10 @@ the mode. The header names the columns with units in brackets::
     0, 0, 0
     4, 0.01, 0.15
 
+Columns may also be separated by ``;`` (as spreadsheets write CSV where the decimal
+mark is a comma); then numbers may use a decimal comma (``0,01``), but no thousands
+separators. The header decides: ``;`` in it (outside the brackets) means ``;``.
+
 One rate column per feed; a ``<feed> growth`` column is optional (empty cell = 0).
 
 YAML (``.yaml``/``.yml``)::
@@ -47,6 +51,7 @@ import math
 import re
 import sys
 from dataclasses import dataclass
+from decimal import Decimal
 from pathlib import Path
 
 import numpy as np
@@ -123,10 +128,14 @@ class Schedule:
 
         Raises
         ------
+        InputError
+            If a feed of ``feed_names`` has no rows here.
         ScheduleOverflow
             When an exponential segment's rate is past any finite number at the
             start of a segment (a schedule longer than the one it was checked for).
         """
+        if any(name not in self.feeds for name in feed_names):
+            raise InputError(_missing(self.source or IN_CODE, list(feed_names), list(self.feeds), None))
         cuts = {0.0, float(end_time)}
         for rows in self.feeds.values():
             cuts.update(t for t in rows.times if 0 < t < end_time)
@@ -159,9 +168,20 @@ class Schedule:
         return max(rows.times[-1] for rows in self.feeds.values())
 
 
+IN_CODE = "schedule built in code"  # what messages name for a Schedule that has no file
+
+
 def piecewise_constant(feed_names, times, rates, source: str = "") -> Schedule:
-    """Schedule from common step times (h) and a rate array (L/h), shape (len(times), nfeeds)."""
-    rates = np.asarray(rates, dtype=float).reshape(len(times), len(feed_names))
+    """Schedule from common step times (h) and a rate array (L/h), shape (len(times), nfeeds).
+
+    Raises InputError if ``rates`` does not hold one rate per feed and step time."""
+    feed_names = [feed_names] if isinstance(feed_names, str) else list(feed_names)
+    rates = np.asarray(rates, dtype=float)
+    if rates.size != len(times) * len(feed_names):
+        raise InputError.one(source or IN_CODE, None, "rates",
+                             f"expected {len(times)} step time(s) x {len(feed_names)} feed(s) "
+                             f"({', '.join(feed_names)}) = {len(times) * len(feed_names)} rates, got {rates.size}")
+    rates = rates.reshape(len(times), len(feed_names))
     feeds = {
         name: FeedRows(tuple(map(float, times)), tuple(map(float, rates[:, j])), (0.0,) * len(times))
         for j, name in enumerate(feed_names)
@@ -169,10 +189,99 @@ def piecewise_constant(feed_names, times, rates, source: str = "") -> Schedule:
     return Schedule(feeds, "constant", source)
 
 
+def round_schedule(schedule: Schedule, feeds, end_time: float | None = None, resolution: float = 1e-5,
+                   off_below: float = 1e-5) -> Schedule:
+    """The schedule as a file holds it and a pump is set: rates rounded, zeros exact.
+
+    Each rate is rounded, in the unit its feed is written in (``Feed.unit``), to a
+    step of ``resolution`` of the pump's maximum, taken down to a power of ten (so
+    120 mL/h at 1e-5 rounds to 0.001 mL/h; the text a file holds is short and
+    exact). A rate below ``off_below`` of the maximum is the pump off: exactly 0
+    (unless the feed has a minimum rate). Rounding never leaves the pump's range.
+
+    For steps (constant interpolation, no growth) the rounding error of each step
+    is carried into the next, so the volume fed by every step boundary stays
+    within half a rounding step (times that step's length) of the unrounded
+    schedule's: rounding does not add up into a fuller vessel at the end.
+
+    The result is what :func:`schedule_csv_text` writes and :func:`load_schedule`
+    reads back bit for bit, so a schedule verified after rounding is exactly the
+    schedule ``optfeed check`` judges from the file.
+
+    The default resolution was measured (``benchmarks/schedule_rounding.py``): on
+    the shipped and published problems, rounding their optima at 1e-4 left every
+    limit within the check tolerance and moved the objective by at most 3e-6
+    (relative), while 1e-3 broke limits on three of five; 1e-5 keeps a factor ten.
+
+    Parameters
+    ----------
+    schedule : Schedule
+    feeds : sequence of optfeed.problem.Feed
+        The problem's feeds (name, unit, min_rate, max_rate).
+    end_time : float, optional
+        h; the length of the last step (for carrying its rounding error).
+    resolution, off_below : float
+        Relative to each pump's maximum rate.
+    """
+    by_name = {f.name: f for f in feeds}
+    out = {}
+    for name, rows in schedule.feeds.items():
+        feed = by_name.get(name)
+        if feed is None:
+            out[name] = rows
+            continue
+        unit = feed.unit or "L/h"
+        f_out, f_in = factor_to(unit), flow_factor(unit)
+        top, low = feed.max_rate * f_out, feed.min_rate * f_out
+        step = 10.0 ** math.floor(math.log10(top * resolution))
+        exponent = round(math.log10(step))
+        carry = 0.0  # volume (display unit x h) not yet fed because of rounding
+        rates = []
+        for i, rate in enumerate(rows.rates):
+            shown = rate * f_out
+            plain = schedule.interpolation != "constant" or rows.growth[i] != 0
+            t_next = rows.times[i + 1] if i + 1 < len(rows.times) else end_time
+            length = None if (plain or t_next is None) else t_next - rows.times[i]
+            if shown < off_below * top and low == 0:
+                text = "0"
+                carry = 0.0
+            else:
+                target = shown + (carry / length if length else 0.0)
+                n = round(target / step)
+                text = str(Decimal(int(n)).scaleb(exponent))
+                value = float(text)
+                if value > top or value < low:  # never outside the pump's range
+                    text = repr(min(max(value, low), top))
+                if length:
+                    carry += (shown - float(text)) * length
+            rates.append(float(text) * f_in)
+        out[name] = FeedRows(tuple(rows.times), tuple(rates), tuple(rows.growth))
+    return Schedule(out, schedule.interpolation, schedule.source)
+
+
+def flow_factor(unit: str) -> float:
+    """Internal value (L/h) of 1 ``unit``, computed as a schedule file's reader does."""
+    return to_internal(parse_quantity(f"1 {unit}", "flow"))
+
+
+def _exact_text(internal: float, f_out: float, f_in: float) -> str:
+    """The shortest decimal text of ``internal * f_out`` that reads back (text times
+    ``f_in``) as exactly ``internal``; 17 significant digits if none does."""
+    if internal == 0:
+        return "0"
+    shown = internal * f_out
+    for digits in range(1, 18):
+        text = f"{shown:.{digits}g}"
+        if float(text) * f_in == internal:
+            return format(Decimal(text), "f") if "e" in text and 1e-6 <= abs(shown) < 1e15 else text
+    return repr(shown)
+
+
 def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None, note: str = "") -> None:
     """Write ``schedule`` as CSV in the format :func:`load_schedule` reads.
 
-    Rates are written in ``feed_units[name]`` (default L/h) with full precision.
+    Rates are written in ``feed_units[name]`` (default L/h), each as the shortest
+    text that reads back as exactly the same rate (see :func:`round_schedule`).
     """
     path = Path(path)
     path.write_text(schedule_csv_text(schedule, feed_units, note))
@@ -197,26 +306,69 @@ def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: 
     columns = []  # per feed: (values, growth) at every time, in one pass each
     for name in names:
         rows = schedule.feeds[name]
-        f = factor_to(feed_units.get(name, "L/h"))
+        unit = feed_units.get(name, "L/h")
+        f_out, f_in = factor_to(unit), flow_factor(unit)
         if schedule.interpolation == "linear":
-            values = [float(v) * f for v in np.interp(times, rows.times, rows.rates)]
+            values = [_exact_text(float(v), f_out, f_in) for v in np.interp(times, rows.times, rows.rates)]
             gs = [0.0] * len(times)
         else:
             values, gs = [], []
             for t in times:
                 i = max(bisect.bisect_right(rows.times, t + 1e-12) - 1, 0)
                 g = rows.growth[i]
-                values.append((rows.rates[i] * math.exp(g * (t - rows.times[i])) if rows.rates[i] else 0.0) * f)
+                value = rows.rates[i] * math.exp(g * (t - rows.times[i])) if rows.rates[i] else 0.0
+                values.append(_exact_text(value, f_out, f_in))
                 gs.append(g)
         columns.append((values, gs))
     for j, t in enumerate(times):
-        row = [repr(float(t))]
+        row = [_exact_text(float(t), 1.0, 1.0)]
         for values, gs in columns:
-            row.append(repr(values[j]))
+            row.append(values[j])
             if growth:
-                row.append(repr(gs[j]))
+                row.append(repr(float(gs[j])))
         w.writerow(row)
     return buf.getvalue()
+
+
+def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = None) -> Schedule:
+    """Check a :class:`Schedule` built in code as strictly as a schedule file: a row
+    table for every feed of ``feed_names`` and no other (a misspelt name is named,
+    with the closest feed), times from 0 increasing and before ``end_time`` (h),
+    rates finite and not negative.
+
+    Raises
+    ------
+    InputError
+        Naming the schedule's source (or "schedule built in code") and the feed.
+    """
+    where = schedule.source or IN_CODE
+    if not isinstance(schedule.feeds, dict):
+        raise InputError.one(where, None, "feeds", "expected a mapping of feed name -> FeedRows")
+    if schedule.interpolation not in ("constant", "linear"):
+        raise InputError.one(where, None, "interpolation",
+                             f"expected 'constant' or 'linear', got {schedule.interpolation!r}")
+    issues = _missing(where, list(feed_names), list(schedule.feeds), None)
+    end = math.inf if end_time is None else float(end_time)
+    for name in feed_names:
+        rows = schedule.feeds.get(name)
+        if rows is None:
+            continue
+        try:
+            times, rates, growth = (tuple(float(v) for v in col) for col in (rows.times, rows.rates, rows.growth))
+        except (AttributeError, TypeError, ValueError):
+            issues.append(Issue(where, None, name, "expected FeedRows(times, rates, growth) of numbers"))
+            continue
+        if not len(times) == len(rates) == len(growth):
+            issues.append(Issue(where, None, name, f"times, rates and growth differ in length "
+                                                   f"({len(times)}, {len(rates)}, {len(growth)})"))
+            continue
+        if not all(math.isfinite(v) for v in times + rates + growth):
+            issues.append(Issue(where, None, name, "times, rates and growth must be finite numbers"))
+            continue
+        issues += _check_rows(where, name, times, rates, growth, [None] * len(times), schedule.interpolation, end)
+    if issues:
+        raise InputError(issues)
+    return schedule
 
 
 # ------------------------------------------------------------------ loading
@@ -306,13 +458,18 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
                     raise InputError.one(path, lineno, "interpolation",
                                          f"expected 'constant' or 'linear', got {m.group(1)!r}")
             continue
-        try:
-            cells = next(csv.reader([line]))
-        except csv.Error as exc:
-            raise InputError.one(path, lineno, "", f"CSV error: {exc}") from None
-        rows.append((lineno, [c.strip() for c in cells]))
+        rows.append((lineno, line))
     if not rows:
         raise InputError.one(path, None, "", "no header row")
+    delimiter = _delimiter(path, *rows[0])
+    parsed = []
+    for lineno, line in rows:
+        try:
+            cells = next(csv.reader([line], delimiter=delimiter))
+        except csv.Error as exc:
+            raise InputError.one(path, lineno, "", f"CSV error: {exc}") from None
+        parsed.append((lineno, [c.strip() for c in cells]))
+    rows = parsed
     header_line, header = rows[0]
     most = 1 + 2 * len(feed_names)
     if len(header) > most + 10:  # a few stray columns get their own message below
@@ -361,7 +518,9 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     data = {n: ([], []) for n in feed_names}
     for lineno, cells in rows[1:]:
         if len(cells) != len(header):
-            raise InputError.one(path, lineno, "", f"row has {len(cells)} cells, the header has {len(header)}")
+            hint = ("; numbers with a decimal comma (0,12) need ';' between the columns"
+                    if delimiter == "," and len(cells) > len(header) else "")
+            raise InputError.one(path, lineno, "", f"row has {len(cells)} cells, the header has {len(header)}{hint}")
         growth_seen = {n: 0.0 for n in feed_names}
         rate_row = {}
         for (name, role, factor, cell), text_value in zip(columns, cells):
@@ -370,11 +529,14 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
             try:
                 if not text_value.isascii():  # float() would read fullwidth digits as numbers
                     raise ValueError
-                value = float(text_value)
+                value = float(_decimal_point(text_value) if delimiter == ";" else text_value)
                 if not math.isfinite(value):
                     raise ValueError
             except ValueError:
-                raise InputError.one(path, lineno, cell, f"expected a number, got {text_value!r}") from None
+                hint = ""
+                if delimiter == ";" and "," in text_value and "." in text_value:
+                    hint = " (no thousands separators: write 1234,5 or 1234.5)"
+                raise InputError.one(path, lineno, cell, f"expected a number, got {text_value!r}{hint}") from None
             if role == "time":
                 t = value * factor
             elif role == "rate":
@@ -397,6 +559,24 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
         unique = {(i.line, i.message): i for i in reversed(issues)}
         raise InputError(sorted(unique.values(), key=lambda i: (i.line or 0)))
     return Schedule(feeds, interpolation, path)
+
+
+_DECIMAL_COMMA = re.compile(r"^[-+]?\d*,\d+(?:[eE][-+]?\d+)?$")
+
+
+def _delimiter(path, lineno, header: str) -> str:
+    """',' or ';' between the columns, read off the header row. With ';' (common where
+    the decimal mark is a comma) numbers may be written 0,12 as well as 0.12."""
+    outside = re.sub(r"\[[^\]]*\]", "", header)  # units in brackets do not count
+    if ";" in outside and "," in outside:
+        raise InputError.one(path, lineno, "", "the header mixes ',' and ';': separate the columns with one of "
+                                               "them (with ';', numbers may use a decimal comma: 0,12)")
+    return ";" if ";" in outside else ","
+
+
+def _decimal_point(text: str) -> str:
+    """'0,12' -> '0.12' (one comma and digits only); anything else as it is."""
+    return text.replace(",", ".") if _DECIMAL_COMMA.match(text) else text
 
 
 def _load_yaml(path, feed_names, end_time) -> Schedule:

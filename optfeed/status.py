@@ -8,6 +8,8 @@ An answer is only ever called optimal when the solver converged *and* the
 re-simulation of its pump schedule confirmed the objective and the limits.
 """
 
+VALID = "valid"
+
 WITHIN_LIMITS = "within limits"
 LIMIT_BROKEN = "limit broken"
 SIMULATION_FAILED = "simulation failed"
@@ -26,6 +28,7 @@ EXIT_FAILED = 3
 EXIT_INTERRUPTED = 130
 
 EXIT_CODES = {
+    VALID: EXIT_OK,
     WITHIN_LIMITS: EXIT_OK,
     LIMIT_BROKEN: EXIT_NOT_OK,
     SIMULATION_FAILED: EXIT_FAILED,

@@ -60,20 +60,30 @@ def test_a_run_that_blows_up_names_the_quantity_and_the_time(write, capsys):
     assert line.startswith("simulation failed: ") and "simulation failed: simulation failed" not in line
 
 
-def test_stopped_pump_with_growth_built_in_code_stays_stopped(write):
-    # load_schedule refuses growth on a rate of 0 (corpus); built in code it must not
-    # overflow: an exponential of zero is zero
+def test_stopped_pump_with_growth_built_in_code_is_refused_like_a_file(write):
+    # load_schedule refuses growth on a rate of 0 (corpus); a schedule built in code is
+    # checked as strictly, and never reaches the integrator to overflow there
     p = optfeed.load_problem(write("p.yaml", problem_text()))
-    r = check(p, one_feed(0.0, 1000.0))
-    assert r.status == st.WITHIN_LIMITS
-    assert float(r.trajectory.feed("glucose").max()) == 0.0
+    with pytest.raises(optfeed.InputError, match="growth 1000 1/h on a rate of 0 keeps the pump off"):
+        check(p, one_feed(0.0, 1000.0))
 
 
-def test_rate_growing_past_any_number_in_code_is_a_failed_simulation(write):
+def test_rate_growing_past_any_number_in_code_is_refused_like_a_file(write):
     p = optfeed.load_problem(write("p.yaml", problem_text()))
-    r = check(p, one_feed(1.0, 200.0))  # 200 1/h for 10 h: e^2000 L/h
-    assert r.status == st.SIMULATION_FAILED
-    assert "glucose" in r.message and "(at t = " in r.message  # the pump and the time are named
+    with pytest.raises(optfeed.InputError, match="glucose: rate 1 L/h growing at 200 1/h passes any finite"):
+        check(p, one_feed(1.0, 200.0))  # 200 1/h for 10 h: e^2000 L/h
+
+
+def test_rate_growing_past_any_number_in_the_integrator_is_a_failed_simulation(write):
+    # past the checks (a schedule judged over a longer run than it was checked for),
+    # the simulator still names the pump and the time instead of overflowing
+    from optfeed.model import build_model
+    from optfeed.simulate import simulate
+
+    p = optfeed.load_problem(write("p.yaml", problem_text()))
+    with pytest.raises(optfeed.SimulationError, match="'glucose' grows past any finite number") as exc:
+        simulate(build_model(p), one_feed(1.0, 200.0), 10.0)
+    assert exc.value.time is not None
 
 
 # ---------------------------------------------------------------- long documents

@@ -17,6 +17,7 @@ from pathlib import Path
 import pydantic
 
 from .. import expr as ex
+from ..dimensions import annotate
 from ..errors import InputError, Issue
 from ..paths import SAFE_NAME, safe_folder_name
 from ..units import describe, parse_quantity, to_internal, written_unit
@@ -40,13 +41,17 @@ _FOLDER_RE = SAFE_NAME
 
 
 
-def load_problem(path) -> Problem:
+def load_problem(path, set: dict | None = None) -> Problem:
     """Read and check a problem file.
 
     Parameters
     ----------
     path : str or Path
         A YAML problem file.
+    set : dict, optional
+        Values to change before checking, by dotted path as in sweep files:
+        ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``
+        (see :mod:`optfeed.problem.dotted`).
 
     Returns
     -------
@@ -62,10 +67,18 @@ def load_problem(path) -> Problem:
     --------
     >>> p = load_problem("configs/fast_microbe.yaml")  # doctest: +SKIP
     >>> p.vessel.working_volume                        # doctest: +SKIP
-    8.0
+    80.0
     """
     data, lines = read_yaml(path)
-    return problem_from_data(data, str(path), lines)
+    if not set:
+        return problem_from_data(data, str(path), lines)
+    from .dotted import apply_overrides, note_overrides
+
+    data = apply_overrides(data, set, str(path))
+    try:
+        return problem_from_data(data, str(path), lines)
+    except InputError as exc:
+        raise note_overrides(exc, set) from None
 
 
 def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
@@ -77,7 +90,7 @@ def problem_from_data(data, source: str, lines: Lines | None = None) -> Problem:
         raw = schema.ProblemIn.model_validate(data)
     except pydantic.ValidationError as exc:
         raise InputError(_pydantic_issues(exc.errors(), source, lines)) from None
-    return _Builder(raw, data, source, lines).build()
+    return annotate(_Builder(raw, data, source, lines).build(), lines)  # units for people, unit warnings
 
 
 # ---------------------------------------------------------------- pydantic errors

@@ -251,6 +251,7 @@ class Problem:
     objective: Objective | None
     settings: Settings = field(default_factory=Settings)
     data: dict = field(repr=False, default_factory=dict)
+    warnings: tuple = field(repr=False, default=())  # of optfeed.errors.Issue: units that look wrong
 
     @property
     def species_names(self) -> list[str]:
@@ -262,3 +263,14 @@ class Problem:
 
     def species_by_name(self, name) -> Species:
         return next(s for s in self.species if s.name == name)
+
+    def __repr__(self) -> str:
+        h = self.horizon
+        run = f"{h.end_time:g} h" if not h.free else f"{h.min_end:g}..{h.max_end:g} h (free)"
+        o = self.objective
+        goal = "no objective" if o is None else f"{o.sense} {o.quantity}" + (f" of {o.product}" if o.product else "")
+        parts = [f"species {', '.join(self.species_names)}", f"feeds {', '.join(self.feed_names)}",
+                 f"{len(self.bounds)} extra limit(s)", run, goal]
+        if self.warnings:
+            parts.append(f"{len(self.warnings)} unit warning(s)")
+        return f"Problem({self.name!r} from {self.source!r}: {'; '.join(parts)})"

@@ -14,11 +14,10 @@ import shutil
 import tempfile
 from pathlib import Path
 
-import casadi as ca
 import numpy as np
 
-from ..units import factor_to
-from .text import CAUTION, check_text
+from ..tables import points_columns, trajectory_columns
+from .text import CAUTION, check_text, tidy, unit_words
 
 
 def default_run_dir(results: Path, problem_name: str, job: str) -> Path:
@@ -74,37 +73,16 @@ def _json_default(obj):
     raise TypeError(type(obj).__name__)
 
 
-def trajectory_table(model, traj) -> tuple[list[str], np.ndarray]:
-    """Header and rows of the trajectory CSV: time, states, feeds, named rates."""
-    p = model.problem
-    header, cols = ["time [h]"], [traj.t]
-    for s in p.species:
-        header.append(f"{s.name} [{s.unit}]")
-        cols.append(traj.state(s.name) * factor_to(s.unit))
-    header.append(f"V [{p.vessel.unit}]")
-    cols.append(traj.state("V") * factor_to(p.vessel.unit))
-    for name in model.state_names:
-        if name.startswith("fed_") or name == "J_int":
-            header.append(f"{name} [internal]")
-            cols.append(traj.state(name))
-    for f in p.feeds:
-        header.append(f"{f.name} [{f.unit}]")
-        cols.append(traj.feed(f.name) * factor_to(f.unit))
-    names = [n for n in model.values if n not in ("F_total",)]
-    if names:
-        fn = model.function("v", [ca.vertcat(*[model.values[n] for n in names])], p=traj.constants)
-        vals = np.array(fn.map(len(traj.t))(traj.t[None, :], traj.x.T, traj.u.T)).reshape(len(names), -1)
-        for n, row in zip(names, vals):
-            if n == "OUR":
-                header.append("OUR [mmol/L/h]")
-                row = row * factor_to("mmol/L/h")
-            elif n == "heat_load":
-                header.append("heat_load [W]")
-                row = row * factor_to("W")
-            else:
-                header.append(f"{n} [internal]")
-            cols.append(row)
-    return header, np.column_stack(cols)
+def trajectory_table(model, traj, unique: bool = False) -> tuple[list[str], np.ndarray]:
+    """Header and rows of a simulated run in display units (see
+    :func:`optfeed.tables.trajectory_columns`): by default row for row with
+    ``traj.t`` (a pump change sampled twice); ``unique=True`` gives one row per
+    time, as trajectory.csv holds it."""
+    return _table(trajectory_columns(model, traj, unique=unique))
+
+
+def _table(cols: dict) -> tuple[list[str], np.ndarray]:
+    return list(cols), np.column_stack(list(cols.values()))
 
 
 def write_csv(path: Path, header, rows) -> None:
@@ -118,8 +96,9 @@ def write_csv(path: Path, header, rows) -> None:
 def limits_rows(reports):
     header = ["limit", "kind", "unit", "min", "max", "smallest_slack", "at_h", "side",
               "first_violation_h", "worst_violation", "peak_use_pct", "at_end", "key"]
-    rows = [[r.name, r.kind, r.unit, _blank(r.lower), _blank(r.upper), r.min_slack, r.time_min_slack, r.side,
-             _blank(r.first_violation), r.worst_violation, _blank(r.peak_use), r.at_end, r.key] for r in reports]
+    rows = [[r.name, r.kind, unit_words(r.unit), _blank(r.lower), _blank(r.upper), tidy(r.min_slack, r),
+             r.time_min_slack, r.side, _blank(r.first_violation), tidy(r.worst_violation, r), _blank(r.peak_use),
+             r.at_end, r.key] for r in reports]
     return header, rows
 
 
@@ -129,9 +108,9 @@ def _blank(v):
 
 def limit_dict(r) -> dict:
     return {
-        "name": r.name, "kind": r.kind, "unit": r.unit, "min": r.lower, "max": r.upper,
-        "smallest_slack": r.min_slack, "at_h": r.time_min_slack, "side": r.side,
-        "first_violation_h": r.first_violation, "worst_violation": r.worst_violation,
+        "name": r.name, "kind": r.kind, "unit": unit_words(r.unit), "min": r.lower, "max": r.upper,
+        "smallest_slack": tidy(r.min_slack, r), "at_h": r.time_min_slack, "side": r.side,
+        "first_violation_h": r.first_violation, "worst_violation": tidy(r.worst_violation, r),
         "peak_use_pct": r.peak_use, "at_end": r.at_end, "key": r.key,
     }
 
@@ -156,6 +135,7 @@ def check_summary(result) -> dict:
         "end_time_h": result.end_time,
         "limits": [limit_dict(r) for r in result.limits],
         **outcome_dict(result.outcome),
+        "warnings": [str(w) for w in result.problem.warnings],
         "record": result.record,
         "caution": CAUTION,
     }
@@ -176,7 +156,7 @@ def write_check_run(result, target, figures: bool = True) -> Path:
         write_csv(tmp / "limits.csv", *limits_rows(result.limits))
         if result.trajectory is not None:
             model = build_model(result.problem)
-            header, rows = trajectory_table(model, result.trajectory)
+            header, rows = trajectory_table(model, result.trajectory, unique=True)
             write_csv(tmp / "trajectory.csv", header, rows)
             if figures:
                 _best_effort_figure(tmp, lambda: run_figure(model, result.trajectory, result.use, tmp / "figure.png",
@@ -191,8 +171,10 @@ def optimize_summary(result) -> dict:
     for v in result.limits:
         d = limit_dict(v.report)
         d.update({"active": v.active, "marginal_max": v.marginal_max, "marginal_min": v.marginal_min,
-                  "marginal_unit": f"{result.objective_unit or '1'} per {v.report.unit or '1'}"})
+                  "marginal_unit": f"{unit_words(result.objective_unit)} per {unit_words(v.report.unit)}"})
         limits.append(d)
+    # the outcome's own 'objective' (the re-simulated value) must not replace this one
+    finals = outcome_dict(result.outcome).get("finals", [])
     return {
         "job": "optimize",
         "status": result.status,
@@ -201,6 +183,7 @@ def optimize_summary(result) -> dict:
         "problem": result.problem.name,
         "objective": {
             "label": result.objective_label, "unit": result.objective_unit,
+            "value": result.objective_sim,  # as check reports it: the re-simulated schedule's
             "nlp": result.objective_nlp, "resimulated": result.objective_sim,
             "relative_difference": None if ver is None else ver.objective_rel_diff,
         },
@@ -217,7 +200,8 @@ def optimize_summary(result) -> dict:
             "spread_relative": result.spread,
             "seconds_total": result.seconds,
         },
-        **outcome_dict(result.outcome),
+        "finals": finals,
+        "warnings": [str(w) for w in result.problem.warnings],
         "record": result.record,
         "caution": CAUTION,
     }
@@ -251,11 +235,9 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
                     f"Run length: {result.end_time!r} h. Check it with: "
                     f"optfeed check PROBLEM --schedule schedule.csv{end}")
             (tmp / "schedule.csv").write_text(schedule_csv_text(result.schedule, units, note))
-            write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory))
+            write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
-            header = ["time [h]"] + [f"{n} [internal]" for n in model.state_names] + \
-                     [f"{n} [L/h]" for n in model.feed_names]
-            write_csv(tmp / "points.csv", header, np.column_stack([pts["t"], pts["x"], pts["u"]]))
+            write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
             if figures:
                 _best_effort_figure(tmp, lambda: run_figure(
                     model, result.trajectory, result.verification.use, tmp / "figure.png",

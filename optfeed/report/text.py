@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from ..limits import REL_TOL, bound_scale
+from ..marginals import binding_sides
+
 CAUTION = (
     "Caution: a model-based feed profile is a hypothesis, not a release for manufacturing.\n"
     "Verify it at small scale first. Overfilling can foam out, wet exhaust filters and break\n"
@@ -21,17 +24,35 @@ def fmt(value, digits: int = 4) -> str:
     return f"{value:.{digits}g}"
 
 
+def unit_words(unit: str) -> str:
+    """A limit's unit for people: '' (a bound written as a bare number on an expression
+    whose dimension cannot be inferred) reads 'internal units'."""
+    return unit or "internal units"
+
+
+def tidy(value, report):
+    """``value`` (a slack or an excess of the limit ``report``, its unit) with anything
+    within the check tolerance of zero shown as 0: a slack of -3.7e-8 L on a 4 L
+    bound is 'on the bound', as the check itself judges it."""
+    if value is None:
+        return None
+    if abs(value) <= REL_TOL * bound_scale(report.lower, report.upper):
+        return 0.0
+    return value
+
+
 def limits_table(reports) -> list[str]:
     rows = [("limit", "range", "smallest slack", "at (h)", "peak use", "first broken (h)")]
     for r in reports:
-        rng = f"{fmt(r.lower) if r.lower is not None else ''}..{fmt(r.upper) if r.upper is not None else ''} {r.unit}".strip()
+        unit = unit_words(r.unit)
+        rng = f"{fmt(r.lower) if r.lower is not None else ''}..{fmt(r.upper) if r.upper is not None else ''} {unit}"
         rows.append((
             r.name + (" (end)" if r.at_end else ""),
             rng,
-            f"{fmt(r.min_slack)} {r.unit} ({r.side})".replace("  ", " "),
+            f"{fmt(tidy(r.min_slack, r))} {unit} ({r.side})",
             fmt(r.time_min_slack),
             "-" if r.peak_use is None else f"{r.peak_use:.1f} %",
-            "-" if r.first_violation is None else f"{fmt(r.first_violation)}  BROKEN by up to {fmt(r.worst_violation)} {r.unit}",
+            "-" if r.first_violation is None else f"{fmt(r.first_violation)}  BROKEN by up to {fmt(r.worst_violation)} {unit}",
         ))
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     out = []
@@ -45,11 +66,18 @@ def limits_table(reports) -> list[str]:
 def outcome_lines(outcome) -> list[str]:
     out = []
     for f in outcome.finals:
-        out.append(f"  {f.label:<14} {fmt(f.value, 5)} {f.unit}".rstrip())
+        out.append(f"  {f.label:<14} {fmt(f.value, 5)} {unit_words(f.unit)}")
     if outcome.objective is not None:
         o = outcome.objective
-        out.append(f"  objective      {fmt(o.value, 6)} {o.unit}   ({o.label})".replace("  (", " ("))
+        out.append(f"  objective      {fmt(o.value, 6)} {unit_words(o.unit)}  ({o.label})")
     return out
+
+
+def warning_lines(problem) -> list[str]:
+    """The problem's unit warnings (see optfeed.dimensions), or nothing."""
+    if not problem.warnings:
+        return []
+    return ["Warnings (the file is valid, but these units look wrong):"] + [f"  {w}" for w in problem.warnings] + [""]
 
 
 def check_text(result) -> str:
@@ -63,7 +91,7 @@ def check_text(result) -> str:
         "",
         f"STATUS: {result.status.upper()} - {result.message}",
         "",
-    ]
+    ] + warning_lines(p)
     if result.outcome is None:
         lines += ["No trajectory: the simulation did not reach the end of the run.", ""]
     else:
@@ -76,7 +104,7 @@ def check_text(result) -> str:
 def optimize_text(result) -> str:
     """The text report of an :class:`~optfeed.optimize.OptimizeResult`."""
     p = result.problem
-    unit = result.objective_unit
+    unit = unit_words(result.objective_unit)
     lines = [
         f"optfeed optimize: {p.name}",
         f"  problem   {result.record.get('problem_file', '')}",
@@ -85,7 +113,7 @@ def optimize_text(result) -> str:
         "",
         f"STATUS: {result.status.upper()} - {result.message}",
         "",
-    ]
+    ] + warning_lines(p)
     if result.objective_nlp is not None:
         lines += [
             f"Objective ({result.objective_label}):",
@@ -108,15 +136,21 @@ def optimize_text(result) -> str:
         lines.append("")
     if result.limits:
         lines += ["Limits at the optimum (re-simulated):"] + limits_table([v.report for v in result.limits]) + [""]
-        lines.append(f"Marginal values (gain in objective, {unit or 'its unit'}, per unit relaxation of a limit):")
+        lines.append(f"Marginal values (gain in objective, {unit}, per unit relaxation of a limit;")
+        lines.append("ACTIVE = it holds the optimum back, its marginal value is not zero):")
+        kept = result.record.get("backoff", {})
         for v in result.limits:
+            up, low = binding_sides(v.report, v.marginal_max, v.marginal_min, result.objective_nlp)
+            lu = unit_words(v.report.unit)
             parts = []
-            if abs(v.marginal_max) > 1e-9 * max(1.0, abs(result.objective_nlp or 1.0)):
-                parts.append(f"+1 {v.report.unit} on its maximum: {fmt(v.marginal_max)}")
-            if abs(v.marginal_min) > 1e-9 * max(1.0, abs(result.objective_nlp or 1.0)) and v.report.kind != "pump":
-                parts.append(f"-1 {v.report.unit} on its minimum: {fmt(v.marginal_min)}")
-            if v.report.kind == "pump" and abs(v.marginal_min) > 0 and not parts:
+            if up:
+                parts.append(f"+1 {lu} on its maximum: {fmt(v.marginal_max)}")
+            if low and v.report.kind != "pump":
+                parts.append(f"-1 {lu} on its minimum: {fmt(v.marginal_min)}")
+            if low and v.report.kind == "pump" and not parts:
                 parts.append("only its minimum (zero flow) binds")
+            if v.name in kept:
+                parts.append(f"kept {fmt(kept[v.name]['amount'], 3)} {unit_words(kept[v.name]['unit'])} clear (back-off)")
             state = "ACTIVE" if v.active else "slack "
             lines.append(f"  {state} {v.name:<24} " + ("; ".join(parts) if parts else "0 (does not hold the optimum back)"))
         lines.append("")

@@ -47,21 +47,121 @@ def sense_of(rows, sweep) -> str:
         return "maximize"
 
 
+def limit_figures(reports) -> dict:
+    """What a case records of its limits for the summary: name, unit, smallest slack
+    (tiny values shown as 0, as in the reports); ``reports`` are LimitReports."""
+    from ..report.text import tidy, unit_words
+
+    # the key has a space, so that no species (a figure under its own name) can take it
+    return {LIMITS_KEY: [{"name": r.name, "unit": unit_words(r.unit), "smallest_slack": tidy(r.min_slack, r)}
+                         for r in reports]}
+
+
+LIMITS_KEY = "limit slacks"
+
+
+def summary_table(sweep, rows) -> tuple[list[str], list[list]]:
+    """Header and rows of summary.csv: units in the header, plain numbers in the cells
+    (a spreadsheet or ``pandas.read_csv`` reads numbers), one column per limit with
+    its smallest slack."""
+    paths = list(sweep.varied)
+    value_units = {p: _column_unit([r["values"].get(p) for r in rows]) for p in paths}
+    objective_units = {r.get("objective_unit") or "" for r in rows if r["objective"] is not None}
+    one_objective_unit = len(objective_units) <= 1
+    limit_units = {}
+    for r in rows:
+        for lim in _limits_of(r):
+            limit_units.setdefault(lim["name"], lim.get("unit") or "")
+    header = ["key", "label", "problem"] + [_head(p, value_units[p]) for p in paths] + ["status"]
+    header += [_head("objective", next(iter(objective_units), "")) if one_objective_unit else "objective"]
+    if not one_objective_unit:
+        header.append("objective unit")
+    header += ["end time [h]", "run time [s]"]
+    header += [_head(f"smallest slack: {name}", unit) for name, unit in limit_units.items()]
+    header += ["message", "run_dir"]
+    table = []
+    for r in rows:
+        row = [r["key"], r["label"], r["values"].get("problem", "")]
+        row += [_in_unit(r["values"].get(p), value_units[p]) for p in paths]
+        row += [r["status"], _num(r["objective"])]
+        if not one_objective_unit:
+            row.append(r.get("objective_unit") or "")
+        row += [_num(r["end_time_h"]), _num(r["seconds"])]
+        slacks = {lim["name"]: lim for lim in _limits_of(r)}
+        for name, unit in limit_units.items():
+            lim = slacks.get(name)
+            if lim is None or lim.get("smallest_slack") is None:
+                row.append("")
+            else:
+                row.append(_in_unit(f"{lim['smallest_slack']!r} {lim.get('unit') or ''}".strip(), unit))
+        row += [r["message"] or "", r["run_dir"] or ""]
+        table.append(row)
+    return header, table
+
+
+def _head(name: str, unit: str) -> str:
+    return f"{name} [{unit}]" if unit else name
+
+
+def _num(value) -> str:
+    return "" if value is None else f"{value:.10g}"
+
+
+def _column_unit(values) -> str:
+    """The unit of a column of swept values: the first one written with a unit
+    ('' if none is, or if a value is not a number)."""
+    units = [number(v)[1] for v in values if v is not None]
+    if any(math.isnan(number(v)[0]) for v in values if v is not None):
+        return ""
+    return next((u for u in units if u), "")
+
+
+def _in_unit(value, unit: str) -> str:
+    """A swept value or a slack as a plain number in ``unit`` (converted if written in
+    another unit of the same dimension); the text itself if it is not a number."""
+    if value is None:
+        return ""
+    n, written = number(value)
+    if math.isnan(n):
+        return str(value)
+    if unit and written and written != unit:
+        try:
+            from ..units import UREG
+
+            n = UREG.Quantity(n, written.replace("^", "**")).to(unit.replace("^", "**")).magnitude
+        except Exception:  # noqa: BLE001 - not convertible: keep the text, units and all
+            return str(value)
+    return f"{n:.10g}"
+
+
+def _limits_of(row) -> list:
+    """A case's limits (name, unit, smallest slack): from the store, or for a case
+    recorded before the store held them, from its summary.json."""
+    figures = row.get("figures") or {}
+    if LIMITS_KEY in figures:
+        return figures[LIMITS_KEY]
+    path = Path(row.get("run_dir") or "") / "summary.json"
+    if row.get("run_dir") and path.exists():
+        import json
+
+        try:
+            return [{"name": lim["name"], "unit": lim.get("unit") or "", "smallest_slack": lim["smallest_slack"]}
+                    for lim in json.loads(path.read_text()).get("limits", [])]
+        except (ValueError, KeyError, TypeError):
+            return []
+    return []
+
+
 def write_outputs(sweep, rows, folder: Path) -> None:
     folder = Path(folder)
     sense = sense_of(rows, sweep)
     paths = list(sweep.varied)
     tmp_csv = folder / ".summary.csv.tmp"
+    header, table = summary_table(sweep, rows)
     with tmp_csv.open("w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["key", "label", "problem"] + paths + ["status", "objective", "objective_unit", "end_time_h",
-                                                          "seconds", "message", "run_dir"])
-        for r in rows:
-            w.writerow([r["key"], r["label"], r["values"].get("problem", "")] +
-                       [r["values"].get(p, "") for p in paths] +
-                       [r["status"], "" if r["objective"] is None else f"{r['objective']:.10g}",
-                        r.get("objective_unit") or "", "" if r["end_time_h"] is None else f"{r['end_time_h']:.6g}",
-                        "" if r["seconds"] is None else f"{r['seconds']:.3f}", r["message"] or "", r["run_dir"] or ""])
+        w.writerow(header)
+        w.writerows(table)
     os.replace(tmp_csv, folder / "summary.csv")
     best = ranked(rows, sense)
     tmp_txt = folder / ".summary.txt.tmp"

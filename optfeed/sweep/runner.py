@@ -82,6 +82,7 @@ def _run_case(task: Task) -> dict:
     from ..provenance import problem_digest
     from ..report import write_check_run, write_optimize_run
     from ..schedule import load_schedule
+    from .outputs import limit_figures
 
     t0 = time.perf_counter()
     target = Path(task.run_dir)
@@ -98,6 +99,7 @@ def _run_case(task: Task) -> dict:
         if r.outcome is not None:
             figures.update({f.label: f.value for f in r.outcome.finals})
         figures.update({f"marginal: {v.name}": v.marginal_max for v in r.limits})
+        figures.update(limit_figures([v.report for v in r.limits]))
         objective = r.objective_sim
         end_time = r.end_time
     else:
@@ -111,6 +113,7 @@ def _run_case(task: Task) -> dict:
         write_check_run(r, staged)
         figures = {} if r.outcome is None else {f.label: f.value for f in r.outcome.finals}
         figures.update({f"slack: {x.name}": x.min_slack for x in r.limits})
+        figures.update(limit_figures(r.limits))
         objective = None if r.outcome is None or r.outcome.objective is None else r.outcome.objective.value
         end_time = r.end_time
     unit = getattr(r, "objective_unit", None)

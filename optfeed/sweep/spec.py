@@ -24,8 +24,10 @@ Value lists can also be ``{range: [start, stop, step], unit: ...}`` (stop exclud
 or ``{linspace: [start, stop, count], unit: ...}``. The cases are the product of
 (problems) x (grid) x (zip) x (samples); each section is optional. A dotted path
 must name a value that exists in the problem file (list items by index:
-``limits.0.max``); anything else is bad input, reported before any case starts.
-The problem files and the schedule must lie in the sweep file's folder or below it
+``limits.0.max``) or a key it leaves at its default (``solver.starts``); anything
+else is bad input, reported before any case starts (see
+:mod:`optfeed.problem.dotted`, shared with ``--set``). The problem files and the
+schedule must lie in the sweep file's folder or below it
 (:func:`optfeed.paths.inside`); the cases are counted before any is built, and a
 sweep of more than ``max_cases`` (default :data:`MAX_CASES`) is refused.
 """
@@ -46,6 +48,7 @@ import numpy as np
 from ..errors import InputError, Issue
 from ..paths import glob_inside, inside, safe_folder_name, why_not_folder_name
 from ..problem import problem_from_data
+from ..problem.dotted import PathError, set_path
 from ..problem.yamlio import key_text, read_text, read_yaml
 from ..provenance import problem_digest
 from ..units import parse_quantity, to_internal
@@ -382,33 +385,10 @@ def _samples(spec, fail) -> list:
 
 
 def _set_path(data, dotted: str, value, sweep_file, sweep_lines, problem_file) -> None:
-    parts = dotted.split(".")
-    node = data
-    for k, part in enumerate(parts):
-        last = k == len(parts) - 1
-        if isinstance(node, dict):
-            if part not in node:
-                close = [c for c in node if c.lower().startswith(part[:3].lower())][:3]
-                hint = f"; {'.'.join(parts[:k]) or 'the top level'} has {', '.join(map(str, node)) if not close else ', '.join(close)}"
-                raise InputError.one(sweep_file, _line_of(sweep_lines, dotted), dotted,
-                                     f"{problem_file} has no value at this path ({part!r} not found{hint})")
-            if last:
-                node[part] = value
-            else:
-                node = node[part]
-        elif isinstance(node, list):
-            if not (part.isascii() and part.isdigit()) or int(part) >= len(node):
-                raise InputError.one(sweep_file, _line_of(sweep_lines, dotted), dotted,
-                                     f"{problem_file} has no item {part!r} here (the list has {len(node)} items)")
-            if last:
-                node[int(part)] = value
-            else:
-                node = node[int(part)]
-        else:
-            raise InputError.one(sweep_file, _line_of(sweep_lines, dotted), dotted,
-                                 f"{problem_file}: {'.'.join(parts[:k])} is a single value, not a mapping")
-    if isinstance(value, (dict, list)):
-        raise InputError.one(sweep_file, _line_of(sweep_lines, dotted), dotted, "each value must be a single value")
+    try:
+        set_path(data, dotted, value, problem_file)
+    except PathError as exc:
+        raise InputError.one(sweep_file, _line_of(sweep_lines, dotted), dotted, str(exc)) from None
 
 
 def _line_of(lines, dotted):
