@@ -132,6 +132,20 @@ def caution_section() -> Section:
     return Section("cautions", "Cautions", f'<p class="caution">{esc(text)}</p>')
 
 
+def range_text(lower, upper, unit: str) -> str:
+    """'0 – 120 mL/h', '≤ 4 L', '≥ 0.2 g/L' (no line breaks inside)."""
+    nb = "\u00a0"
+    if lower is not None and upper is not None:
+        text = f"{fmt(lower)}{nb}\u2013{nb}{fmt(upper)}"
+    elif upper is not None:
+        text = f"\u2264{nb}{fmt(upper)}"
+    elif lower is not None:
+        text = f"\u2265{nb}{fmt(lower)}"
+    else:
+        text = "-"
+    return f"{text}{nb}{unit}" if unit else text
+
+
 def limit_verdict(r) -> str:
     if r.first_violation is not None:
         return f"broken from {fmt(r.first_violation)} h, by up to {fmt(r.worst_violation)} {r.unit}".rstrip()
@@ -162,9 +176,7 @@ def limits_section(reports, values=None, objective_unit: str = "", objective_val
         header += ["at the optimum", "worth of relaxing it"]
     rows = []
     for k, r in enumerate(reports):
-        lo = "" if r.lower is None else fmt(r.lower)
-        hi = "" if r.upper is None else fmt(r.upper)
-        row = [r.name + (" (at the end)" if r.at_end else ""), f"{lo} .. {hi} {r.unit}".strip(),
+        row = [r.name + (" (at the end)" if r.at_end else ""), range_text(r.lower, r.upper, r.unit),
                f"{fmt(r.min_slack)} {r.unit} (to its {'minimum' if r.side == 'min' else 'maximum'})",
                r.time_min_slack, "-" if r.peak_use is None else f"{r.peak_use:.1f} %", limit_verdict(r)]
         if values is not None:
