@@ -494,5 +494,5 @@ def write_recipe_run(result: RecipeResult, target, figures: bool = True) -> Path
             draw = lambda: run_drawings(model, result.check.trajectory,  # noqa: E731
                                         title=f"{result.problem.name}: rounded recipe - {result.status}")
         write_report(tmp, lambda d, s, n: recipe_page(result, d, s, n), draw,
-                     "" if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)

@@ -54,18 +54,33 @@ def _rc():
     import matplotlib
 
     return matplotlib.rc_context({
-        "font.size": 8, "axes.titlesize": 9, "axes.titlelocation": "left", "axes.labelsize": 8,
+        "font.size": 8, "axes.titlesize": 9, "axes.titlelocation": "left", "axes.titley": 1.02,
+        "axes.titlepad": 2.0, "axes.labelsize": 8,
         "xtick.labelsize": 7.5, "ytick.labelsize": 7.5, "legend.fontsize": 7, "axes.grid": True,
         "grid.alpha": 0.28, "grid.linewidth": 0.6, "axes.spines.top": False, "axes.spines.right": False,
         "svg.fonttype": "path", "svg.hashsalt": "optfeed", "path.simplify": True,
     })
 
 
-def _figure(nrow: int, ncol: int, width: float = 5.0, height: float = 2.7, sharex: bool = True):
+# margins around the panels, inches: room for tick labels and an axis label on the
+# left, a title above each panel, the time axis below (a fixed layout: measuring
+# every label to place the panels costs more than drawing them)
+LEFT, RIGHT, TOP, BOTTOM, GAP_W, GAP_H = 0.78, 0.2, 0.55, 0.5, 0.85, 0.62
+
+
+def _figure(nrow: int, ncol: int, width: float = 5.0, height: float = 2.7, left=LEFT):
+    """A figure of nrow x ncol panels placed with fixed margins; panels of a run share
+    their time range through :func:`_finish` (not through matplotlib's shared axes,
+    which make every label placement look at every panel)."""
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(width * ncol, height * nrow), layout="constrained")
-    axes = fig.subplots(nrow, ncol, sharex=sharex, squeeze=False).ravel()
+    fig_w, fig_h = width * ncol, height * nrow
+    fig = Figure(figsize=(fig_w, fig_h))
+    ax_w = (fig_w - left - RIGHT - GAP_W * (ncol - 1)) / ncol
+    ax_h = (fig_h - TOP - BOTTOM - GAP_H * (nrow - 1)) / nrow
+    axes = fig.subplots(nrow, ncol, squeeze=False, gridspec_kw=dict(
+        left=left / fig_w, right=1 - RIGHT / fig_w, top=1 - TOP / fig_h, bottom=BOTTOM / fig_h,
+        wspace=GAP_W / ax_w, hspace=GAP_H / ax_h)).ravel()
     return fig, axes
 
 
@@ -263,7 +278,7 @@ def _limits_figure(model, traj, idx, title):
     ax.set_title("use of each limit, % of its maximum")
     ax.set_ylabel("%")
     ax.legend(loc="best", ncol=2)
-    _finish(fig, axes, len(shown) + 1, ncol, title)
+    _finish(fig, axes, len(shown) + 1, ncol, title, traj.t)
     return Drawing("figure-limits", "Each limited quantity against its limit (dashed); shaded where the limit "
                    "is broken. Last panel: the use of every limit in % of its maximum.", fig)
 
@@ -325,11 +340,11 @@ def _culture_figure(model, traj, points, title):
         ax.set_title(f"{name} - specific rate")
         ax.set_ylabel("internal units")
         k += 1
-    _finish(fig, axes, n, ncol, title)
+    _finish(fig, axes, n, ncol, title, traj.t)
     return Drawing("figure-culture", "The culture: every species and the volume (the simulated run; hollow "
                    "circles: the optimizer's collocation points, where there are some), the specific growth "
-                   "rate against the dilution rate, and the model's specific rates (in optfeed's internal units: g, L, h, "
-                   "mmol).", fig)
+                   "rate against the dilution rate, and the model's specific rates (in optfeed's internal "
+                   "units: g, L, h, mmol).", fig)
 
 
 def cumulative(t, rate) -> np.ndarray:
@@ -378,20 +393,23 @@ def _feeds_figure(model, traj, idx, title):
         ax.set_title("amount fed so far, per species")
         ax.set_ylabel(", ".join(sorted(units)))
         ax.legend(loc="best")
-    _finish(fig, axes, n, ncol, title)
+    _finish(fig, axes, n, ncol, title, traj.t)
     return Drawing("figure-feeds", "The pumps: each rate within its range (dashed: the pump's limits), the volume "
                    "each pump has delivered, and the amount of each species fed.", fig)
 
 
-def _finish(fig, axes, n, ncol, title):
+def _finish(fig, axes, n, ncol, title, t):
+    """Remove unused panels, give every panel the run's time range and the bottom
+    ones a time label, and put the title on top."""
     for ax in axes[n:]:
-        ax.set_visible(False)
+        ax.remove()
+    span = float(t[-1] - t[0]) or 1.0
     for ax in axes[:n]:
-        ax.xaxis.set_tick_params(labelbottom=True)
+        ax.set_xlim(t[0] - 0.02 * span, t[-1] + 0.02 * span)
     for ax in axes[max(0, n - ncol):n]:
         ax.set_xlabel("time (h)")
     if title:
-        fig.suptitle(title, fontsize=10)
+        fig.suptitle(title, fontsize=10, y=1 - 0.08 / fig.get_figheight(), va="top")
 
 
 def _num(v) -> str:
@@ -427,7 +445,7 @@ def margins_against(path: str, xunit: str, limits: list) -> Drawing:
         n = len(limits)
         ncol = 2 if n > 1 else 1
         nrow = max(1, math.ceil(n / ncol))
-        fig, axes = _figure(nrow, ncol, width=5.0, height=2.8, sharex=False)
+        fig, axes = _figure(nrow, ncol, width=5.0, height=2.8)
         for ax, (name, unit, xs, ms) in zip(axes, limits):
             xs, ms = np.asarray(xs, float), np.asarray(ms, float)
             broken = ms < 0
@@ -452,7 +470,9 @@ def ranking(labels, values, unit: str, width_chars: int = 46) -> Drawing:
     wrapped = [textwrap.fill(str(s), width_chars) for s in labels]
     lines = sum(w.count("\n") + 1 for w in wrapped)
     with _rc():
-        fig, axes = _figure(1, 1, width=8.0, height=0.26 * lines + 0.3 * len(labels) + 1.2)
+        longest = max((len(line) for w in wrapped for line in w.splitlines()), default=10)
+        left = 0.35 + 0.068 * longest  # inches for the labels (7.5 pt characters are ~0.06 in wide)
+        fig, axes = _figure(1, 1, width=left + 4.5, height=0.26 * lines + 0.3 * len(labels) + 1.2, left=left)
         ax = axes[0]
         pos = np.arange(len(values))[::-1]
         # dots, not bars: close objectives stay apart without a cut-off axis
@@ -468,7 +488,7 @@ def ranking(labels, values, unit: str, width_chars: int = 46) -> Drawing:
 def heatmap(p1: str, p2: str, v1, v2, z, unit: str) -> Drawing:
     """The objective over a two-way grid (``z[j, i]`` at ``v1[i]``, ``v2[j]``; NaN blank)."""
     with _rc():
-        fig, axes = _figure(1, 1, width=6.2, height=4.6, sharex=False)
+        fig, axes = _figure(1, 1, width=6.2, height=4.6)
         ax = axes[0]
         im = ax.imshow(z, origin="lower", aspect="auto", cmap="cividis")
         ax.set_xticks(range(len(v1)), [_num(v) for v in v1])

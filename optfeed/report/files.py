@@ -185,7 +185,7 @@ def write_check_run(result, target, figures: bool = True) -> Path:
             draw = lambda: run_drawings(model, result.trajectory,  # noqa: E731
                                         title=f"{result.problem.name}: check - {result.status}")
         write_report(tmp, lambda d, s, note: check_page(result, d, s, note), draw,
-                     "" if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)
 
 
@@ -268,5 +268,5 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             draw = lambda: run_drawings(model, result.trajectory, points=result.points,  # noqa: E731
                                         title=f"{result.problem.name}: optimize - {result.status}")
         write_report(tmp, lambda d, s, note: optimize_page(result, d, s, note), draw,
-                     "" if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)

@@ -183,9 +183,9 @@ def limits_section(reports, values=None, objective_unit: str = "", objective_val
             v = values[k]
             row += ["on the limit" if v.active else "clear of it", marginal_text(v, objective_unit, objective_value)]
         rows.append(row)
-    body = table(header, rows, numeric={3, 4}, row_class=lambda k: "broken" if reports[k].violated else "")
     if not reports:
-        body = "<p>No limit was judged: there is no simulated run.</p>"
+        return Section("limits", title, "<p>No limit was judged: there is no simulated run.</p>")
+    body = table(header, rows, numeric={3, 4}, row_class=lambda k: "broken" if reports[k].violated else "")
     note = ("<p class=note>Margin: the smallest distance to the nearest bound over the run, in the limit's "
             "unit (negative: broken). Peak use: the largest value in % of the maximum.")
     if values is not None:
@@ -252,7 +252,7 @@ def _plain(v) -> str:
 
 def outcome_section(outcome, title: str = "At the end of the run") -> Section:
     if outcome is None:
-        return Section("outcome", title, "<p>No values: the simulation did not reach the end of the run.</p>")
+        return Section("outcome", title, "<p>No values: there is no simulated run to its end.</p>")
     rows = [[f.label, f.value, f.unit] for f in outcome.finals]
     return Section("outcome", title, table(["quantity", "value", "unit"], rows, numeric={1}))
 
@@ -489,7 +489,7 @@ a{color:inherit;text-decoration:none}
 """
 
 
-def write_report(folder, page_of, draw=None, no_figures_note: str = "Figures were not drawn (asked not to).",
+def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures: there is no simulated run.",
                  figure_folder=None) -> None:
     """Write ``folder/report.html``, with the figures of ``draw()`` (a list of
     Drawing) saved as PNG in ``figure_folder`` (default: ``folder``) and shown
@@ -523,6 +523,12 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "Figures wer
             drawings, svgs = [], []
         finally:
             close(drawings)
+    try:
+        text = render(page_of(drawings, svgs, note))
+    except Exception as exc:  # noqa: BLE001 - never lose a run's numbers for its report
+        (folder / "report-not-written.txt").write_text(f"report.html could not be built: "
+                                                       f"{type(exc).__name__}: {exc}\n")
+        return
     tmp = folder / ".report.html.tmp"
-    tmp.write_text(render(page_of(drawings, svgs, note)), encoding="utf-8")
+    tmp.write_text(text, encoding="utf-8")
     os.replace(tmp, folder / "report.html")
