@@ -6,7 +6,8 @@ Python API (mirrors the command line; each job returns a result object):
 * :func:`validate` - read and check a problem (and a schedule), solve nothing;
 * :func:`check` - simulate a proposed schedule and judge every limit;
 * :func:`optimize` - the best feed profile inside every limit, verified;
-* :func:`sweep` - many variants of a problem, unattended and resumable.
+* :func:`sweep` - many variants of a problem, unattended and resumable;
+* :func:`recipe` - a run's schedule as pump setpoints, checked again.
 
 Every job takes ``set={"parameters.mu_max": "0.5 1/h", ...}`` to change values by
 dotted path, as sweep files do. Example::
@@ -32,11 +33,13 @@ from .validate import ValidateResult, validate  # noqa: E402
 from .check import CheckResult, check  # noqa: E402
 from .optimize import OptimizeResult, optimize  # noqa: E402
 from .sweep import SweepResult, load_sweep, run_sweep  # noqa: E402
+from .recipe import RecipeResult, recipe  # noqa: E402
 
 sweep = run_sweep  # the sweep job under the name of the command
 
 __all__ = [
     "__version__", "load_problem", "validate", "check", "optimize", "sweep", "run_sweep", "load_sweep",
     "ValidateResult", "CheckResult", "OptimizeResult", "SweepResult", "Problem", "Schedule",
-    "load_schedule", "piecewise_constant", "InputError", "OptfeedError", "SimulationError",
+    "load_schedule", "piecewise_constant", "InputError", "OptfeedError", "SimulationError", "recipe",
+    "RecipeResult",
 ]

@@ -6,6 +6,7 @@
                      [--json] [--quiet]
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
                   [--allow-symlink] [--retry-failed] [--quiet]
+    optfeed recipe RUN_FOLDER [--unit mL/min] [--step "1 min"] [--start "2026-12-04 08:00"] [--problem FILE]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
 verified optimum), 2 bad input, 3 a solver or integrator failure.
@@ -67,6 +68,17 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--allow-symlink", action="store_true",
                    help="accept a sweep folder that is a symbolic link (refused by default)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
+
+    r = sub.add_parser("recipe", help="a pump controller's setpoint table for a run's schedule, checked again")
+    r.add_argument("run_folder", metavar="RUN_FOLDER", help="folder written by optimize or check")
+    r.add_argument("--unit", help="the pump's flow unit, e.g. mL/min (default: each feed's unit in the problem)")
+    r.add_argument("--step", default="1 min", help="the controller's time step, a time with its unit "
+                   "(default: '1 min')")
+    r.add_argument("--resolution", help="the smallest setpoint change, a flow with its unit, e.g. '0.01 mL/min' "
+                   "(default: a thousandth of the pump's maximum, rounded down to a power of ten)")
+    r.add_argument("--start", help="clock time of the run's start, e.g. '2026-12-04 08:00' (adds clock times)")
+    r.add_argument("--problem", help="problem file to check against (default: the one summary.json records)")
+    _output_args(r)
     return ap
 
 
@@ -107,7 +119,7 @@ def _overrides(pairs) -> dict:
 def _output_args(p):
     p.add_argument("--out", help="run folder to write (must not exist)")
     p.add_argument("--results", default="results", help="parent of the run folder (default: results)")
-    p.add_argument("--no-figures", action="store_true", help="skip the PNG figure")
+    p.add_argument("--no-figures", action="store_true", help="skip the figures (PNG files and those in report.html)")
     p.add_argument("--json", action="store_true", help="print summary.json to stdout instead of the report")
     p.add_argument("--quiet", action="store_true", help="print only the status line")
 
@@ -151,6 +163,8 @@ def _run(args) -> int:
             return _optimize(args)
         if args.command == "sweep":
             return _sweep(args)
+        if args.command == "recipe":
+            return _recipe(args)
     except InputError as exc:
         print("optfeed: bad input", file=sys.stderr)
         for issue in exc.issues[:MAX_ISSUES_SHOWN]:
@@ -224,9 +238,9 @@ def _check(args) -> int:
     target = _run_folder(args, problem.name, "check")
     result = check(problem, args.schedule, end_time=args.end_time)
     write_check_run(result, target, figures=not args.no_figures)
-    files = "summary.json, report.txt, limits.csv, trajectory.csv"
+    files = "summary.json, report.txt, report.html, limits.csv, schedule.csv, trajectory.csv"
     if not args.no_figures and result.trajectory is not None:
-        files += ", figure.png"
+        files += ", figure-*.png"
     return _show(args, result, check_summary(result), check_text(result), target, f" ({files})")
 
 
@@ -253,6 +267,20 @@ def _optimize(args) -> int:
         result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb))
     write_optimize_run(result, target, figures=not args.no_figures)
     return _show(args, result, optimize_summary(result), optimize_text(result), target, "")
+
+
+def _recipe(args) -> int:
+    from .recipe import recipe, recipe_summary, recipe_text, write_recipe_run
+    from .report.files import default_run_dir
+
+    if args.out and Path(args.out).exists():
+        raise InputError.one(args.out, None, "--out", "run folder already exists; choose another")
+    result = recipe(args.run_folder, unit=args.unit, step=args.step, start=args.start, problem=args.problem,
+                    resolution=args.resolution)
+    target = Path(args.out) if args.out else default_run_dir(Path(args.results), result.problem.name, "recipe")
+    write_recipe_run(result, target, figures=not args.no_figures)
+    return _show(args, result, recipe_summary(result), recipe_text(result), target,
+                 " (recipe.csv, schedule.csv, summary.json, report.txt, report.html, limits.csv)")
 
 
 def _sweep(args) -> int:

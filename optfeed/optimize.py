@@ -156,6 +156,32 @@ class OptimizeResult:
         there is no answer."""
         return result_trajectory_table(self)
 
+    # tables as pandas DataFrames, units in the column names (optfeed.frames; needs pandas)
+    def trajectory_frame(self):
+        """The simulated run: one row per time stamp, a ``pump change`` column."""
+        from .frames import trajectory_frame
+
+        return trajectory_frame(self)
+
+    def schedule_frame(self):
+        """The pump schedule: a row per time any pump changes, rates in each feed's unit."""
+        from .frames import schedule_frame
+
+        return schedule_frame(self)
+
+    def limits_frame(self):
+        """One row per limit: range, smallest margin and when, peak use, first break."""
+        from .frames import limits_frame
+
+        return limits_frame(self)
+
+    def starts_frame(self):
+        """Every start of the multistart, best first."""
+        from .frames import starts_frame
+
+        return starts_frame(self)
+
+
     def __repr__(self) -> str:
         return result_repr(self)
 

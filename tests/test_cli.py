@@ -20,13 +20,15 @@ def test_check_each_example(tmp_path, capsys, problem, schedule, code):
     assert "STATUS: " + ("LIMIT BROKEN" if code else "WITHIN LIMITS") in text
     assert "verify it at small scale first" in text.lower()
     assert sorted(p.name for p in out.iterdir()) == [
-        "figure.png", "limits.csv", "report.txt", "summary.json", "trajectory.csv"]
+        "figure-culture.png", "figure-feeds.png", "figure-limits.png", "limits.csv", "report.html", "report.txt",
+        "schedule.csv", "summary.json", "trajectory.csv"]
     summary = json.loads((out / "summary.json").read_text())
     assert summary["status"] == ("limit broken" if code else "within limits")
     assert summary["exit_code"] == code
     assert len(summary["record"]["problem_digest"]) == 64
     assert summary["objective"]["value"] > 0
-    assert (out / "figure.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    for png in out.glob("figure-*.png"):
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert not list(tmp_path.glob(".run.*")), "temporary folder left behind"
 
 

@@ -108,6 +108,22 @@ def test_run_store_outputs_and_resume(tmp_path):
         assert (Path(row["run_dir"]) / "summary.json").exists()
     assert (out / "summary.csv").read_text().count("\n") == 5
     assert (out / "figures" / "heatmap.png").exists() and (out / "figures" / "ranking.png").exists()
+    # each limit's margin against the swept values, and the sweep's own report
+    assert (out / "figures" / "margins_vs_vessel_oxygen_transfer_max.png").exists()
+    html = (out / "report.html").read_text()
+    assert '<h1 id="status">2 of 4 cases within every limit</h1>' in html
+    assert html.count('<figure id="') == len(list((out / "figures").glob("*.png")))
+    for row in r.rows:
+        assert (Path(row["run_dir"]) / "report.html").exists()
+    # the case table as a DataFrame: the swept values as numbers, units in the header (as in the sweep file)
+    pd = pytest.importorskip("pandas")
+    df = r.cases_frame()
+    assert isinstance(df, pd.DataFrame) and len(df) == 4
+    assert sorted(df["vessel.oxygen.transfer_max [mmol/L/h]"]) == [6, 6, 10, 10]
+    broken = df["status"] == "limit broken"
+    assert (df.loc[broken, "vessel.oxygen.transfer_max [mmol/L/h]"] == 6).all()
+    assert (df.loc[broken, "margin: OTR ceiling [mmol/L/h]"] < 0).all()
+    assert (df.loc[~broken, "margin: OTR ceiling [mmol/L/h]"] > 0).all()
     again = run_sweep(path, out, workers=2)
     assert (again.ran, again.skipped) == (0, 4)
     # change one value of the base problem: every case changes, all run again

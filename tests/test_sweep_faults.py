@@ -409,12 +409,12 @@ def test_a_full_disk_loses_nothing_and_the_same_command_completes_later(tmp_path
     cmd = f"{sys.executable} -m optfeed.cli sweep {path} --out {disk}/out --workers 1 --quiet"
     script = f"""
 set -u
-mount -t tmpfs -o size=4m tmpfs {disk} || exit 99
-dd if=/dev/zero of={disk}/filler bs=1k count=8000 2>/dev/null
+mount -t tmpfs -o size=8m tmpfs {disk} || exit 99
+dd if=/dev/zero of={disk}/filler bs=1k count=16000 2>/dev/null
 {cmd}; echo "full exit $?"
 echo "left: $(ls -A {disk})"
 rm {disk}/filler
-dd if=/dev/zero of={disk}/filler bs=1k count=2200 2>/dev/null
+dd if=/dev/zero of={disk}/filler bs=1k count=6200 2>/dev/null
 {cmd}; echo "first exit $?"
 sqlite3_rows() {{ {sys.executable} -c "import sqlite3; print(sorted(sqlite3.connect('{disk}/out/sweep.sqlite').execute('SELECT key, status, finished_at FROM cases').fetchall()))"; }}
 echo "rows after first: $(sqlite3_rows)"

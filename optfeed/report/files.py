@@ -53,14 +53,6 @@ class RunFolder:
         return False
 
 
-def _best_effort_figure(folder: Path, draw) -> None:
-    """Draw a figure; if drawing fails, say so in a file rather than lose the run."""
-    try:
-        draw()
-    except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figure a convenience
-        (folder / "figure-not-drawn.txt").write_text(f"the figure could not be drawn: {exc}\n")
-
-
 def write_json(path: Path, data) -> None:
     path.write_text(json.dumps(data, indent=2, default=_json_default) + "\n")
 
@@ -144,23 +136,36 @@ def check_summary(result) -> dict:
 def write_check_run(result, target, figures: bool = True) -> Path:
     """Write a check result to the run folder ``target`` (must not exist).
 
-    Files: summary.json, report.txt, limits.csv, trajectory.csv, figure.png (if the
+    Files: summary.json, report.txt, limits.csv, schedule.csv (the schedule
+    checked), report.html, trajectory.csv and the
+    figures figure-limits.png, figure-culture.png, figure-feeds.png (if the
     simulation reached the end and ``figures``).
     """
     from ..model import build_model
-    from .figures import run_figure
+    from ..schedule import schedule_csv_text
+    from .figures import run_drawings
+    from .html import check_page, write_report
 
     with RunFolder(target) as tmp:
         write_json(tmp / "summary.json", check_summary(result))
         (tmp / "report.txt").write_text(check_text(result))
         write_csv(tmp / "limits.csv", *limits_rows(result.limits))
+        # the schedule as checked, so that the folder is complete (optfeed recipe reads it)
+        (tmp / "schedule.csv").write_text(schedule_csv_text(
+            result.schedule, {f.name: f.unit for f in result.problem.feeds},
+            f"The schedule checked by optfeed check ({result.status}) for {result.problem.name}, "
+            f"from {result.schedule.source or 'code'}.\nRun length: {result.end_time!r} h."))
         if result.trajectory is not None:
             model = build_model(result.problem)
             header, rows = trajectory_table(model, result.trajectory, unique=True)
             write_csv(tmp / "trajectory.csv", header, rows)
-            if figures:
-                _best_effort_figure(tmp, lambda: run_figure(model, result.trajectory, result.use, tmp / "figure.png",
-                                                            title=f"{result.problem.name}: check - {result.status}"))
+        # the shareable report and its figures (optfeed/report/html.py, figures.py)
+        draw = None
+        if figures and result.trajectory is not None:
+            draw = lambda: run_drawings(model, result.trajectory,  # noqa: E731
+                                        title=f"{result.problem.name}: check - {result.status}")
+        write_report(tmp, lambda d, s, note: check_page(result, d, s, note), draw,
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)
 
 
@@ -210,14 +215,15 @@ def optimize_summary(result) -> dict:
 def write_optimize_run(result, target, figures: bool = True) -> Path:
     """Write an optimize result to the run folder ``target`` (must not exist).
 
-    Files: summary.json, report.txt, limits.csv; when there is an answer also
-    schedule.csv (the pump schedule, readable by ``optfeed check --schedule``),
-    trajectory.csv (re-simulated), points.csv (the NLP's collocation points) and
-    figure.png.
+    Files: summary.json, report.txt, limits.csv, report.html; when there is an
+    answer also schedule.csv (the pump schedule, readable by ``optfeed check
+    --schedule``), trajectory.csv (re-simulated), points.csv (the NLP's collocation
+    points) and the figures figure-limits.png, figure-culture.png, figure-feeds.png.
     """
     from ..model import build_model
     from ..schedule import schedule_csv_text
-    from .figures import run_figure
+    from .figures import run_drawings
+    from .html import optimize_page, write_report
     from .text import optimize_text
 
     with RunFolder(target) as tmp:
@@ -238,8 +244,11 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
-            if figures:
-                _best_effort_figure(tmp, lambda: run_figure(
-                    model, result.trajectory, result.verification.use, tmp / "figure.png",
-                    title=f"{result.problem.name}: optimize - {result.status}", points=pts))
+        # the shareable report and its figures (optfeed/report/html.py, figures.py)
+        draw = None
+        if figures and result.trajectory is not None:
+            draw = lambda: run_drawings(model, result.trajectory, points=result.points,  # noqa: E731
+                                        title=f"{result.problem.name}: optimize - {result.status}")
+        write_report(tmp, lambda d, s, note: optimize_page(result, d, s, note), draw,
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)

@@ -8,13 +8,9 @@ import os
 import re
 from pathlib import Path
 
-import matplotlib
+import numpy as np
 
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
-
-from ..report.text import CAUTION, fmt  # noqa: E402
+from ..report.text import CAUTION, fmt
 
 _NUM = re.compile(r"^\s*([-+]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][-+]?[0-9]+)?)\s*(.*)$")
 GOOD = ("optimal, verified", "within limits")
@@ -167,10 +163,15 @@ def write_outputs(sweep, rows, folder: Path) -> None:
     tmp_txt = folder / ".summary.txt.tmp"
     tmp_txt.write_text(summary_text(sweep, rows, best))
     os.replace(tmp_txt, folder / "summary.txt")
-    try:
-        _figures(sweep, rows, best, folder, paths)
-    except Exception as exc:  # noqa: BLE001 - figures are a convenience; the CSV is the record
-        (folder / "figures" / "NOT_DRAWN.txt").write_text(f"figures could not be drawn: {exc}\n")
+    _report(sweep, rows, best, folder, paths)
+
+
+def _report(sweep, rows, best, folder: Path, paths) -> None:
+    """figures/*.png and report.html (figures are a convenience; the CSV is the record)."""
+    from ..report.html import sweep_page, write_report
+
+    write_report(folder, lambda d, s, note: sweep_page(sweep, rows, best, d, s, note),
+                 lambda: sweep_drawings(sweep, rows, best, paths), figure_folder=folder / "figures")
 
 
 def summary_text(sweep, rows, best, top: int = 10) -> str:
@@ -205,87 +206,66 @@ def summary_text(sweep, rows, best, top: int = 10) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _figures(sweep, rows, best, folder: Path, paths) -> None:
-    fig_dir = folder / "figures"
-    fig_dir.mkdir(exist_ok=True)
+def sweep_drawings(sweep, rows, best, paths) -> list:
+    """The figures of a sweep (see :mod:`optfeed.report.figures`): the objective and
+    each limit's smallest margin against every swept value, a heat map for a two-way
+    grid, the ranking, and the best case's feed profile."""
+    from ..frames import case_limits
+    from ..report import figures as F
+
+    out = []
     unit = next((r.get("objective_unit") for r in best if r.get("objective_unit")), "")
     good = [r for r in rows if r["status"] in GOOD and r["objective"] is not None]
-    for k, p in enumerate(paths):
+    answered = [r for r in rows if r["status"] not in PENDING and case_limits(r)]
+    margins = {r["key"]: {d["name"]: (d.get("smallest_slack"), d.get("unit") or "") for d in case_limits(r)}
+               for r in answered}
+    bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in PENDING]
+    for p in paths:
+        xunit = next((number(r["values"].get(p))[1] for r in rows if number(r["values"].get(p))[1]), "")
         xs = [number(r["values"].get(p))[0] for r in good]
-        if not good or all(math.isnan(x) for x in xs):
-            continue
-        xunit = next((number(r["values"].get(p))[1] for r in good if number(r["values"].get(p))[1]), "")
-        fig, ax = plt.subplots(figsize=(6, 4))
-        ax.plot(xs, [r["objective"] for r in good], "o", color="#1f5f8b")
-        bad = [r for r in rows if r["status"] not in GOOD and r["status"] not in PENDING]
-        for r in bad:
-            ax.axvline(number(r["values"].get(p))[0], color="#b03a2e", lw=0.8, alpha=0.5)
-        ax.set_xlabel(f"{p} ({xunit})" if xunit else p)
-        ax.set_ylabel(f"objective ({unit})" if unit else "objective")
-        ax.set_title("objective against " + p + (" (red: no verified answer)" if bad else ""), fontsize=9)
-        ax.grid(alpha=0.3)
-        fig.tight_layout()
-        fig.savefig(fig_dir / f"objective_vs_{k + 1}_{_safe(p)}.png", dpi=100)
-        plt.close(fig)
+        if good and not all(math.isnan(x) for x in xs):
+            out.append(F.objective_against(p, xunit, xs, [r["objective"] for r in good], unit,
+                                           [number(r["values"].get(p))[0] for r in bad]))
+        panels = []
+        names = list(dict.fromkeys(n for r in answered for n in margins[r["key"]]))
+        for name in names:
+            pts = [(number(r["values"].get(p))[0], *margins[r["key"]][name]) for r in answered
+                   if name in margins[r["key"]] and margins[r["key"]][name][0] is not None]
+            pts = [q for q in pts if not math.isnan(q[0])]
+            if not pts or len({round(q[1], 12) for q in pts}) == 1 and len(pts) > 1:
+                continue  # nothing to see: the same margin in every case
+            panels.append((name, pts[0][2], [q[0] for q in pts], [q[1] for q in pts]))
+        if panels:
+            out.append(F.margins_against(p, xunit, panels))
     if len(sweep.grid_paths) == 2:
-        _heatmap(rows, sweep.grid_paths, unit, fig_dir / "heatmap.png")
+        p1, p2 = sweep.grid_paths
+        v1 = sorted({number(r["values"].get(p1))[0] for r in rows})
+        v2 = sorted({number(r["values"].get(p2))[0] for r in rows})
+        z = np.full((len(v2), len(v1)), np.nan)
+        for r in good:
+            z[v2.index(number(r["values"].get(p2))[0]), v1.index(number(r["values"].get(p1))[0])] = r["objective"]
+        out.append(F.heatmap(p1, p2, v1, v2, z, unit))
     if best:
         top = best[:20]
-        fig, ax = plt.subplots(figsize=(7, 0.35 * len(top) + 1.2))
-        ax.barh(range(len(top))[::-1], [r["objective"] for r in top], color="#1f5f8b")
-        ax.set_yticks(range(len(top))[::-1], [r["label"][:60] for r in top], fontsize=7)
-        ax.set_xlabel(f"objective ({unit})" if unit else "objective")
-        ax.set_title("ranking (verified answers)", fontsize=9)
-        fig.tight_layout()
-        fig.savefig(fig_dir / "ranking.png", dpi=100)
-        plt.close(fig)
-        _best_feed(best[0], fig_dir / "best_feed.png")
+        out.append(F.ranking([r["label"] for r in top], [r["objective"] for r in top], unit))
+        feed = _best_feed(best[0])
+        if feed is not None:
+            out.append(feed)
+    return out
 
 
-def _heatmap(rows, grid_paths, unit, path) -> None:
-    p1, p2 = grid_paths
-    v1 = sorted({number(r["values"].get(p1))[0] for r in rows})
-    v2 = sorted({number(r["values"].get(p2))[0] for r in rows})
-    z = np.full((len(v2), len(v1)), np.nan)
-    for r in rows:
-        if r["status"] in GOOD and r["objective"] is not None:
-            z[v2.index(number(r["values"].get(p2))[0]), v1.index(number(r["values"].get(p1))[0])] = r["objective"]
-    fig, ax = plt.subplots(figsize=(6, 4.5))
-    im = ax.imshow(z, origin="lower", aspect="auto", cmap="viridis")
-    ax.set_xticks(range(len(v1)), [fmt(v) for v in v1], fontsize=7)
-    ax.set_yticks(range(len(v2)), [fmt(v) for v in v2], fontsize=7)
-    ax.set_xlabel(p1)
-    ax.set_ylabel(p2)
-    fig.colorbar(im, ax=ax, label=f"objective ({unit})" if unit else "objective")
-    ax.set_title("objective over the grid (blank: no verified answer)", fontsize=9)
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
+def _best_feed(row):
+    from ..report.figures import feed_profile
 
-
-def _best_feed(row, path) -> None:
     sched = Path(row["run_dir"] or "") / "schedule.csv"
     traj = Path(row["run_dir"] or "") / "trajectory.csv"
     src = sched if sched.exists() else traj
-    if not src.exists():
-        return
+    if not row["run_dir"] or not src.exists():
+        return None
     lines = [l for l in src.read_text().splitlines() if l and not l.startswith("#")]
     header = next(csv.reader([lines[0]]))
     data = np.array([[float(x) for x in next(csv.reader([l]))] for l in lines[1:]])
-    fig, ax = plt.subplots(figsize=(7, 3.5))
     feed_cols = [i for i, h in enumerate(header[1:], 1) if "growth" not in h]
     if src is traj:
         feed_cols = [i for i, h in enumerate(header) if h.endswith("/h]") and "mmol" not in h and i > 0][:4]
-    for i in feed_cols:
-        ax.step(data[:, 0], data[:, i], where="post", label=header[i])
-    ax.set_xlabel(header[0])
-    ax.set_title(f"feed profile of the best case: {row['label']}", fontsize=9)
-    ax.legend(fontsize=7)
-    ax.grid(alpha=0.3)
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
-
-
-def _safe(text: str) -> str:
-    return re.sub(r"[^A-Za-z0-9_]+", "_", text)[:60]
+    return feed_profile(row["label"], data[:, 0], {header[i]: data[:, i] for i in feed_cols})

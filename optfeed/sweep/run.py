@@ -63,6 +63,13 @@ class SweepResult:
             return 130
         return 0 if self.status == "finished" and self.failed == 0 else 1
 
+    def cases_frame(self):
+        """One row per case as a pandas DataFrame: swept values (units in the header),
+        status, objective, each limit's smallest margin (optfeed.frames; needs pandas)."""
+        from ..frames import cases_frame
+
+        return cases_frame(self)
+
 
 # statuses of a case that did not get an answer (limit broken and infeasible are answers)
 BAD = ("failed", "error", "time limit", "simulation failed", "iteration limit", "converged, not verified", NOT_RUN)
