@@ -1,45 +1,64 @@
 """The fit job: calibrate a problem's parameters against past runs.
 
-1. Every run is transcribed by the collocation blocks of :mod:`.transcription`, all in
+1. Guesses: the given start, then Latin-hypercube points within the bounds
+   (log-spaced where a bound spans a decade or more). Each point of a larger
+   Latin-hypercube sample is simulated (CVODES, values at the sampling times only)
+   and the points that fit the data best become the starts, so that the NLP solves
+   begin near the data rather than anywhere in the box.
+2. Every run is transcribed by the collocation blocks of :mod:`.transcription`, all in
    one NLP sharing the estimated parameters (the simultaneous approach), and solved
-   with IPOPT from several parameter guesses: the given start, then Latin-hypercube
-   points within the bounds (log-spaced where a bound spans a decade or more).
-2. The best answer is polished on the runs' exact re-simulation (CVODES) by
-   Gauss-Newton steps, which removes what remains of the collocation error; the
-   residuals reported are the re-simulation's, as optimize verifies its answers.
-3. The statistics of :mod:`.statistics`: covariance, intervals, correlation,
-   identifiability, goodness of fit; profile likelihood intervals on request.
+   with IPOPT from each start.
+3. The best answer is polished on the runs' exact re-simulation by Levenberg-Marquardt
+   steps whose Jacobian comes from the CVODES sensitivity equations: this removes what
+   remains of the collocation error, so the estimates are those of the model, not of
+   its discretisation. The residuals reported are the re-simulation's, as optimize
+   verifies its answers. The fit is 'fitted' when the polish ends at a stationary
+   point of the re-simulated weighted least squares.
+4. The statistics of :mod:`.statistics` from the exact Jacobian: covariance,
+   intervals, correlation, identifiability, goodness of fit; profile likelihood
+   intervals on request (each point re-estimates the other parameters on the
+   re-simulated runs).
 """
 
 from __future__ import annotations
 
-import math
 import time
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .. import status as st
+from ..errors import SimulationError
 from ..model import build_model
 from ..problem.dotted import as_problem
 from ..provenance import problem_digest, stamp
 from ..simulate import Simulator
 from ..solve import interrupt_guard, interrupted, solve
+from ..units import factor_to
 from .runs import Runs, load_runs
-from .simulate import measured_model_values, simulate_run
+from .simulate import Sampler, simulate_run
 from .statistics import Statistics, uncertainty, verdict
-from .transcription import FitData, FitNLP
+from .transcription import get_fit_nlp
 
 FITTED = "fitted"
 NOT_CONVERGED = "not converged"
-ELEMENTS_PER_RUN = 40
-POLISH_STEPS = 8
-FD_STEP = 1e-5
+FAILED = "failed"
+ELEMENTS_PER_RUN = 100    # collocation elements across a run (at least one per stretch)
+NLP_TOLERANCE = 1e-8
+POLISH_ITERATIONS = 60
+STATIONARY = 1e-9         # the polish ends when a Gauss-Newton step would gain less than this (relative chi-square)
 
 
 @dataclass(frozen=True)
 class Estimate:
-    """One estimated parameter (values in ``unit``, the problem file's own)."""
+    """One estimated parameter; every value (plain floats) in ``unit``, the problem
+    file's own (or the runs file's where the problem wrote none).
+
+    value, se : the estimate and its standard error; ci_low, ci_high : its 95 %
+    confidence interval (t distribution); start, lower, upper : its start and bounds;
+    profile_low, profile_high : the 95 % profile likelihood interval (None when not
+    computed, or when the profile does not cross the threshold within the bounds).
+    """
 
     name: str
     unit: str
@@ -61,8 +80,9 @@ class FitResult:
     Attributes
     ----------
     status : str
-        'fitted' (converged and polished on the re-simulation), 'not converged', or
-        'failed'.
+        'fitted' (the re-simulated weighted least squares is at a stationary point),
+        'not converged' (no start gave an answer, or the polish did not settle), or
+        'failed' (no guess could even be simulated).
     message : str
     problem : Problem
     runs : Runs
@@ -72,16 +92,17 @@ class FitResult:
     verdict : str
         Goodness of fit in words.
     flags : tuple of str
-        Identifiability warnings in words.
+        Identifiability warnings (and other cautions about the fit) in words.
     residuals : list of dict
         Per run and quantity: count, mean and RMS of the weighted residuals (from the
-        re-simulation), and the measured and fitted values.
+        re-simulation), and the times, measured and fitted values and sigma
+        (internal units).
     trajectories : list
         Per run, the re-simulated Trajectory at the estimates.
     starts : list of dict
-        Every start: its guess, status, objective (chi-square), iterations.
+        Every start: where it came from, its guess, status, chi-square, iterations.
     spread : float or None
-        Relative spread of chi-square over converged starts.
+        Relative spread of chi-square over the converged starts.
     nlp_chi2, chi2 : float
         Chi-square of the NLP answer and of the polished, re-simulated one.
     seconds : float
@@ -107,7 +128,14 @@ class FitResult:
 
     @property
     def exit_code(self) -> int:
-        return st.EXIT_OK if self.status == FITTED else (st.EXIT_FAILED if self.status == "failed" else st.EXIT_NOT_OK)
+        if self.status == FITTED:
+            return st.EXIT_OK
+        return st.EXIT_FAILED if self.status == FAILED else st.EXIT_NOT_OK
+
+    @property
+    def values(self) -> dict:
+        """name -> estimate (in its unit)."""
+        return {e.name: e.value for e in self.estimates}
 
     def __repr__(self) -> str:
         est = ", ".join(f"{e.name}={e.value:.4g}±{e.se:.2g} {e.unit}".rstrip() for e in self.estimates)
@@ -122,11 +150,13 @@ class _Fitter:
         self.model = build_model(problem)
         self.sim = Simulator(self.model)
         self.names = [e.name for e in runs.estimates]
+        self.sampler = Sampler(self.model, self.names)
         self.index = [self.model.constant_index(n) for n in self.names]
         self.lower = np.array([e.lower for e in runs.estimates])
         self.upper = np.array([e.upper for e in runs.estimates])
         self.start = np.array([e.start for e in runs.estimates])
         self.scale = np.maximum(np.abs(self.start), 1e-12)
+        self.simulations = 0
 
     def sigma(self, quantity, y):
         e = self.runs.errors[quantity]
@@ -138,47 +168,118 @@ class _Fitter:
         return c
 
     def simulate(self, theta):
+        """Every run densely re-simulated at ``theta`` (for figures and NLP guesses)."""
         return [simulate_run(self.sim, run, self.constants(run, theta)) for run in self.runs.runs]
 
-    def residuals(self, theta, trajectories=None):
-        """Weighted residuals of the exact re-simulation at ``theta``, in the order
-        the NLP measures them (run, sampling time, quantity)."""
-        trajectories = trajectories or self.simulate(theta)
-        out = []
-        for run, traj in zip(self.runs.runs, trajectories):
-            values = measured_model_values(self.model, run, traj, self.constants(run, theta))
+    def residuals(self, theta, jacobian: bool = False):
+        """Weighted residuals (model - measured) / sigma of the exact re-simulation at
+        ``theta``, in the order the NLP measures them (run, sampling time, quantity);
+        with ``jacobian`` also their derivatives (n, p) from the sensitivities.
+
+        Raises SimulationError where the integrator cannot follow a run."""
+        out, jac = [], []
+        for run in self.runs.runs:
+            self.simulations += 1
+            values, der = self.sampler.values(run, self.constants(run, theta), jacobian)
             for k in range(len(run.times)):
                 for q, y in run.values.items():
                     if np.isfinite(y[k]):
-                        out.append((values[q][k] - y[k]) / float(self.sigma(q, [y[k]])[0]))
-        return np.array(out)
+                        s = float(self.sigma(q, [y[k]])[0])
+                        out.append((values[q][k] - y[k]) / s)
+                        if jacobian:
+                            jac.append(der[q][k] / s)
+        r = np.array(out)
+        if not jacobian:
+            return r
+        return r, np.array(jac).reshape(len(r), len(theta))
 
-    def jacobian(self, theta):
-        """Central differences of the re-simulated weighted residuals."""
-        cols = []
-        for j in range(len(theta)):
-            h = FD_STEP * max(abs(theta[j]), self.scale[j])
-            up, down = theta.copy(), theta.copy()
-            up[j] = min(theta[j] + h, self.upper[j])
-            down[j] = max(theta[j] - h, self.lower[j])
-            cols.append((self.residuals(up) - self.residuals(down)) / (up[j] - down[j]))
-        return np.column_stack(cols)
+    def chi2(self, theta) -> float:
+        """Chi-square of the re-simulation at ``theta`` (inf where it cannot be simulated)."""
+        try:
+            r = self.residuals(theta)
+        except SimulationError:
+            return float("inf")
+        value = float(r @ r)
+        return value if np.isfinite(value) else float("inf")
 
-    def guesses(self):
-        """The given start, then Latin-hypercube points within the bounds."""
-        k = self.runs.starts - 1
-        out = [self.start.copy()]
+    def latin_hypercube(self, k: int, seed: int) -> list:
+        """``k`` Latin-hypercube points within the bounds (log-spaced where a bound spans
+        a decade or more)."""
         if k <= 0:
-            return out
-        rng = np.random.default_rng(self.runs.seed)
+            return []
+        rng = np.random.default_rng(seed)
         u = (np.array([rng.permutation(k) for _ in self.names]).T + rng.uniform(size=(k, len(self.names)))) / k
         log = (self.lower > 0) & (self.upper / np.where(self.lower > 0, self.lower, 1.0) >= 10)
         lo = np.where(log, np.log(np.where(self.lower > 0, self.lower, 1.0)), self.lower)
         hi = np.where(log, np.log(np.where(self.upper > 0, self.upper, 1.0)), self.upper)
-        for row in u:
-            v = lo + row * (hi - lo)
-            out.append(np.where(log, np.exp(v), v))
+        return [np.where(log, np.exp(lo + row * (hi - lo)), lo + row * (hi - lo)) for row in u]
+
+    def guesses(self):
+        """[(label, theta)]: the given start, then Latin-hypercube points."""
+        out = [("the given start", self.start.copy())]
+        points = self.latin_hypercube(self.runs.starts - 1, self.runs.seed)
+        out += [(f"Latin-hypercube guess {i + 1}", th) for i, th in enumerate(points)]
         return out
+
+    def polish(self, theta, fixed=None, max_iterations: int = POLISH_ITERATIONS):
+        """Levenberg-Marquardt on the re-simulated residuals from ``theta``, within the
+        bounds; parameters where ``fixed`` is True stay where they are.
+
+        Returns (theta, residuals, jacobian, converged, iterations)."""
+        theta = np.clip(np.asarray(theta, dtype=float), self.lower, self.upper)
+        fixed = np.zeros(len(theta), bool) if fixed is None else np.asarray(fixed, bool)
+        r, J = self.residuals(theta, jacobian=True)
+        lam = 1e-3
+        converged = False
+        it = 0
+        for it in range(1, max_iterations + 1):
+            if interrupted():
+                raise KeyboardInterrupt
+            cost = float(r @ r)
+            g = J.T @ r
+            # a parameter on a bound whose gradient points out of the box stays there
+            free = ~fixed & ~((theta <= self.lower) & (g > 0)) & ~((theta >= self.upper) & (g < 0))
+            if not free.any():
+                converged = True
+                break
+            Jf, gf = J[:, free], g[free]
+            A = Jf.T @ Jf
+            d = np.maximum(np.diag(A), 1e-300)
+            try:
+                gn = np.linalg.lstsq(Jf, -r, rcond=None)[0]
+            except np.linalg.LinAlgError:
+                gn = np.zeros(free.sum())
+            if -(gf @ gn) <= STATIONARY * max(cost, 1.0):
+                converged = True
+                break
+            improved = False
+            while lam < 1e12:
+                try:
+                    step = np.linalg.solve(A + lam * np.diag(d), -gf)
+                except np.linalg.LinAlgError:
+                    lam *= 10
+                    continue
+                trial = theta.copy()
+                trial[free] = np.clip(theta[free] + step, self.lower[free], self.upper[free])
+                try:
+                    rt, Jt = self.residuals(trial, jacobian=True)
+                except SimulationError:
+                    lam *= 10
+                    continue
+                if np.all(np.isfinite(rt)) and rt @ rt < cost:
+                    gain = cost - float(rt @ rt)
+                    theta, r, J = trial, rt, Jt
+                    lam = max(lam / 5, 1e-9)
+                    improved = True
+                    break
+                lam *= 10
+            if not improved:
+                converged = True  # no step gains anything: a (bounded) stationary point
+                break
+            if gain <= 1e-15 * max(cost, 1.0):
+                converged = True
+                break
+        return theta, r, J, converged, it
 
 
 def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None = None) -> FitResult:
@@ -189,9 +290,10 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     problem : Problem or path
     runs : path of a runs file (see :mod:`optfeed.fit.runs`) or a Runs
     profile : bool
-        Also compute profile likelihood intervals (one re-estimation per point).
+        Also compute profile likelihood intervals (each point re-estimates the other
+        parameters on the re-simulated runs).
     on_progress : callable, optional
-        ``on_progress(text)``.
+        ``on_progress(text)``, a line for people at each stage.
     set : dict, optional
         Overrides of the problem by dotted path, as in sweep files.
 
@@ -203,12 +305,17 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     ------
     InputError
         For a bad problem, runs or data file.
+
+    Example
+    -------
+    >>> import optfeed
+    >>> r = optfeed.fit("configs/inhibited_product.yaml", "configs/inhibited_product_runs.yaml")
+    >>> r.status, r.values                                   # doctest: +SKIP
     """
     t0 = time.perf_counter()
     problem = as_problem(problem, set)
-    model = build_model(problem)
     if not isinstance(runs, Runs):
-        runs = load_runs(runs, problem, model)
+        runs = load_runs(runs, problem, build_model(problem))
     with interrupt_guard():
         return _fit(problem, runs, profile, on_progress or (lambda text: None), t0)
 
@@ -224,144 +331,172 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         base.update(kw)
         return FitResult(**base)
 
-    first = job.simulate(job.start)
+    guesses = job.guesses()
+    first = None
+    for _, theta in guesses:  # the unmeasured states of every guess come from one simulation
+        try:
+            first = job.simulate(theta)
+            break
+        except SimulationError:
+            continue
+    if first is None:
+        return result(FAILED, "the runs cannot be simulated at the start values nor at any guess within the bounds: "
+                      "check the initial values, the schedules and the bounds",
+                      starts=[{"from": label, "guess": _floats(th), "status": "not run",
+                               "message": "its simulation failed"} for label, th in guesses])
     xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in first], axis=0)
-    data = FitData(job.lower, job.upper, job.scale, np.where(xs > 1e-9, xs, 1.0))
-    nlp = FitNLP(job.model, runs.runs, job.names, job.sigma, ELEMENTS_PER_RUN)
-    starts, best = [], None
-    for k, theta in enumerate(job.guesses()):
+    progress("building the calibration NLP")
+    nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)
+    data = nlp.data(runs.runs, job.sigma, job.lower, job.upper, job.scale, np.where(xs > 1e-9, xs, 1.0))
+    starts, best, best_theta = [], None, None
+    for k, (label, theta) in enumerate(guesses):
         if interrupted():
             raise KeyboardInterrupt
-        label = "the given start" if k == 0 else f"Latin-hypercube guess {k}"
-        try:
-            trajs = first if k == 0 else job.simulate(theta)
-        except Exception as exc:  # noqa: BLE001 - a guess the integrator cannot follow is skipped
-            starts.append({"from": label, "guess": theta.tolist(), "status": "not run",
-                           "message": f"its simulation failed: {exc}"})
-            continue
-        w0 = nlp.pack(data, theta, trajs)
-        s = solve(nlp, data, w0, label, profile="cold", tolerance=1e-10, max_iter=1500)
-        if s.status != "converged":
-            s2 = solve(nlp, data, w0, label + " (adaptive barrier)", profile="adaptive", tolerance=1e-10,
+        w0 = nlp.pack(data, runs.runs, theta, first)
+        s = solve(nlp, data, w0, label, profile="cold", tolerance=NLP_TOLERANCE, max_iter=1500)
+        if s.status not in ("converged", "interrupted"):
+            s2 = solve(nlp, data, w0, label + " (adaptive barrier)", profile="adaptive", tolerance=NLP_TOLERANCE,
                        max_iter=1500)
-            if s2.status == "converged" or s.status != "converged":
-                s2.iterations += s.iterations
+            s2.iterations += s.iterations
+            s2.seconds += s.seconds
+            if s2.status == "converged" or (s2.objective or np.inf) < (s.objective or np.inf):
                 s = s2
+        if s.status == "interrupted" or interrupted():
+            raise KeyboardInterrupt
         chi2 = None if s.objective is None else 2.0 * s.objective
-        starts.append({"from": label, "guess": theta.tolist(), "status": s.status, "chi2": chi2,
-                       "iterations": s.iterations, "seconds": s.seconds,
-                       "estimate": nlp.theta(s.w, data).tolist() if s.w.size else None})
-        progress(f"start {k + 1}/{runs.starts}: {s.status}" + ("" if chi2 is None else f", chi-square {chi2:.6g}"))
-        if s.status == "converged" and s.objective is not None and (best is None or s.objective < best.objective):
-            best = s
+        estimate = np.clip(nlp.theta(s.w, data), job.lower, job.upper) if s.w.size else None
+        starts.append({"from": label, "guess": _floats(theta), "status": s.status, "chi2": chi2,
+                       "iterations": int(s.iterations), "seconds": float(s.seconds),
+                       "estimate": None if estimate is None else _floats(estimate)})
+        progress(f"start {k + 1}/{len(guesses)}: {s.status}" + ("" if chi2 is None else f", chi-square {chi2:.6g}"))
+        if s.objective is not None and (best is None or (s.status == "converged", -s.objective) >
+                                        (best.status == "converged", -best.objective)):
+            best, best_theta = s, estimate
     if best is None:
-        return result(NOT_CONVERGED, "no start converged: widen the bounds, give a better start, or check "
+        return result(NOT_CONVERGED, "no start gave an answer: widen the bounds, give a better start, or check "
                       "that the data and the model describe the same runs", starts=starts)
     values = [s["chi2"] for s in starts if s.get("status") == "converged"]
     spread = (max(values) - min(values)) / max(min(values), 1e-300) if len(values) > 1 else 0.0
-    theta = np.clip(nlp.theta(best.w, data), job.lower, job.upper)
     nlp_chi2 = 2.0 * best.objective
 
-    # polish on the exact re-simulation (Gauss-Newton with halving steps, within the bounds)
-    progress("polishing on the re-simulated runs")
-    r = job.residuals(theta)
-    for _ in range(POLISH_STEPS):
-        J = job.jacobian(theta)
-        step = np.linalg.lstsq(J, -r, rcond=None)[0]
-        improved = False
-        for alpha in (1.0, 0.5, 0.25, 0.125):
-            trial = np.clip(theta + alpha * step, job.lower, job.upper)
-            rt = job.residuals(trial)
-            if rt @ rt < r @ r:
-                theta, r, improved = trial, rt, True
-                break
-        if not improved or np.max(np.abs(alpha * step) / job.scale) < 1e-10:
-            break
-    J = job.jacobian(theta)
+    progress("polishing on the re-simulated runs (Levenberg-Marquardt, CVODES sensitivities)")
+    try:
+        theta, r, J, settled, polish_iterations = job.polish(best_theta)
+    except SimulationError as exc:
+        return result(NOT_CONVERGED, f"the best answer of the NLP cannot be re-simulated: {exc}", starts=starts,
+                      spread=spread, nlp_chi2=nlp_chi2)
     stats_ = uncertainty(job.names, theta, J, r, runs.trusted)
+    moved = np.abs(theta - best_theta) / np.where(stats_.se > 0, stats_.se, np.inf)
+    record["elements_per_run"] = ELEMENTS_PER_RUN
+    record["polish"] = {"nlp_chi2": nlp_chi2, "chi2": stats_.chi2, "iterations": polish_iterations,
+                        "moved_standard_errors": float(np.max(moved)) if moved.size else 0.0}
+    record["simulations"] = job.simulations
+    flags = list(stats_.flags)
     at_bound = [n for n, v, lo, hi in zip(job.names, theta, job.lower, job.upper)
                 if min(v - lo, hi - v) <= 1e-6 * max(abs(hi - lo), 1e-300)]
-    flags = list(stats_.flags) + [f"{n} ended at a bound of its range: widen the range or read it as a limit, "
-                                  "not an estimate" for n in at_bound]
+    flags += [f"{n} ended at a bound of its range: widen the range or read it as a limit, not an estimate"
+              for n in at_bound]
     trajs = job.simulate(theta)
     for run, traj in zip(runs.runs, trajs):
         for sp in problem.species:
             x = traj.state(sp.name)
-            if x.min() < -1e-6 * max(np.abs(x).max(), 1e-12):
-                k = int(np.argmax(x < -1e-6 * max(np.abs(x).max(), 1e-12)))
+            tol = 1e-6 * max(np.abs(x).max(), 1e-12)
+            if x.min() < -tol:
+                k = int(np.argmax(x < -tol))
                 flags.append(f"at the estimates the model drives {sp.name} below zero in run {run.name!r} "
                              f"from {traj.t[k]:.3g} h: check the model (an uptake that goes on without substrate?)")
-    profiles = _profiles(job, nlp, data, best, theta, stats_, progress) if profile else {}
+    profiles = _profiles(job, theta, stats_, progress) if profile else {}
     estimates = []
-    from ..units import factor_to
-
     for i, e in enumerate(runs.estimates):
         f = factor_to(e.unit) if e.unit else 1.0
         pl, ph = profiles.get(e.name, (None, None))
-        estimates.append(Estimate(e.name, e.unit, theta[i] * f, stats_.se[i] * f, stats_.ci_low[i] * f,
-                                  stats_.ci_high[i] * f, e.start * f, e.lower * f, e.upper * f,
-                                  None if pl is None else pl * f, None if ph is None else ph * f))
-    residuals = _residual_table(job, theta, trajs)
-    change = abs(stats_.chi2 - nlp_chi2) / max(nlp_chi2, 1e-300)
-    record["elements_per_run"] = ELEMENTS_PER_RUN
-    record["polish"] = {"nlp_chi2": nlp_chi2, "chi2": stats_.chi2, "relative_change": change}
-    message = (f"{len(estimates)} parameter(s) from {runs.n_samples} measured values in {len(runs.runs)} run(s); "
-               f"{verdict(stats_, runs.trusted)}")
+        estimates.append(Estimate(e.name, e.unit, *(float(v * f) for v in (
+            theta[i], stats_.se[i], stats_.ci_low[i], stats_.ci_high[i], e.start, e.lower, e.upper)),
+            None if pl is None else float(pl * f), None if ph is None else float(ph * f)))
+    residuals = _residual_table(job, theta)
+    status = FITTED if settled else NOT_CONVERGED
+    head = (f"{len(estimates)} parameter(s) from {runs.n_samples} measured values in {len(runs.runs)} run(s)"
+            if settled else f"the polish on the re-simulated runs did not settle in {polish_iterations} steps; "
+            "the values below are the last ones reached")
+    message = f"{head}; {verdict(stats_, runs.trusted)}"
     if flags:
-        message += f"; {len(flags)} identifiability warning(s)"
-    return result(FITTED, message, estimates=tuple(estimates), statistics=stats_, verdict=verdict(stats_, runs.trusted),
+        message += f"; {len(flags)} warning(s) about what the data can tell"
+    return result(status, message, estimates=tuple(estimates), statistics=stats_, verdict=verdict(stats_, runs.trusted),
                   flags=tuple(flags), residuals=residuals, trajectories=trajs, starts=starts, spread=spread,
                   nlp_chi2=nlp_chi2, chi2=stats_.chi2)
 
 
-def _residual_table(job, theta, trajs) -> list:
+def _floats(v) -> list:
+    return [float(x) for x in np.asarray(v, dtype=float).ravel()]
+
+
+def _residual_table(job, theta) -> list:
     out = []
-    for run, traj in zip(job.runs.runs, trajs):
-        values = measured_model_values(job.model, run, traj, job.constants(run, theta))
+    for run in job.runs.runs:
+        values, _ = job.sampler.values(run, job.constants(run, theta))
         for q, y in run.values.items():
             ok = np.isfinite(y)
-            w = (values[q][ok] - y[ok]) / job.sigma(q, y[ok])
+            sig = job.sigma(q, y[ok])
+            w = (values[q][ok] - y[ok]) / sig
             out.append({"run": run.name, "quantity": q, "count": int(ok.sum()),
                         "mean": float(w.mean()) if ok.any() else None,
                         "rms": float(np.sqrt((w ** 2).mean())) if ok.any() else None,
-                        "times": run.times[ok].tolist(), "measured": y[ok].tolist(),
-                        "fitted": values[q][ok].tolist(), "sigma": job.sigma(q, y[ok]).tolist()})
+                        "times": _floats(run.times[ok]), "measured": _floats(y[ok]),
+                        "fitted": _floats(values[q][ok]), "sigma": _floats(sig)})
     return out
 
 
-def _profiles(job, nlp, data, best, theta, stats_, progress) -> dict:
-    """Profile likelihood 95 % interval of each parameter (internal units): the others
-    re-estimated at each fixed value, warm-started from the neighbour."""
+def _profiles(job, theta, stats_, progress) -> dict:
+    """Profile likelihood 95 % interval of each parameter (internal units): at each
+    fixed value the others are re-estimated on the re-simulated runs (warm from the
+    neighbouring point); the end is where chi-square has risen by the 95 % quantile
+    of chi-square with one degree of freedom (times s^2 for a scaled error model),
+    found by interpolating the signed root of the rise and refining it."""
     from scipy import stats
 
     threshold = float(stats.chi2.ppf(0.95, 1)) * stats_.scale
-    base = 2.0 * best.objective
+    base = stats_.chi2
     out = {}
     for j, name in enumerate(job.names):
-        progress(f"profile of {name}")
+        progress(f"profile likelihood of {name}")
+        fixed = np.zeros(len(theta), bool)
+        fixed[j] = True
+
+        def rise(v, warm):
+            trial = warm.copy()
+            trial[j] = v
+            th, r, _, _, _ = job.polish(trial, fixed=fixed, max_iterations=30)
+            return max(float(r @ r) - base, 0.0), th
+
         ends = []
         for direction in (-1.0, 1.0):
-            step = stats_.se[j] if np.isfinite(stats_.se[j]) and stats_.se[j] > 0 else 0.1 * abs(theta[j])
-            step = max(step, 1e-6 * job.scale[j]) * 0.5
-            w, prev_v, prev_d, found = best.w, theta[j], 0.0, None
+            se = stats_.se[j]
+            step = se if np.isfinite(se) and se > 0 else 0.1 * max(abs(theta[j]), job.scale[j])
+            step = max(step, 1e-6 * job.scale[j])
+            prev_v, prev_d, warm, found = theta[j], 0.0, theta.copy(), None
             for _ in range(30):
-                v = theta[j] + direction * step
-                v = min(max(v, job.lower[j]), job.upper[j])
-                lo, hi = data.lower.copy(), data.upper.copy()
-                lo[j] = hi[j] = v
-                d2 = FitData(lo, hi, data.scale, data.x_scale)
-                w0 = w.copy()
-                nlp.W.put(w0, "theta", np.clip(nlp.W.get(w0, "theta").ravel(), lo / data.scale, hi / data.scale))
-                s = solve(nlp, d2, w0, f"profile {name}", profile="cold", tolerance=1e-10, max_iter=800)
-                if s.status != "converged":
+                v = min(max(prev_v + direction * step, job.lower[j]), job.upper[j])
+                if v == prev_v:
                     break
-                d = 2.0 * s.objective - base
+                try:
+                    d, th = rise(v, warm)
+                except SimulationError:
+                    break
                 if d >= threshold:
-                    found = prev_v + (v - prev_v) * (threshold - prev_d) / (d - prev_d)
+                    # the signed root of the rise is close to linear in the parameter
+                    a, b, lo_v, hi_v = np.sqrt(prev_d), np.sqrt(d), prev_v, v
+                    for _refine in range(3):
+                        guess = lo_v + (hi_v - lo_v) * (np.sqrt(threshold) - a) / (b - a)
+                        dg, thg = rise(guess, warm)
+                        if abs(np.sqrt(dg) - np.sqrt(threshold)) < 1e-3 * np.sqrt(threshold):
+                            break
+                        if dg < threshold:
+                            lo_v, a, warm = guess, np.sqrt(dg), thg
+                        else:
+                            hi_v, b = guess, np.sqrt(dg)
+                    found = float(guess)
                     break
-                if v in (job.lower[j], job.upper[j]):
-                    break
-                w, prev_v, prev_d = s.w, v, d
+                prev_v, prev_d, warm = v, d, th
                 step *= 1.6
             ends.append(found)
         out[name] = (ends[0], ends[1])

@@ -7,9 +7,9 @@ measured quantity, and the runs::
       mu_max: {min: 0.2 1/h, max: 1.2 1/h, start: 0.5 1/h}
       K_s: {min: 0.005 g/L, max: 2 g/L}          # start: the problem file's value
     errors:                            # per measured quantity (default below)
-      X: {absolute: 0.05 g/L, relative: 5 %}
+      X: {absolute: 0.05 g/L, relative: 5 %}   # a bare absolute error is in the data column's unit
     error_model: trusted               # or: scaled (default: trusted if 'errors' is given)
-    starts: 6                          # multistart from Latin-hypercube guesses (seed below)
+    starts: 4                          # NLP solves: the given start, then Latin-hypercube guesses
     seed: 1
     runs:
       - name: batch
@@ -22,6 +22,12 @@ measured quantity, and the runs::
         feeds: {glucose: {S: 300 g/L}} # feed compositions that differed
         sample_volume: 10 mL           # taken out at every sampling time (optional)
         end_time: 30 h                 # default: the last sampling time
+
+A bare number (no unit) in ``estimate``, a run's ``parameters`` or ``feeds`` is in
+the unit the problem file writes that value in (internal units where the problem
+file writes a bare number too); an absolute error without a unit is in the unit of
+that quantity's data column (or its species'). A written unit must have the right
+dimension.
 
 Data CSV: a header ``time [h], X [g/L], S [g/L], OUR [mmol/L/h]`` (any species, ``V``,
 a named rate, ``OUR`` or ``heat_load``, each with its unit), empty cells for samples
@@ -48,10 +54,11 @@ from ..model import Model, composition_name
 from ..paths import inside
 from ..problem.yamlio import key_text, read_yaml
 from ..schedule import Schedule, load_schedule, piecewise_constant
-from ..units import describe, parse_quantity, to_internal, written_unit
+from ..units import describe, factor_to, parse_quantity, to_internal, written_unit
 
 DEFAULT_ABSOLUTE = 0.02  # of the largest measured value of the quantity
 DEFAULT_RELATIVE = 0.05
+DEFAULT_STARTS = 4  # as optimize's solver.starts; each start is one NLP solve
 MAX_RUNS = 200
 _KEYS = {"estimate", "errors", "error_model", "starts", "seed", "runs", "description"}
 _RUN_KEYS = {"name", "data", "schedule", "initial", "parameters", "feeds", "sample_volume", "end_time"}
@@ -167,7 +174,7 @@ def load_runs(path, problem, model: Model) -> Runs:
             fail((), f"'{k}' is missing")
     stop()
     estimates = _estimates(data["estimate"], problem, fail)
-    starts, seed = data.get("starts", 6), data.get("seed", 1)
+    starts, seed = data.get("starts", DEFAULT_STARTS), data.get("seed", 1)
     if isinstance(starts, bool) or not isinstance(starts, int) or not 1 <= starts <= 64:
         fail(("starts",), f"a whole number of starts from 1 to 64 is needed, got {starts!r}")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
@@ -189,7 +196,7 @@ def load_runs(path, problem, model: Model) -> Runs:
             runs.append(run)
     stop()
     quantities = tuple(dict.fromkeys(q for r in runs for q in r.values))
-    errors = _errors(data.get("errors", {}), quantities, runs, model, fail)
+    errors = _errors(data.get("errors", {}), quantities, runs, problem, fail)
     model_word = data.get("error_model", "trusted" if "errors" in data else "scaled")
     if model_word not in ("trusted", "scaled"):
         fail(("error_model",), f"expected 'trusted' or 'scaled', got {model_word!r}")
@@ -223,28 +230,22 @@ def _estimates(spec, problem, fail) -> list[Estimate]:
             if k not in b:
                 continue
             try:
-                q = parse_quantity(b[k], "any")
-                value = to_internal(q)
+                got[k] = value_in(b[k], unit, name)
             except ValueError as exc:
                 fail(loc + (k,), str(exc))
-                continue
-            if unit and written_unit(b[k], "any"):
-                ref = parse_quantity(f"1 {unit}", "any")
-                if ref.dimensionality != q.dimensionality:
-                    fail(loc + (k,), f"{b[k]!r} has dimension {describe(q.dimensionality)}, but {name!r} is in "
-                                     f"{describe(ref.dimensionality)}")
-                    continue
-            got[k] = value
         if "min" in got and "max" in got:
             if got["min"] >= got["max"]:
                 fail(loc, f"min {b['min']!r} is not below max {b['max']!r}")
                 continue
             start = got.get("start", problem.parameters[name])
+            shown = unit or written_unit(b["min"], "any")
             if not got["min"] <= start <= got["max"]:
-                fail(loc + ("start",), f"the start value ({start:g} internal units) lies outside min..max"
+                f = factor_to(shown) if shown else 1.0
+                fail(loc + ("start",), f"the start value ({start * f:g} {shown or 'internal units'}) lies outside "
+                     f"min..max ({got['min'] * f:g} .. {got['max'] * f:g})"
                      + ("" if "start" in got else " (the problem file's value is the default start)"))
                 continue
-            out.append(Estimate(name, got["min"], got["max"], start, unit or written_unit(b["min"], "any")))
+            out.append(Estimate(name, got["min"], got["max"], start, shown))
     return out
 
 
@@ -297,7 +298,7 @@ def _run(r, i, base, path, lines, problem, model, fail) -> Run | None:
             fail(kloc, f"{pname!r} is not a parameter of the problem")
             continue
         try:
-            constants[model.constant_index(pname)] = to_internal(parse_quantity(value, "any"))
+            constants[model.constant_index(pname)] = value_in(value, problem.parameter_units.get(pname, ""), pname)
         except ValueError as exc:
             fail(kloc, str(exc))
     for fname, comp in (r.get("feeds") or {}).items():
@@ -314,7 +315,7 @@ def _run(r, i, base, path, lines, problem, model, fail) -> Run | None:
                 fail(kloc + (sname,), f"feed {fname!r} carries no {sname!r} in the problem file")
                 continue
             try:
-                constants[model.constant_index(cname)] = to_internal(parse_quantity(value, "amount"))
+                constants[model.constant_index(cname)] = value_in(value, problem.species_by_name(sname).unit, sname)
             except ValueError as exc:
                 fail(kloc + (sname,), str(exc))
     sample_volume = 0.0
@@ -427,7 +428,21 @@ def _read_data(path, model, problem):
     return np.array(times), {n: np.array(v) for n, v in values.items()}, {c[0]: c[1] for c in columns[1:]}
 
 
-def _errors(spec, quantities, runs, model, fail) -> dict:
+def quantity_unit(q, runs, problem) -> str | None:
+    """The unit a quantity is written in: its data columns' unit where every run that
+    measures it writes the same, else its species' (or the vessel's, for V); None
+    where neither tells (a named rate written in several units)."""
+    units = {r.units[q] for r in runs if q in r.units}
+    if len(units) == 1:
+        return units.pop()
+    if q == "V":
+        return problem.vessel.unit
+    if any(s.name == q for s in problem.species):
+        return problem.species_by_name(q).unit
+    return None
+
+
+def _errors(spec, quantities, runs, problem, fail) -> dict:
     if not isinstance(spec, dict):
         fail(("errors",), "expected a mapping of quantity -> {absolute, relative}")
         return {}
@@ -436,8 +451,8 @@ def _errors(spec, quantities, runs, model, fail) -> dict:
         if name not in quantities:
             fail(("errors", name), f"{name!r} is not measured in any run (measured: {', '.join(quantities)})")
     for q in quantities:
-        largest = max(float(np.nanmax(np.abs(r.values[q]))) for r in runs if q in r.values
-                      and np.isfinite(r.values[q]).any())
+        largest = max((float(np.nanmax(np.abs(r.values[q]))) for r in runs if q in r.values
+                       and np.isfinite(r.values[q]).any()), default=0.0)
         e = spec.get(q)
         if e is None:
             out[q] = ErrorModel(DEFAULT_ABSOLUTE * largest or 1e-12, DEFAULT_RELATIVE, False)
@@ -446,14 +461,50 @@ def _errors(spec, quantities, runs, model, fail) -> dict:
         if not isinstance(e, dict) or set(e) - {"absolute", "relative"} or not e:
             fail(loc, "expected {absolute: ..., relative: ...}")
             continue
+        unit = quantity_unit(q, runs, problem)
+        absolute = relative = 0.0
         try:
-            absolute = to_internal(parse_quantity(e.get("absolute", 0.0), "any")) if "absolute" in e else 0.0
-            relative = to_internal(parse_quantity(e.get("relative", 0.0), "fraction")) if "relative" in e else 0.0
+            if "absolute" in e:
+                absolute = _absolute(e["absolute"], q, unit)
         except ValueError as exc:
-            fail(loc, str(exc))
+            fail(loc + ("absolute",), str(exc))
+            continue
+        try:
+            if "relative" in e:
+                relative = to_internal(parse_quantity(e["relative"], "fraction"))
+        except ValueError as exc:
+            fail(loc + ("relative",), str(exc))
             continue
         if absolute < 0 or relative < 0 or absolute + relative <= 0:
             fail(loc, "absolute and relative errors cannot be negative, and not both zero")
             continue
         out[q] = ErrorModel(absolute, relative, True)
     return out
+
+
+def _absolute(value, q, unit) -> float:
+    """An absolute measurement error in internal units: a bare number is in the
+    quantity's unit (``unit``); a written unit must have its dimension."""
+    if unit is None and not written_unit(value, "any"):
+        parse_quantity(value, "any")  # the message for a yes/no or a text that is no number
+        raise ValueError(f"give the absolute error of {q!r} with its unit (the runs write {q!r} in "
+                         "different units, so a bare number is ambiguous)")
+    return value_in(value, unit or "", q)
+
+
+def value_in(value, unit: str, name: str) -> float:
+    """``value`` in internal units, where a bare number is in ``unit`` (the unit the
+    problem file, or the data, writes ``name`` in; '' for internal units) and a
+    written unit must have the dimension of ``unit``.
+
+    Raises ValueError with a message for people."""
+    q = parse_quantity(value, "any")
+    if not unit:
+        return to_internal(q)
+    ref = parse_quantity(f"1 {unit}", "any")
+    if not written_unit(value, "any"):
+        return to_internal(q.magnitude * ref)
+    if q.dimensionality != ref.dimensionality:
+        raise ValueError(f"{value!r} has dimension {describe(q.dimensionality)}, but {name!r} is in {unit} "
+                         f"({describe(ref.dimensionality)})")
+    return to_internal(q)

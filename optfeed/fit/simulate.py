@@ -1,15 +1,29 @@
 """Re-simulating past runs: the applied schedule, the run's own constants, and the
-sample volumes taken out at each sampling time (state jumps), with CVODES."""
+sample volumes taken out at each sampling time (state jumps), with CVODES.
+
+Two ways, one rule (a stretch between two sampling times or pump changes is
+integrated on its own, and a sample sees the broth before it is taken):
+
+* :func:`simulate_run` samples a run densely, for figures and reports;
+* :class:`Sampler` gives the model's values at the sampling times only and, on
+  request, their derivatives with respect to the estimated parameters from the
+  forward sensitivity equations dS/dt = f_x S + f_theta, S = dx/dtheta, integrated
+  with the states by the same CVODES run (the sensitivities of a sample's value are
+  the exact Jacobian of the fit's residuals, up to the integrator's tolerance).
+"""
 
 from __future__ import annotations
 
+import dataclasses
+
+import casadi as ca
 import numpy as np
 
 from ..simulate import Simulator, Trajectory
 from .transcription import stretches
 
 
-def simulate_run(sim: Simulator, run, constants, points_per_hour: float | None = None) -> Trajectory:
+def simulate_run(sim: Simulator, run, constants) -> Trajectory:
     """The run re-simulated with ``constants`` (the model's p vector): a Trajectory
     of the full model, sampled densely, with the sample-volume jumps applied just
     after each sampling time (the sample sees the broth before it is taken)."""
@@ -23,22 +37,100 @@ def simulate_run(sim: Simulator, run, constants, points_per_hour: float | None =
         x = xx[-1].copy()
         if sample is not None and run.sample_volume:
             x[v] -= run.sample_volume
-    return Trajectory(np.concatenate(ts), np.vstack(xs), np.vstack(us), tuple(m.state_names), tuple(m.feed_names))
+    return Trajectory(np.concatenate(ts), np.vstack(xs), np.vstack(us), tuple(m.state_names), tuple(m.feed_names),
+                      _p=np.asarray(constants, dtype=float))
 
 
-def measured_model_values(model, run, traj, constants) -> dict:
-    """quantity -> model values at the run's sampling times (before each sample is taken)."""
-    out = {}
-    f = model.function("v", [model.values[q] for q in run.values if q in model.values] or [0], p=constants)
-    value_names = [q for q in run.values if q in model.values]
-    # the last occurrence of each sampling time is the end of the stretch before the jump
-    idx = [int(np.nonzero(np.isclose(traj.t, t, rtol=0, atol=1e-12 * max(1.0, t)))[0][0]) for t in run.times]
-    # the first point at a time equal to t ends the stretch that closes at t
-    for q in run.values:
-        if q in model.state_names:
-            out[q] = traj.x[idx, model.index(q)]
-    if value_names:
-        vals = [np.array(f(traj.t[i], traj.x[i], traj.u[i])).ravel() for i in idx]
-        for k, q in enumerate(value_names):
-            out[q] = np.array([v[k] for v in vals])
-    return out
+def sensitivity_model(model, estimated):
+    """``model`` with the sensitivities S = dx/dtheta of every state to each
+    estimated constant appended to its states (column by column), and their
+    equations dS/dt = f_x S + f_theta appended to its right-hand side."""
+    idx = [model.constant_index(n) for n in estimated]
+    S = ca.SX.sym("S", model.nx, len(idx))
+    f_x = ca.jacobian(model.rhs, model.x)
+    f_theta = ca.jacobian(model.rhs, model.p)[:, idx]
+    dS = ca.mtimes(f_x, S) + f_theta
+    names = [f"d{x}/d{p}" for p in estimated for x in model.state_names]
+    return dataclasses.replace(model, x=ca.vertcat(model.x, ca.vec(S)), rhs=ca.vertcat(model.rhs, ca.vec(dS)),
+                               state_names=list(model.state_names) + names)
+
+
+class Sampler:
+    """The model's values at a run's sampling times, with their derivatives.
+
+    Parameters
+    ----------
+    model : Model
+        The full model.
+    estimated : list of str
+        Names of the estimated constants (the columns of the derivatives).
+
+    Built once per fit; each call integrates a run once (one CVODES call per
+    stretch, output at its end only).
+    """
+
+    def __init__(self, model, estimated):
+        self.model, self.estimated = model, list(estimated)
+        self.idx = [model.constant_index(n) for n in self.estimated]
+        self._plain = Simulator(model, points_per_piece=1)
+        self._sens = Simulator(sensitivity_model(model, self.estimated), points_per_piece=1)
+        m = model
+        names = [q for q in m.values if q != "F_total"]
+        self._value_names = names
+        if names:
+            v = ca.vertcat(*[m.values[q] for q in names])
+            v_x = ca.jacobian(v, m.x)
+            v_p = ca.jacobian(v, m.p)[:, self.idx]
+            self._v = ca.Function("v", [m.t, m.x, m.u, m.p], [v, v_x, v_p])
+
+    def values(self, run, constants, jacobian: bool = False):
+        """(values, derivatives) at the run's sampling times.
+
+        values : dict quantity -> (n,) model values (internal units) at each sampling
+        time, before the sample is taken; derivatives : dict quantity -> (n, p)
+        d value / d theta, or None unless ``jacobian``.
+        """
+        m = self.model
+        nx, p = m.nx, len(self.idx)
+        sim = self._sens if jacobian else self._plain
+        x = np.array(run.x0, dtype=float)
+        if jacobian:
+            x = np.concatenate([x, np.zeros(nx * p)])
+        v = m.index("V")
+        n = len(run.times)
+        states = np.full((n, x.size), np.nan)
+        ends = [None] * n
+        for a, b, _, seg, sample in stretches(run, m.feed_names, run.end_time):
+            _, xx, _ = sim.between(seg, a, x, b, constants)
+            x = xx[-1].copy()
+            if sample is not None:
+                states[sample] = x
+                ends[sample] = (b, seg.rates(np.array([b]))[0])
+                if run.sample_volume:
+                    x[v] -= run.sample_volume
+        out, der = {}, ({} if jacobian else None)
+        rows = {}
+        for q in run.values:
+            if q in m.state_names:
+                i = m.index(q)
+                out[q] = states[:, i]
+                if jacobian:
+                    der[q] = states[:, nx + i::nx][:, :p]
+            else:
+                rows[q] = self._value_names.index(q)
+        if rows:
+            vals = np.zeros((n, len(self._value_names)))
+            dvals = np.zeros((n, len(self._value_names), p))
+            for k in range(n):
+                t, u = ends[k]
+                xk = states[k, :nx]
+                vv, vx, vp = self._v(t, xk, u, constants)
+                vals[k] = np.array(vv).ravel()
+                if jacobian:
+                    Sk = states[k, nx:].reshape(p, nx).T  # (nx, p)
+                    dvals[k] = np.array(vx) @ Sk + np.array(vp)
+            for q, j in rows.items():
+                out[q] = vals[:, j]
+                if jacobian:
+                    der[q] = dvals[:, j, :]
+        return out, der

@@ -14,11 +14,17 @@ likelihood estimate under independent normal errors with the stated sigma.
 
 It offers the interface :func:`optfeed.solve.solve` uses (``nlp``, ``n_w``, ``n_g``,
 ``P``, ``arguments``, ``objective_value``), so it is solved, watched and cached the
-same way as the optimizer's NLP.
+same way as the optimizer's NLP. The measured values, their weights, the runs'
+initial states and constants are parameters of the NLP, not numbers in its graph:
+fits of the same design (sampling times, schedules, what was measured) share one
+graph and one built solver (:func:`get_fit_nlp`), as optimize's cases do.
 """
 
 from __future__ import annotations
 
+import hashlib
+import json
+from collections import OrderedDict
 from dataclasses import dataclass
 
 import casadi as ca
@@ -30,13 +36,18 @@ from ..model import Model
 
 @dataclass
 class FitData:
-    """The numbers of one solve: bounds of the estimated parameters (internal units),
-    their scale, and whether some are held fixed (profile likelihood)."""
+    """The numbers of one solve (internal units): bounds of the estimated parameters
+    and their scale, the states' scale, and per run its constants, its initial state,
+    and the measured values with their weights 1/sigma, in the NLP's order."""
 
     lower: np.ndarray
     upper: np.ndarray
     scale: np.ndarray
     x_scale: np.ndarray  # (nx,)
+    constants: list = None  # per run: (n_constants,)
+    x0: list = None  # per run: (nx,)
+    y: np.ndarray = None  # (n_res,)
+    weight: np.ndarray = None  # (n_res,)
 
 
 def stretches(run, feed_names, max_element: float):
@@ -54,6 +65,57 @@ def stretches(run, feed_names, max_element: float):
     return out
 
 
+def measurements(runs):
+    """Every measured value in the NLP's order: (run index, sample index, quantity)."""
+    return [(r, k, q) for r, run in enumerate(runs) for k in range(len(run.times))
+            for q, y in run.values.items() if np.isfinite(y[k])]
+
+
+def structure_key(problem, runs, estimated, elements_per_run: int, degree: int) -> str:
+    """Identity of the calibration NLP's graph: fits with equal keys share one FitNLP
+    (and its built solver). It holds what shapes the equations - the model's
+    expressions, which constants are estimated, each run's sampling times, which
+    values were measured, its schedule, sample volume and length, the grid - and
+    none of the numbers a solve passes as data (measured values, weights, initial
+    states, constants)."""
+    p = problem
+    parts = {
+        "species": [(s.name, s.raw, s.dilute, s.rate.text) for s in p.species],
+        "constants": list(p.parameters), "rates": [(n, e.text) for n, e in p.rates],
+        "feeds": [(f.name, sorted(f.composition)) for f in p.feeds],
+        "oxygen": None if p.vessel.oxygen is None else p.vessel.oxygen.uptake.text,
+        "heat": p.vessel.heat is not None,
+        "integral": None if p.objective is None or p.objective.integral is None else p.objective.integral.text,
+        "estimated": list(estimated), "grid": [elements_per_run, degree],
+        "runs": [{"times": [repr(float(t)) for t in run.times], "end": repr(float(run.end_time)),
+                  "measured": [[q, np.isfinite(y).tolist()] for q, y in run.values.items()],
+                  "sample_volume": repr(float(run.sample_volume)),
+                  "schedule": [[repr(v) for v in (sg.start, sg.end, *sg.a, *sg.b, *sg.k)]
+                               for sg in run.schedule.segments([f.name for f in p.feeds], run.end_time)]}
+                 for run in runs],
+    }
+    return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()[:24]
+
+
+_CACHE: OrderedDict = OrderedDict()
+CACHE_SIZE = 4
+
+
+def get_fit_nlp(model: Model, runs, estimated, elements_per_run: int, degree: int = 3) -> "FitNLP":
+    """The FitNLP of this structure (built on first use in this process, then reused:
+    fits of the same design with other data share one graph and one built solver)."""
+    key = structure_key(model.problem, runs, estimated, elements_per_run, degree)
+    if key in _CACHE:
+        _CACHE.move_to_end(key)
+        return _CACHE[key]
+    nlp = FitNLP(model, runs, estimated, elements_per_run, degree)
+    nlp.key = key
+    _CACHE[key] = nlp
+    while len(_CACHE) > CACHE_SIZE:
+        _CACHE.popitem(last=False)
+    return nlp
+
+
 class FitNLP:
     """Weighted least squares over every run, one NLP.
 
@@ -62,17 +124,18 @@ class FitNLP:
     model : Model
         The full model (its state layout is the runs' initial states').
     runs : sequence of optfeed.fit.runs.Run
+        The runs whose structure (sampling times, measured values, schedules) the
+        NLP takes; their numbers come with each solve's :class:`FitData`.
     estimated : list of str
         Names of the constants (parameters) being estimated.
-    sigma : callable
-        sigma(quantity, measured values) -> standard deviations (internal units).
     elements_per_run : int
         Finite elements across a run (at least one per stretch).
     degree : int
     """
 
-    def __init__(self, model: Model, runs, estimated, sigma, elements_per_run: int = 40, degree: int = 3):
-        self.model, self.runs, self.estimated = model, list(runs), list(estimated)
+    def __init__(self, model: Model, runs, estimated, elements_per_run: int = 100, degree: int = 3):
+        self.model, self.estimated = model, list(estimated)
+        self.n_runs = len(runs)
         self.degree = degree
         m = model
         W, P = Layout("w"), Layout("p")
@@ -89,9 +152,9 @@ class FitNLP:
         keep[idx] = 0.0
         f = m.function_p("f", [m.rhs])
         v_index = m.index("V")
-        residuals, self.blocks, self.measured = [], [], []
+        collocation, model_values, self.blocks = [], [], []
         values = {n: m.function_p(f"v_{n}", [e]) for n, e in m.values.items()}
-        for r, run in enumerate(self.runs):
+        for r, run in enumerate(runs):
             const = P.add(f"r{r}.constants", m.n_constants)
             x0 = P.add(f"r{r}.x0", m.nx)
             p_run = const * ca.DM(keep) + ca.mtimes(ca.DM(select), theta)
@@ -105,30 +168,39 @@ class FitNLP:
                 blk = Block(f"r{r}.s{k}", f, fr, degree, W, x_start, p_run, b - a, a, u_pts, xs)
                 blk.span = (a, b)
                 blocks.append(blk)
-                residuals.append(("model", blk.residuals))
+                collocation.append(blk.residuals)
                 if sample is not None:
                     u_end = ca.DM(seg.rates(np.array([b]))[0])
                     for q, y in run.values.items():
-                        if not np.isfinite(y[sample]):
-                            continue
-                        model_value = (blk.x_end[m.index(q)] if q in m.state_names
-                                       else values[q](b, blk.x_end, u_end, p_run))
-                        s = float(sigma(q, np.array([y[sample]]))[0])
-                        residuals.append(("data", (model_value - y[sample]) / s))
-                        self.measured.append((r, sample, q, float(y[sample]), s, b))
+                        if np.isfinite(y[sample]):
+                            model_values.append(blk.x_end[m.index(q)] if q in m.state_names
+                                                else values[q](b, blk.x_end, u_end, p_run))
                 x_start = blk.x_end
                 if sample is not None and run.sample_volume:
                     jump = np.zeros(m.nx)
                     jump[v_index] = run.sample_volume
                     x_start = x_start - ca.DM(jump)
             self.blocks.append(blocks)
-        g = ca.vertcat(*[e for kind, e in residuals if kind == "model"])
-        res = ca.vertcat(*[e for kind, e in residuals if kind == "data"])
-        self.n_res = res.shape[0]
+        self.measured = measurements(runs)
+        assert len(self.measured) == len(model_values)
+        self.n_res = len(model_values)
+        y = P.add("y", self.n_res)
+        weight = P.add("weight", self.n_res)
+        g = ca.vertcat(*collocation)
+        res = (ca.vertcat(*model_values) - y) * weight
         self.nlp = {"x": W.symbol(), "p": P.symbol(), "f": 0.5 * ca.sumsqr(res), "g": g}
         self.n_w, self.n_g = W.size, g.shape[0]
         self._res_fun = ca.Function("res", [self.nlp["x"], self.nlp["p"]], [res])
         self._solvers, self._derivatives = {}, None
+
+    def data(self, runs, sigma, lower, upper, scale, x_scale) -> FitData:
+        """The numbers of a solve for ``runs`` (of this NLP's structure);
+        ``sigma(quantity, measured values)`` gives the standard deviations."""
+        y = np.array([runs[r].values[q][k] for r, k, q in self.measured])
+        s = np.array([float(sigma(q, [runs[r].values[q][k]])[0]) for r, k, q in self.measured])
+        return FitData(np.asarray(lower, float), np.asarray(upper, float), np.asarray(scale, float),
+                       np.asarray(x_scale, float), [np.asarray(r.constants, float) for r in runs],
+                       [np.asarray(r.x0, float) for r in runs], y, 1.0 / s)
 
     # -- the interface optfeed.solve.solve uses
     def parameters(self, data: FitData) -> np.ndarray:
@@ -136,9 +208,11 @@ class FitNLP:
         v = P.zeros()
         P.put(v, "theta_scale", data.scale)
         P.put(v, "x_scale", data.x_scale)
-        for r, run in enumerate(self.runs):
-            P.put(v, f"r{r}.constants", run.constants)
-            P.put(v, f"r{r}.x0", run.x0)
+        for r in range(self.n_runs):
+            P.put(v, f"r{r}.constants", data.constants[r])
+            P.put(v, f"r{r}.x0", data.x0[r])
+        P.put(v, "y", data.y)
+        P.put(v, "weight", data.weight)
         return v
 
     def bounds(self, data: FitData):
@@ -146,10 +220,14 @@ class FitNLP:
         ubx = np.full(self.n_w, np.inf)
         self.W.put(lbx, "theta", data.lower / data.scale)
         self.W.put(ubx, "theta", data.upper / data.scale)
-        # no non-negativity here: the NLP must follow the model exactly as the
-        # re-simulation does (a model that drives a species below zero is named in
-        # the fit's warnings instead)
+        # species are kept non-negative, as the optimizer keeps them: without it a
+        # collocation polynomial that dips below zero where a substrate runs out
+        # reaches a pole such as S / (S + 0.01) from the other side and the NLP
+        # fits the data with a trajectory no simulation follows (measured on a
+        # Monod-Pirt model: chi-square a million times the true one). A model
+        # that itself drives a species below zero is named in the fit's warnings.
         xl = np.full(self.model.nx, -np.inf)
+        xl[:len(self.model.problem.species)] = 0.0
         xl[self.model.index("V")] = 1e-9
         for blocks in self.blocks:
             for blk in blocks:
@@ -171,16 +249,34 @@ class FitNLP:
     def theta(self, w, data: FitData) -> np.ndarray:
         return self.W.get(w, "theta").ravel() * data.scale
 
-    def pack(self, data: FitData, theta, trajectories) -> np.ndarray:
-        """NLP vector from parameter values and one simulated trajectory per run
-        (at those values; states of ``self.model``)."""
+    def pack(self, data: FitData, runs, theta, trajectories) -> np.ndarray:
+        """NLP vector from parameter values and one simulated trajectory per run (at
+        those values; states of ``self.model``), with every measured species taken
+        from the run's data instead (straight lines between the samples, from the
+        run's initial value, negative readings as zero).
+
+        Starting the measured states at the data is what the simultaneous approach
+        allows and a simulation cannot: the solver then only has to find parameters
+        that make the measured course consistent, and it does so in far fewer
+        iterations and from far fewer basins than from the simulated course of a
+        poor guess (measured on a Monod-Pirt model: 15-40 IPOPT iterations instead
+        of 30-390, and the best fit from every guess tried)."""
+        m = self.model
         w = self.W.zeros()
         self.W.put(w, "theta", np.asarray(theta) / data.scale)
-        for blocks, traj in zip(self.blocks, trajectories):
+        for run, blocks, traj in zip(runs, self.blocks, trajectories):
+            measured = {}
+            for q, y in run.values.items():
+                ok = np.isfinite(y)
+                if q in m.state_names and q != "V" and ok.any():
+                    i = m.index(q)
+                    measured[i] = (np.concatenate([[0.0], run.times[ok]]),
+                                   np.concatenate([[run.x0[i]], np.maximum(y[ok], 0.0)]))
             for blk in blocks:
                 a, b = blk.span
                 times = blk.point_times(b - a, a)
-                X = np.array([np.interp(times, traj.t, traj.x[:, i]) for i in range(self.model.nx)])
+                X = np.array([np.interp(times, *measured[i]) if i in measured else np.interp(times, traj.t, traj.x[:, i])
+                              for i in range(m.nx)])
                 self.W.put(w, blk.var, X / data.x_scale[:, None])
         lbx, ubx, _, _ = self.bounds(data)
         return np.clip(w, lbx, ubx)
