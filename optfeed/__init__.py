@@ -7,7 +7,8 @@ Python API (mirrors the command line; each job returns a result object):
 * :func:`check` - simulate a proposed schedule and judge every limit;
 * :func:`optimize` - the best feed profile inside every limit, verified;
 * :func:`sweep` - many variants of a problem, unattended and resumable;
-* :func:`recipe` - a run's schedule as pump setpoints, checked again.
+* :func:`recipe` - a run's schedule as pump setpoints, checked again;
+* :func:`fit` - the parameters a runs file names, calibrated against past runs.
 
 Every job takes ``set={"parameters.mu_max": "0.5 1/h", ...}`` to change values by
 dotted path, as sweep files do. Example::
@@ -18,13 +19,14 @@ dotted path, as sweep files do. Example::
     table = r.trajectory_table()     # {'time [h]': array, 'X [g/L]': array, ...}
 
 The job modules stay importable as before (``from optfeed.optimize import
-optimize, OptimizeResult``); at the top level the names are the functions.
+optimize, OptimizeResult``, ``from optfeed.fit import fit, load_runs``; the fit job
+is a package, ``optfeed/fit/``); at the top level the names are the functions.
 """
 
 __version__ = "0.1.0"
 
 # The job functions share their names with the modules that hold them
-# (optfeed/optimize.py, optfeed/check.py, optfeed/validate.py, optfeed/sweep/):
+# (optfeed/optimize.py, optfeed/check.py, optfeed/validate.py, optfeed/sweep/, optfeed/fit/):
 # each module is imported first, then its function takes the name here.
 from .errors import InputError, OptfeedError, SimulationError  # noqa: E402
 from .problem import Problem, load_problem  # noqa: E402
@@ -34,6 +36,7 @@ from .check import CheckResult, check  # noqa: E402
 from .optimize import OptimizeResult, optimize  # noqa: E402
 from .sweep import SweepResult, load_sweep, run_sweep  # noqa: E402
 from .recipe import RecipeResult, recipe  # noqa: E402
+from .fit import FitResult, fit  # noqa: E402  (the package optfeed.fit stays in sys.modules)
 
 sweep = run_sweep  # the sweep job under the name of the command
 
@@ -41,5 +44,5 @@ __all__ = [
     "__version__", "load_problem", "validate", "check", "optimize", "sweep", "run_sweep", "load_sweep",
     "ValidateResult", "CheckResult", "OptimizeResult", "SweepResult", "Problem", "Schedule",
     "load_schedule", "piecewise_constant", "InputError", "OptfeedError", "SimulationError", "recipe",
-    "RecipeResult",
+    "RecipeResult", "fit", "FitResult",
 ]

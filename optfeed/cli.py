@@ -7,9 +7,11 @@
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
                   [--allow-symlink] [--retry-failed] [--quiet]
     optfeed recipe RUN_FOLDER [--unit mL/min] [--step "1 min"] [--start "2026-12-04 08:00"] [--problem FILE]
+    optfeed fit PROBLEM RUNS [--profile] [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
-verified optimum), 2 bad input, 3 a solver or integrator failure.
+verified optimum, or a fit that did not settle), 2 bad input, 3 a solver or integrator
+failure, 130 interrupted (Ctrl-C; nothing written).
 """
 
 from __future__ import annotations
@@ -71,6 +73,15 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--allow-symlink", action="store_true",
                    help="accept a sweep folder that is a symbolic link (refused by default)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
+
+    f = sub.add_parser("fit", help="calibrate the problem's parameters against past runs, with confidence")
+    f.add_argument("problem", help="problem file (YAML)")
+    f.add_argument("runs", help="runs file (YAML): the parameters to estimate, the measurement errors, the runs "
+                   "and their data files")
+    f.add_argument("--profile", action="store_true", help="also compute profile likelihood intervals (slower; the "
+                   "honest intervals for a nonlinear model)")
+    _set_arg(f)
+    _output_args(f)
 
     r = sub.add_parser("recipe", help="a pump controller's setpoint table for a run's schedule, checked again")
     r.add_argument("run_folder", metavar="RUN_FOLDER", help="folder written by optimize or check")
@@ -168,6 +179,8 @@ def _run(args) -> int:
             return _sweep(args)
         if args.command == "recipe":
             return _recipe(args)
+        if args.command == "fit":
+            return _fit(args)
     except InputError as exc:
         print("optfeed: bad input", file=sys.stderr)
         for issue in exc.issues[:MAX_ISSUES_SHOWN]:
@@ -274,6 +287,30 @@ def _optimize(args) -> int:
     return _show(args, result, optimize_summary(result), optimize_text(result), target, "")
 
 
+def _fit(args) -> int:
+    from .fit import fit, load_runs
+    from .model import build_model
+    from .problem import load_problem
+    from .report.files import fit_summary, write_fit_run
+    from .report.text import fit_text
+
+    problem = load_problem(args.problem, set=_overrides(args.set))
+    _warn(problem)
+    runs = load_runs(args.runs, problem, build_model(problem))
+    target = _run_folder(args, problem.name, "fit")
+    if args.quiet or args.json:
+        result = fit(problem, runs, profile=args.profile)
+    else:
+        result = _with_progress(lambda cb: fit(problem, runs, profile=args.profile, on_progress=cb), "fitting")
+    write_fit_run(result, target, figures=not args.no_figures)
+    files = "summary.json, report.txt, report.html"
+    if result.estimates:
+        files += ", fitted.yaml, covariance.csv, residuals.csv, trajectory-*.csv"
+        if not args.no_figures:
+            files += ", figure-*.png"
+    return _show(args, result, fit_summary(result), fit_text(result), target, f" ({files})")
+
+
 def _time_limit(args) -> float | None:
     """--time-limit in seconds (None if not given); bad input unless a time above zero."""
     if getattr(args, "time_limit", None) is None:
@@ -366,7 +403,7 @@ def _sweep_with_progress(sweep, folder, args):
                          retry=args.retry_failed, allow_symlink=args.allow_symlink)
 
 
-def _with_progress(job):
+def _with_progress(job, what: str = "optimizing"):
     """Run ``job(callback)`` under a progress display on stderr."""
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -374,7 +411,7 @@ def _with_progress(job):
     console = Console(stderr=True)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True, disable=not console.is_terminal) as bar:
-        task = bar.add_task("optimizing", total=1)
+        task = bar.add_task(what, total=1)
 
         def callback(text, done, total):
             bar.update(task, description=text, completed=done, total=total)

@@ -21,6 +21,9 @@ ITERATION_LIMIT = "iteration limit"
 TIME_LIMIT = "time limit"
 FAILED = "failed"
 
+FITTED = "fitted"  # fit: the re-simulated weighted least squares at a stationary point
+NOT_CONVERGED = "not converged"  # fit: no start answered, or the polish did not settle
+
 EXIT_OK = 0
 EXIT_NOT_OK = 1
 EXIT_BAD_INPUT = 2
@@ -38,6 +41,8 @@ EXIT_CODES = {
     ITERATION_LIMIT: EXIT_NOT_OK,
     TIME_LIMIT: EXIT_NOT_OK,
     FAILED: EXIT_FAILED,
+    FITTED: EXIT_OK,
+    NOT_CONVERGED: EXIT_NOT_OK,
 }
 
 

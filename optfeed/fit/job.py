@@ -40,9 +40,7 @@ from .simulate import Sampler, simulate_run
 from .statistics import Statistics, uncertainty, verdict
 from .transcription import get_fit_nlp
 
-FITTED = "fitted"
-NOT_CONVERGED = "not converged"
-FAILED = "failed"
+FITTED, NOT_CONVERGED, FAILED = st.FITTED, st.NOT_CONVERGED, st.FAILED
 ELEMENTS_PER_RUN = 100    # collocation elements across a run (at least one per stretch)
 NLP_TOLERANCE = 1e-8
 POLISH_ITERATIONS = 60
@@ -94,9 +92,9 @@ class FitResult:
     flags : tuple of str
         Identifiability warnings (and other cautions about the fit) in words.
     residuals : list of dict
-        Per run and quantity: count, mean and RMS of the weighted residuals (from the
-        re-simulation), and the times, measured and fitted values and sigma
-        (internal units).
+        Per run and quantity: the unit it is shown in, count, mean and RMS of the
+        weighted residuals (from the re-simulation), and the times (h), measured and
+        fitted values and sigma (internal units).
     trajectories : list
         Per run, the re-simulated Trajectory at the estimates.
     starts : list of dict
@@ -128,9 +126,7 @@ class FitResult:
 
     @property
     def exit_code(self) -> int:
-        if self.status == FITTED:
-            return st.EXIT_OK
-        return st.EXIT_FAILED if self.status == FAILED else st.EXIT_NOT_OK
+        return st.exit_code(self.status)
 
     @property
     def values(self) -> dict:
@@ -293,7 +289,8 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
         Also compute profile likelihood intervals (each point re-estimates the other
         parameters on the re-simulated runs).
     on_progress : callable, optional
-        ``on_progress(text)``, a line for people at each stage.
+        ``on_progress(text, done, total)`` as the job moves on: ``done`` of ``total``
+        stages (the starts, the polish, each profile) are finished.
     set : dict, optional
         Overrides of the problem by dotted path, as in sweep files.
 
@@ -317,7 +314,7 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     if not isinstance(runs, Runs):
         runs = load_runs(runs, problem, build_model(problem))
     with interrupt_guard():
-        return _fit(problem, runs, profile, on_progress or (lambda text: None), t0)
+        return _fit(problem, runs, profile, on_progress or (lambda text, done, total: None), t0)
 
 
 def _fit(problem, runs, profile, progress, t0) -> FitResult:
@@ -345,7 +342,8 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
                       starts=[{"from": label, "guess": _floats(th), "status": "not run",
                                "message": "its simulation failed"} for label, th in guesses])
     xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in first], axis=0)
-    progress("building the calibration NLP")
+    total = len(guesses) + 1 + (len(job.names) if profile else 0)
+    progress("building the calibration NLP", 0, total)
     nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)
     data = nlp.data(runs.runs, job.sigma, job.lower, job.upper, job.scale, np.where(xs > 1e-9, xs, 1.0))
     starts, best, best_theta = [], None, None
@@ -368,7 +366,8 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         starts.append({"from": label, "guess": _floats(theta), "status": s.status, "chi2": chi2,
                        "iterations": int(s.iterations), "seconds": float(s.seconds),
                        "estimate": None if estimate is None else _floats(estimate)})
-        progress(f"start {k + 1}/{len(guesses)}: {s.status}" + ("" if chi2 is None else f", chi-square {chi2:.6g}"))
+        progress(f"start {k + 1}/{len(guesses)}: {s.status}" + ("" if chi2 is None else f", chi-square {chi2:.6g}"),
+                 k + 1, total)
         if s.objective is not None and (best is None or (s.status == "converged", -s.objective) >
                                         (best.status == "converged", -best.objective)):
             best, best_theta = s, estimate
@@ -379,7 +378,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
     spread = (max(values) - min(values)) / max(min(values), 1e-300) if len(values) > 1 else 0.0
     nlp_chi2 = 2.0 * best.objective
 
-    progress("polishing on the re-simulated runs (Levenberg-Marquardt, CVODES sensitivities)")
+    progress("polishing on the re-simulated runs (Levenberg-Marquardt, CVODES sensitivities)", len(guesses), total)
     try:
         theta, r, J, settled, polish_iterations = job.polish(best_theta)
     except SimulationError as exc:
@@ -405,7 +404,8 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
                 k = int(np.argmax(x < -tol))
                 flags.append(f"at the estimates the model drives {sp.name} below zero in run {run.name!r} "
                              f"from {traj.t[k]:.3g} h: check the model (an uptake that goes on without substrate?)")
-    profiles = _profiles(job, theta, stats_, progress) if profile else {}
+    profiles = _profiles(job, theta, stats_, lambda text, j: progress(text, len(guesses) + 1 + j, total)) \
+        if profile else {}
     estimates = []
     for i, e in enumerate(runs.estimates):
         f = factor_to(e.unit) if e.unit else 1.0
@@ -430,15 +430,24 @@ def _floats(v) -> list:
     return [float(x) for x in np.asarray(v, dtype=float).ravel()]
 
 
+def display_unit(q, runs, problem) -> str:
+    """The unit a measured quantity is shown in: its data columns' (or its species')
+    unit; where runs write a named rate in several units, the first run's."""
+    from .runs import quantity_unit
+
+    return quantity_unit(q, runs, problem) or next(r.units[q] for r in runs if q in r.units)
+
+
 def _residual_table(job, theta) -> list:
     out = []
+    units = {q: display_unit(q, job.runs.runs, job.problem) for q in job.runs.quantities}
     for run in job.runs.runs:
         values, _ = job.sampler.values(run, job.constants(run, theta))
         for q, y in run.values.items():
             ok = np.isfinite(y)
             sig = job.sigma(q, y[ok])
             w = (values[q][ok] - y[ok]) / sig
-            out.append({"run": run.name, "quantity": q, "count": int(ok.sum()),
+            out.append({"run": run.name, "quantity": q, "unit": units[q], "count": int(ok.sum()),
                         "mean": float(w.mean()) if ok.any() else None,
                         "rms": float(np.sqrt((w ** 2).mean())) if ok.any() else None,
                         "times": _floats(run.times[ok]), "measured": _floats(y[ok]),
@@ -458,7 +467,7 @@ def _profiles(job, theta, stats_, progress) -> dict:
     base = stats_.chi2
     out = {}
     for j, name in enumerate(job.names):
-        progress(f"profile likelihood of {name}")
+        progress(f"profile likelihood of {name}", j)
         fixed = np.zeros(len(theta), bool)
         fixed[j] = True
 

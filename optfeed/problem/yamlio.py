@@ -46,6 +46,10 @@ class Lines:
     def set(self, path: tuple, line: int) -> None:
         self._lines.setdefault(path, line)
 
+    def own(self, path) -> int | None:
+        """Line of ``path`` itself; None if it has none (no ancestor's line)."""
+        return self._lines.get(tuple(path))
+
     def get(self, path) -> int | None:
         """Line of ``path``, or of its nearest ancestor that has one."""
         path = tuple(path)

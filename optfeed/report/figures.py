@@ -528,3 +528,132 @@ def feed_profile(label: str, t, columns: dict) -> Drawing:
 
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_]+", "_", text)[:60]
+
+
+# ------------------------------------------------------------------ a fit
+
+MEASURED = "#1f77a8"    # a measured sample, with its error bar (one standard deviation)
+RUNS_PER_FIGURE = 6
+
+
+def fit_drawings(result) -> list[Drawing]:
+    """The figures of a :class:`~optfeed.fit.FitResult` with estimates.
+
+    Returns
+    -------
+    list of Drawing
+        ``figure-fit`` (one row per run, one panel per measured quantity: the
+        measured samples with error bars of one standard deviation, and the run
+        re-simulated at the estimates; ``figure-fit-2``... for more than six runs),
+        ``figure-residuals`` (the weighted residuals against time, per quantity, each
+        run in its colour) and ``figure-correlation`` (the correlation matrix of the
+        estimates).
+    """
+    with _rc():
+        out = _fit_figures(result)
+        out.append(_residuals_figure(result))
+        if len(result.estimates) > 1:
+            out.append(_correlation_figure(result))
+    return out
+
+
+def _fit_figures(result):
+    from ..model import build_model
+    from ..units import factor_to
+
+    model = build_model(result.problem)
+    quantities = list(result.runs.quantities)
+    units = {d["quantity"]: d["unit"] for d in result.residuals}
+    runs = list(zip(result.runs.runs, result.trajectories))
+    out = []
+    for first in range(0, len(runs), RUNS_PER_FIGURE):
+        chunk = runs[first:first + RUNS_PER_FIGURE]
+        ncol = len(quantities)
+        fig, axes = _figure(len(chunk), ncol, width=4.2 if ncol > 2 else 5.0, height=2.5)
+        axes = axes.reshape(len(chunk), ncol)
+        for row, (run, traj) in enumerate(chunk):
+            named = [q for q in quantities if q not in model.state_names]
+            values = _named_values(model, traj, named)
+            for col, q in enumerate(quantities):
+                ax = axes[row, col]
+                unit = units.get(q, "")
+                f = factor_to(unit) if unit else 1.0
+                line = traj.state(q) if q in model.state_names else values[q]
+                ax.plot(traj.t, line * f, color=INK, lw=1.4, zorder=3, label="fitted (re-simulated)")
+                d = next((d for d in result.residuals if d["run"] == run.name and d["quantity"] == q), None)
+                if d is not None and d["count"]:
+                    ax.errorbar(d["times"], np.asarray(d["measured"]) * f, yerr=np.asarray(d["sigma"]) * f,
+                                fmt="o", ms=3.5, color=MEASURED, ecolor=MEASURED, elinewidth=0.9, capsize=2,
+                                zorder=4, label="measured ± 1 SD")
+                else:
+                    ax.text(0.5, 0.5, "not measured in this run", transform=ax.transAxes, ha="center",
+                            va="center", color=MUTED)
+                ax.set_title(f"{run.name}: {q}")
+                ax.set_ylabel(unit or "internal units")
+                ax.set_xlim(traj.t[0] - 0.02 * traj.t[-1], traj.t[-1] * 1.02)
+                if row == 0 and col == 0:
+                    ax.legend(loc="best")
+        for ax in axes[-1]:
+            ax.set_xlabel("time (h)")
+        name = "figure-fit" if first == 0 else f"figure-fit-{first // RUNS_PER_FIGURE + 1}"
+        title = f"{result.problem.name}: fit - {result.status}"
+        fig.suptitle(title, fontsize=10, y=1 - 0.08 / fig.get_figheight(), va="top")
+        out.append(Drawing(name, "Each run's measured samples (error bars: one standard deviation of the stated "
+                           "measurement error) and the run re-simulated at the estimates, per measured "
+                           "quantity.", fig))
+    return out
+
+
+def _residuals_figure(result):
+    quantities = list(result.runs.quantities)
+    n = len(quantities)
+    ncol = 2 if n > 1 else 1
+    nrow = math.ceil(n / ncol)
+    fig, axes = _figure(nrow, ncol, width=5.0, height=2.6)
+    names = [run.name for run in result.runs.runs]
+    t_end = max(run.end_time for run in result.runs.runs)
+    for ax, q in zip(axes, quantities):
+        for d in result.residuals:
+            if d["quantity"] != q or not d["count"]:
+                continue
+            k = names.index(d["run"])
+            w = (np.asarray(d["fitted"]) - np.asarray(d["measured"])) / np.asarray(d["sigma"])
+            ax.plot(d["times"], w, "o", ms=3.5, color=PALETTE[k % len(PALETTE)], label=d["run"])
+        ax.axhline(0.0, color=REFERENCE, lw=0.9)
+        for level in (-2.0, 2.0):
+            ax.axhline(level, color=MUTED, ls="--", lw=0.9, label="± 2" if level > 0 else None)
+        ax.set_title(f"{q}: (fitted - measured) / sigma")
+        ax.set_ylabel("dimensionless")
+        ax.set_xlim(-0.02 * t_end, 1.02 * t_end)
+        ax.legend(loc="best", ncol=2)
+    for ax in axes[n:]:
+        ax.remove()
+    for ax in axes[max(0, n - ncol):n]:
+        ax.set_xlabel("time (h)")
+    fig.suptitle(f"{result.problem.name}: weighted residuals", fontsize=10, y=1 - 0.08 / fig.get_figheight(),
+                 va="top")
+    return Drawing("figure-residuals", "Weighted residuals (fitted - measured) / sigma of every sample against its "
+                   "time, each run in its colour; about 95 % should lie between the dashed lines at ±2 if the "
+                   "stated measurement error is right.", fig)
+
+
+def _correlation_figure(result):
+    names = [e.name for e in result.estimates]
+    corr = np.asarray(result.statistics.correlation, dtype=float)
+    n = len(names)
+    size = 1.2 + 0.55 * n
+    fig, axes = _figure(1, 1, width=size + 1.6, height=size + 0.6, left=0.35 + 0.07 * max(map(len, names)))
+    ax = axes[0]
+    im = ax.imshow(np.ma.masked_invalid(corr), cmap="RdBu_r", vmin=-1.0, vmax=1.0)
+    ax.set_xticks(range(n), names, rotation=45, ha="right")
+    ax.set_yticks(range(n), names)
+    ax.grid(False)
+    for i in range(n):
+        for j in range(n):
+            v = corr[i, j]
+            ax.text(j, i, "-" if v != v else f"{v:+.2f}", ha="center", va="center", fontsize=7,
+                    color="white" if v == v and abs(v) > 0.6 else REFERENCE)
+    fig.colorbar(im, ax=ax, label="correlation")
+    ax.set_title("correlation of the estimates")
+    return Drawing("figure-correlation", "The correlation matrix of the estimates; |correlation| above 0.95 means "
+                   "the data fix a combination of the two parameters better than either alone.", fig)

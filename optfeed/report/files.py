@@ -258,3 +258,136 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
         write_report(tmp, lambda d, s, note: optimize_page(result, d, s, note), draw,
                      "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)
+
+
+def _clean(obj):
+    """Plain JSON values: numpy numbers as Python numbers, inf and NaN as null."""
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if np.isfinite(v) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    return obj
+
+
+def fit_summary(result) -> dict:
+    """The machine-readable record of a fit (summary.json): values in each
+    parameter's unit (``unit``); a standard error or interval the data cannot fix
+    is null."""
+    from ..units import factor_to
+
+    r = result
+    s = r.statistics
+    names = [e.name for e in r.estimates]
+    out = {
+        "job": "fit",
+        "status": r.status,
+        "exit_code": r.exit_code,
+        "message": r.message,
+        "problem": r.problem.name,
+        "runs_file": r.runs.source,
+        "runs": [{"name": run.name, "data_file": run.data_file, "end_time_h": run.end_time,
+                  "sampling_times": len(run.times), "measured": {q: int(np.isfinite(v).sum()) for q, v in
+                                                                 run.values.items()},
+                  "sample_volume_L": run.sample_volume} for run in r.runs.runs],
+        "measured_values": r.runs.n_samples,
+        "estimates": [{"name": e.name, "unit": e.unit or "internal units", "value": e.value, "se": e.se,
+                       "relative_se": e.se / abs(e.value) if e.value else None,
+                       "ci_low": e.ci_low, "ci_high": e.ci_high, "profile_low": e.profile_low,
+                       "profile_high": e.profile_high, "start": e.start, "min": e.lower, "max": e.upper}
+                      for e in r.estimates],
+    }
+    if s is not None:
+        f = np.array([factor_to(e.unit) if e.unit else 1.0 for e in r.estimates])
+        out["intervals"] = (f"95 % confidence: estimate +- t(0.975, {s.dof}) x SE, t = {s.t_quantile:.6g}"
+                            + ("; profile likelihood: chi-square rise of 3.841 (95 % of chi-square with 1 degree "
+                               "of freedom)" + ("" if r.runs.trusted else " times s^2") if any(
+                                   e.profile_low is not None or e.profile_high is not None for e in r.estimates)
+                               else ""))
+        out["correlation"] = {"names": names, "matrix": s.correlation}
+        out["covariance"] = {"names": names, "units": [e.unit or "internal units" for e in r.estimates],
+                             "matrix": np.asarray(s.covariance) * np.outer(f, f),
+                             "note": "row i, column j in unit_i * unit_j (as covariance.csv)"}
+        out["identifiability"] = {
+            "condition_number": s.condition,
+            "weakest_direction": {n: float(c) for n, c in zip(names, s.weakest)},
+            "weakest_direction_note": "eigenvector of the smallest eigenvalue of the information matrix in "
+                                      "log-parameters: the combination the data fix least",
+        }
+        out["goodness_of_fit"] = {"chi_square": s.chi2, "degrees_of_freedom": s.dof, "p_value": s.p_value,
+                                  "error_model": "trusted" if r.runs.trusted else "scaled",
+                                  "residual_variance_factor": s.scale, "verdict": r.verdict}
+    out["flags"] = list(r.flags)
+    out["residuals"] = [{k: d[k] for k in ("run", "quantity", "unit", "count", "mean", "rms")} for d in r.residuals]
+    out["solver"] = {"starts": r.starts, "spread_relative": r.spread, "nlp_chi_square": r.nlp_chi2,
+                     "seconds_total": r.seconds}
+    out["warnings"] = [str(w) for w in r.problem.warnings]
+    out["record"] = r.record
+    out["caution"] = CAUTION
+    return _clean(out)
+
+
+def residual_rows(result):
+    """Header and rows of residuals.csv: every measured value with the re-simulated
+    model's value, in the quantity's unit."""
+    from ..units import factor_to
+
+    header = ["run", "quantity", "time [h]", "unit", "measured", "fitted", "sigma",
+              "weighted residual [dimensionless]"]
+    rows = []
+    for d in result.residuals:
+        f = factor_to(d["unit"]) if d["unit"] else 1.0
+        for t, y, m, s in zip(d["times"], d["measured"], d["fitted"], d["sigma"]):
+            rows.append([d["run"], d["quantity"], float(t), d["unit"], y * f, m * f, s * f, (m - y) / s])
+    return header, rows
+
+
+def write_fit_run(result, target, figures: bool = True) -> Path:
+    """Write a fit result to the run folder ``target`` (must not exist).
+
+    Files: summary.json, report.txt, report.html; when there are estimates also
+    fitted.yaml (the problem file with the estimates written in), covariance.csv,
+    residuals.csv, trajectory-<k>.csv (each run re-simulated at the estimates) and
+    the figures figure-fit.png (measured points with error bars against the fitted
+    runs), figure-residuals.png and figure-correlation.png.
+    """
+    from ..fit.fitted import covariance_csv_text, fitted_yaml_text
+    from ..model import build_model
+    from .figures import fit_drawings
+    from .html import fit_page, write_report
+    from .text import fit_text
+
+    answer = bool(result.estimates) and result.statistics is not None
+    with RunFolder(target) as tmp:
+        write_json(tmp / "summary.json", fit_summary(result))
+        (tmp / "report.txt").write_text(fit_text(result))
+        if answer:
+            text, _how = fitted_yaml_text(result)
+            (tmp / "fitted.yaml").write_text(text)
+            (tmp / "covariance.csv").write_text(covariance_csv_text(result))
+            header, rows = residual_rows(result)
+            with (tmp / "residuals.csv").open("w", newline="") as fh:
+                fh.write("# measured, fitted and sigma are in the row's unit; weighted residual = "
+                         "(fitted - measured) / sigma\n")
+                w = csv.writer(fh, lineterminator="\n")
+                w.writerow(header)
+                for row in rows:
+                    w.writerow([f"{v:.10g}" if isinstance(v, float) else v for v in row])
+            model = build_model(result.problem)
+            for k, (run, traj) in enumerate(zip(result.runs.runs, result.trajectories), start=1):
+                header, rows = trajectory_table(model, traj, unique=True)
+                write_csv(tmp / f"trajectory-{k}.csv", header, rows)
+        draw = None
+        if figures and answer:
+            draw = lambda: fit_drawings(result)  # noqa: E731
+        write_report(tmp, lambda d, s, note: fit_page(result, d, s, note), draw,
+                     "No figures: the fit has no estimates." if figures else "Figures were not drawn (--no-figures).")
+    return Path(target)

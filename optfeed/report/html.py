@@ -2,7 +2,8 @@
 
 A report is a :class:`Page`: a headline (the status in plain words), a message, and
 :class:`Section` objects assembled from a result by the builders below
-(:func:`check_page`, :func:`optimize_page`, :func:`sweep_page`, :func:`recipe_page`).
+(:func:`check_page`, :func:`optimize_page`, :func:`sweep_page`, :func:`recipe_page`,
+:func:`fit_page`).
 The section helpers (:func:`limits_section`, :func:`figures_section`, ...) take plain
 result fields, so a new job assembles its page from the same parts.
 
@@ -33,6 +34,8 @@ STATUS_WORDS = {
     "within limits": ("Within every limit", GOOD),
     "limit broken": ("A limit is broken", BAD),
     "simulation failed": ("The simulation failed", BAD),
+    "fitted": ("Fitted", GOOD),
+    "not converged": ("The fit did not settle: no estimates to use", WARN),
 }
 
 
@@ -406,6 +409,75 @@ def recipe_page(result, drawings=(), svgs=(), figure_note: str = "", max_rows: i
     sections.append(provenance_section(result.record, {"run length (h)": result.end_time}))
     return Page("recipe", result.problem.name, words, tone, result.status, result.message, tuple(sections),
                 result.record.get("created_utc", ""))
+
+
+def fit_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
+    """The page of a :class:`~optfeed.fit.FitResult`: the estimates with their
+    intervals, the goodness of fit, what the data cannot tell, the figures, the
+    starts, and where it came from."""
+    r = result
+    words, tone = headline(r.status)
+    if r.status == "fitted" and r.flags:
+        words, tone = "Fitted, with warnings about what the data can tell", WARN
+    s = r.statistics
+    sections = [caution_section()]
+    if r.estimates:
+        profile = any(e.profile_low is not None or e.profile_high is not None for e in r.estimates)
+        header = ["parameter", "estimate", "unit", "standard error", "95 % confidence interval"]
+        header += ["95 % profile likelihood"] if profile else []
+        header += ["range searched"]
+        rows = []
+        for e in r.estimates:
+            row = [e.name, e.value, e.unit or "internal units", e.se,
+                   range_text(e.ci_low, e.ci_high, "")]
+            if profile:
+                row.append("beyond the range searched" if e.profile_low is None and e.profile_high is None
+                           else range_text(e.profile_low, e.profile_high, ""))
+            row.append(range_text(e.lower, e.upper, ""))
+            rows.append(row)
+        note = (f"Confidence intervals: estimate ± t × standard error, t = {fmt(s.t_quantile, 5)} (Student's t, "
+                f"{s.dof} degrees of freedom), from the Gauss-Newton covariance"
+                + ("" if r.runs.trusted else " scaled by the residual variance") + ".")
+        if profile:
+            note += (" Profile likelihood: the values where chi-square, the others re-estimated, has risen by "
+                     "3.84 (a one-sided end '≤'/'≥' lies beyond the range searched).")
+        sections.append(Section("estimates", "Estimates", table(header, rows, numeric={1, 3}) +
+                                f"<p class=note>{esc(note)} The problem file with these values written in is "
+                                "fitted.yaml: <code>optfeed optimize fitted.yaml</code> runs it; their covariance "
+                                "is covariance.csv.</p>"))
+        res_rows = [[d["run"], d["quantity"], d["unit"], d["count"], d["mean"], d["rms"]] for d in r.residuals]
+        body = (f"<p>{esc(r.verdict[:1].upper() + r.verdict[1:])}.</p>" +
+                table(["run", "quantity", "unit", "samples", "mean weighted residual", "RMS weighted residual"],
+                      res_rows, numeric={3, 4, 5}) +
+                "<p class=note>Weighted residual: (fitted - measured) / sigma, from the runs re-simulated at the "
+                "estimates. Under the stated measurement error its mean is near 0 and its RMS near 1.</p>")
+        sections.append(Section("fit", "Goodness of fit", body))
+        names = [e.name for e in r.estimates]
+        body = []
+        if r.flags:
+            body.append("<ul class=cases>" + "".join(f"<li>{esc(f)}</li>" for f in r.flags) + "</ul>")
+        else:
+            body.append("<p>No warning: every parameter is fixed by the data to within its own size, and no pair "
+                        "is correlated above 0.95.</p>")
+        if len(names) > 1:
+            body.append(table([""] + names, [[n] + [None if v != v else round(float(v), 3) for v in s.correlation[i]]
+                                             for i, n in enumerate(names)], caption="Correlation of the estimates."))
+        terms = " ".join(f"{c:+.2f} log {n}" for c, n in zip(s.weakest, names) if abs(c) > 0.05).lstrip("+")
+        body.append(f"<p class=note>Condition number of the scaled information matrix: {esc(fmt(s.condition, 3))}. "
+                    f"The combination of parameters the data fix least: {esc(terms)}.</p>")
+        sections.append(Section("identifiability", "What the data can tell", "".join(body)))
+    sections.append(figures_section(drawings, svgs, figure_note))
+    if r.starts:
+        rows = [[st_["from"], st_["status"], st_.get("chi2"), st_.get("iterations"), st_.get("seconds")]
+                for st_ in r.starts]
+        spread = "" if r.spread is None else f" Spread over the converged starts: {r.spread:.2%} of the best."
+        sections.append(Section("starts", "Starts", table(["from", "status", "chi-square (NLP)", "iterations",
+                                                           "seconds"], rows) +
+                                f"<p class=note>Each start is one solve of the calibration NLP; the best is then "
+                                f"polished on the re-simulated runs.{esc(spread)}</p>"))
+    sections.append(provenance_section(r.record, {"runs file": r.runs.source, "fit time (s)": round(r.seconds, 2)}))
+    return Page("fit", r.problem.name, words, tone, r.status, r.message, tuple(sections),
+                r.record.get("created_utc", ""))
 
 
 # ------------------------------------------------------------------ rendering

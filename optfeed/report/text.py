@@ -158,3 +158,85 @@ def optimize_text(result) -> str:
         lines += ["At the end of the run (re-simulated):"] + outcome_lines(result.outcome) + [""]
     lines.append(CAUTION)
     return "\n".join(lines) + "\n"
+
+
+CALIBRATION_CAUTION = (
+    "A calibrated model describes the runs it was fitted to; it extrapolates poorly to\n"
+    "conditions those runs did not reach. Read its intervals before planning with it."
+)
+
+
+def _table_lines(rows) -> list[str]:
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    out = []
+    for k, row in enumerate(rows):
+        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
+        if k == 0:
+            out.append("  " + "  ".join("-" * w for w in widths))
+    return out
+
+
+def fit_text(result) -> str:
+    """The text report of a :class:`~optfeed.fit.FitResult`."""
+    r = result
+    p = r.problem
+    lines = [
+        f"optfeed fit: {p.name}",
+        f"  problem   {r.record.get('problem_file', '')}",
+        f"  runs      {r.runs.source} ({len(r.runs.runs)} run(s), {r.runs.n_samples} measured values)",
+        "",
+        f"STATUS: {r.status.upper()} - {r.message}",
+        "",
+    ] + warning_lines(p)
+    s = r.statistics
+    if r.estimates:
+        profile = any(e.profile_low is not None or e.profile_high is not None for e in r.estimates)
+        head = ["parameter", "estimate", "unit", "SE", "SE %", "95 % confidence interval"]
+        if profile:
+            head.append("95 % profile likelihood")
+        head.append("range searched")
+        rows = [tuple(head)]
+        for e in r.estimates:
+            rel = "-" if not e.value or e.se != e.se or e.se == float("inf") else f"{100 * e.se / abs(e.value):.3g}"
+            row = [e.name, fmt(e.value, 6), e.unit or "(internal units)", fmt(e.se, 3), rel,
+                   f"{fmt(e.ci_low)} .. {fmt(e.ci_high)}"]
+            if profile:
+                row.append(f"{fmt(e.profile_low)} .. {fmt(e.profile_high)}")
+            row.append(f"{fmt(e.lower)} .. {fmt(e.upper)}")
+            rows.append(tuple(row))
+        lines += [f"Estimates (95 % intervals: t distribution with {s.dof} degrees of freedom"
+                  + ("; a profile end shown '-' lies beyond the range searched" if profile else "") + "):"]
+        lines += _table_lines(rows) + [""]
+        names = [e.name for e in r.estimates]
+        if len(names) > 1:
+            rows = [tuple([""] + names)]
+            for i, n in enumerate(names):
+                rows.append(tuple([n] + [f"{v:+.3f}" if v == v else "-" for v in s.correlation[i]]))
+            lines += ["Correlation of the estimates:"] + _table_lines(rows) + [""]
+        terms = " ".join(f"{c:+.2f} log {n}" for c, n in zip(s.weakest, names) if abs(c) > 0.05).lstrip("+")
+        lines += ["Identifiability:",
+                  f"  condition number of the scaled information matrix: {fmt(s.condition, 3)}",
+                  f"  the combination the data fix least: {terms}", ""]
+        lines += ["Goodness of fit:", f"  {r.verdict}",
+                  "  error model: " + ("the stated measurement error (trusted)" if r.runs.trusted else
+                                       "scaled by the residuals"), ""]
+    if r.flags:
+        lines += ["Warnings about what the data can tell:"] + [f"  - {f}" for f in r.flags] + [""]
+    if r.residuals:
+        rows = [("run", "quantity", "unit", "samples", "mean", "RMS")]
+        for d in r.residuals:
+            rows.append((d["run"], d["quantity"], d["unit"], str(d["count"]), fmt(d["mean"], 3), fmt(d["rms"], 3)))
+        lines += ["Residuals, weighted ((model - measured) / sigma, from the re-simulated runs; RMS near 1 is what",
+                  "the stated measurement error expects):"] + _table_lines(rows) + [""]
+    if r.starts:
+        rows = [("chi-square", "status", "iterations", "seconds", "from")]
+        for st_ in r.starts:
+            rows.append((fmt(st_.get("chi2"), 7), st_["status"], str(st_.get("iterations", "-")),
+                         f"{st_.get('seconds', 0.0):.2f}", st_["from"]))
+        lines += ["Starts of the NLP (chi-square of the collocation answer, before the polish):"] + _table_lines(rows)
+        if r.spread is not None:
+            lines.append(f"  spread over converged starts: {r.spread:.2%} of the best")
+        lines.append("")
+    lines.append(CAUTION)
+    lines.append(CALIBRATION_CAUTION)
+    return "\n".join(lines) + "\n"
