@@ -117,7 +117,10 @@ class OptimizeResult:
         Wall time of the whole job.
     record : dict
         Provenance and how the answer was found: settings, the final grid, the
-        grid's estimated gap, distinct local optima met, back-offs.
+        grid's estimated gap, distinct local optima met, back-offs; for a scenario
+        solve, each scenario's objective and verification ('scenarios').
+    nominal : OptimizeResult or None
+        For a scenario solve: the nominal problem's own optimum, for comparison.
     """
 
     status: str
@@ -136,6 +139,7 @@ class OptimizeResult:
     points: dict = field(repr=False, default_factory=dict)
     seconds: float = 0.0
     record: dict = field(default_factory=dict)
+    nominal: "OptimizeResult | None" = field(default=None, repr=False)
 
     @property
     def exit_code(self) -> int:
@@ -205,11 +209,40 @@ class _Answer:
     label: str = ""
 
 
+@dataclass(frozen=True)
+class ScenarioSet:
+    """The scenarios an optimisation carries (the nominal first).
+
+    constants : (n_constants, S) the model's constant vector per scenario
+    x0 : (nx, S) initial states per scenario, the full model's layout
+    labels : tuple of S names
+    combine : 'mean', 'worst' or 'mean_std' (objective over scenarios)
+    risk : k of mean - k*std
+    weights : (S,) summing to 1, or None for equal weights
+    """
+
+    constants: np.ndarray
+    x0: np.ndarray
+    labels: tuple
+    combine: str = "mean"
+    risk: float = 0.0
+    weights: tuple | None = None
+
+    @property
+    def w(self) -> np.ndarray:
+        return np.full(self.size, 1.0 / self.size) if self.weights is None else np.asarray(self.weights, float)
+
+    @property
+    def size(self) -> int:
+        return self.constants.shape[1]
+
+
 class _Job:
     """Everything the stages of one optimize run share."""
 
-    def __init__(self, problem: Problem, on_progress, deadline):
+    def __init__(self, problem: Problem, on_progress, deadline, scenarios: ScenarioSet | None = None):
         self.problem = problem
+        self.scenarios = scenarios
         self.settings = problem.settings
         self.full, self.lean, self.limits = models(problem)
         self.full_limits = build_limits(self.full)
@@ -234,15 +267,32 @@ class _Job:
             lower[lim.name] = None if lo is None else lo + b
             upper[lim.name] = None if hi is None else hi - b
             scale[lim.name] = lim.scale()
+        sc = self.scenarios
+        if sc is None:
+            constants, x0, weights, risk = lean.p0[:, None], lean.x0[:, None], np.ones(1), 0.0
+        else:
+            keep = [self.full.index(n) for n in lean.state_names]
+            constants, x0 = sc.constants, sc.x0[keep, :]
+            weights, risk = sc.w, sc.risk
         return NLPData(
-            constants=lean.p0[:, None], x0=lean.x0[:, None], end_time=self.fixed, end_bounds=self.t_bounds,
+            constants=constants, x0=x0, end_time=self.fixed, end_bounds=self.t_bounds,
             pump_min=np.array([f.min_rate for f in p.feeds]), pump_max=np.array([f.max_rate for f in p.feeds]),
             lower=lower, upper=upper, scale=scale, x_scale=scaling.x, t_scale=scaling.t,
-            j_scale=scaling.objective, weights=np.ones(1), smoothing=self.settings.smoothing,
+            j_scale=scaling.objective, weights=weights, smoothing=self.settings.smoothing, risk=risk,
         )
 
     def nlp(self, grid: Grid):
-        return get_nlp(self.problem, self.lean, self.limits, grid, self.free, smoothing=self.settings.smoothing > 0)
+        sc = self.scenarios
+        return get_nlp(self.problem, self.lean, self.limits, grid, self.free,
+                       scenarios=1 if sc is None else sc.size, combine="mean" if sc is None else sc.combine,
+                       smoothing=self.settings.smoothing > 0)
+
+    def scenario_inputs(self):
+        """(x0 of the full model, constants) per scenario: [(x0, p), ...]."""
+        sc = self.scenarios
+        if sc is None:
+            return [(self.full.x0, self.full.p0)]
+        return [(sc.x0[:, s], sc.constants[:, s]) for s in range(sc.size)]
 
     def report(self, label, iteration, f, infeasibility=None):
         """Progress of a running solve: ``f`` is the NLP's scaled objective, shown as
@@ -255,20 +305,113 @@ class _Job:
             self.progress(text, None, None)
 
     def pack_from_schedule(self, nlp, data, steps_u, T, traj=None):
-        """NLP vector from pump steps, with the states of their simulation."""
-        if traj is None:
-            M = steps_u.shape[0]
-            sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
-            traj = self.simulator.run(sched, T, min_points=max(400, 4 * M))
-        return nlp.pack(data, steps_u, T, traj.t, states_for(self.lean, self.full, traj.x))
+        """NLP vector from pump steps, with the states of their simulation in every
+        scenario (``traj``: the nominal's, when already simulated)."""
+        M = steps_u.shape[0]
+        sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
+        times, states = [], []
+        for s, (x0, p) in enumerate(self.scenario_inputs()):
+            tr = traj if (traj is not None and s == 0) else self.simulator.run(
+                sched, T, min_points=max(400, 4 * M), x0=x0, p=p)
+            times.append(tr.t)
+            states.append(states_for(self.lean, self.full, tr.x))
+        return nlp.pack(data, steps_u, T, times, states)
 
     def verify(self, nlp, data, start: Start) -> Verification:
+        """Re-simulate the answer's schedule (as schedule.csv will hold it: rounded,
+        exact zeros) in every scenario; verified when every scenario is. Returns the
+        nominal scenario's Verification, its message covering all of them; the
+        others are kept in ``self.scenario_checks``."""
         un = nlp.unpack(start.w, data)
-        # verify the schedule exactly as schedule.csv will hold it: rounded, exact zeros
         schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
                                   self.problem.feeds, end_time=un.T)
-        return verify(self.full, self.full_limits, schedule, un.T, start.objective,
-                      self.settings.verify_tolerance, self.simulator)
+        tol = self.settings.verify_tolerance
+        if self.scenarios is None:
+            return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator)
+        J_nlp = nlp.scenario_objectives(start.w, data)
+        checks = [verify(self.full, self.full_limits, schedule, un.T, float(J_nlp[s]), tol, self.simulator,
+                         x0=x0, p=p) for s, (x0, p) in enumerate(self.scenario_inputs())]
+        self.scenario_checks = checks
+        bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
+        nominal = checks[0]
+        if not bad:
+            message = f"every one of {len(checks)} scenarios verified; nominal: {nominal.message}"
+        else:
+            first = next(c for c in checks if not c.verified)
+            message = f"not verified in scenario(s) {', '.join(bad)}: {first.message}"
+        from dataclasses import replace as _replace
+
+        worst = max(checks, key=lambda c: c.worst_violation)
+        return _replace(nominal, verified=not bad, message=message, objective_nlp=start.objective,
+                        worst_violation=worst.worst_violation, worst_limit=worst.worst_limit,
+                        limits=_worst_reports([c.limits for c in checks]))
+
+
+def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
+    """Scenarios that are the same problem carry nothing new (and would make the NLP's
+    constraints degenerate): keep one of each (all the same: the nominal problem)."""
+    if sc is None:
+        return None
+    first, weight = {}, {}
+    for s, w in zip(range(sc.size), sc.w):
+        key = (tuple(sc.constants[:, s]), tuple(sc.x0[:, s]))
+        first.setdefault(key, s)
+        weight[key] = weight.get(key, 0.0) + w  # a repeated draw keeps its share of the mean
+    if len(first) == 1:
+        return None
+    if len(first) == sc.size:
+        return sc
+    keep = list(first.values())
+    return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep],
+                   labels=tuple(sc.labels[s] for s in keep), weights=tuple(weight[k] for k in first))
+
+
+def _seed_guesses(job, seeds) -> list:
+    """Known good feeds as starts: each schedule averaged onto the base pump grid and
+    simulated like any candidate feed."""
+    from .solve import Guess
+
+    out = []
+    M = job.settings.pump_steps
+    for label, schedule, T in seeds:
+        edges = np.linspace(0.0, T, M + 1)
+        segs = schedule.segments(job.full.feed_names, T)
+        steps = np.zeros((M, job.full.nu))
+        for k in range(M):
+            a, b = edges[k], edges[k + 1]
+            for seg in segs:
+                lo, hi = max(a, seg.start), min(b, seg.end)
+                if hi > lo:
+                    tt = np.linspace(lo, hi, 9)
+                    steps[k] += np.trapezoid(seg.rates(tt), tt, axis=0) / (b - a)
+        sched = piecewise_constant(job.full.feed_names, edges[:-1], steps)
+        try:
+            traj = job.simulator.run(sched, T, min_points=max(400, 4 * M))
+        except Exception:  # noqa: BLE001 - a seed the integrator cannot follow is left out
+            continue
+        J = job.full.end_value(traj.final, T, traj.u[-1])
+        out.append(Guess(label, steps, T, traj.t, traj.x, float(J), traj))
+    return out
+
+
+def combine(values, sc: ScenarioSet, maximize: bool = True) -> float:
+    """The scenarios' objectives made one, as the NLP makes them (equal weights): the
+    mean, the worst, or the mean less k standard deviations (plus, when minimising)."""
+    values = np.asarray(values, dtype=float)
+    if sc.combine == "worst":
+        return float(values.min() if maximize else values.max())
+    w = sc.w
+    mean = float(w @ values)
+    if sc.combine == "mean_std":
+        std = float(np.sqrt(w @ (values - mean) ** 2))
+        return mean - sc.risk * std if maximize else mean + sc.risk * std
+    return mean
+
+
+def _worst_reports(per_scenario) -> tuple:
+    """Per limit, the report of the scenario where it comes closest to (or furthest
+    past) its bound."""
+    return tuple(min(reps, key=lambda r: r.min_slack) for reps in zip(*per_scenario))
 
 
 def design_bounds(lim, margin: float) -> tuple:
@@ -283,7 +426,7 @@ def design_bounds(lim, margin: float) -> tuple:
 
 
 def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
-             set: dict | None = None) -> OptimizeResult:
+             set: dict | None = None, scenarios: ScenarioSet | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -299,6 +442,9 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``. (The name
         shadows the builtin ``set`` inside this function.)
+    scenarios : ScenarioSet, optional
+        Optimise one shared pump profile over these scenarios (every limit held in
+        each); default: the problem's ``uncertainty`` section, if it has one.
 
     Returns
     -------
@@ -318,12 +464,25 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
                              "(e.g. objective: {maximize: product_mass, product: P})")
     limit = time_limit if time_limit is not None else problem.settings.time_limit
     deadline = None if limit is None else time.monotonic() + limit
+    scenarios = merge_identical(scenarios)
     with interrupt_guard():
-        return _optimize(problem, workers, on_progress, deadline, t_start)
+        if scenarios is None:
+            return _optimize(problem, workers, on_progress, deadline, t_start)
+        # one pump profile over the scenarios, started (among others) from the
+        # nominal optimum, which is also reported beside it
+        say = on_progress or (lambda *a: None)
+        say("the nominal problem", None, None)
+        nominal = _optimize(problem, workers, on_progress, deadline, t_start)
+        say(f"one feed profile for {scenarios.size} scenarios", None, None)
+        seeds = [] if nominal.schedule is None else [("the nominal optimum", nominal.schedule, nominal.end_time)]
+        robust = _optimize(problem, workers, on_progress, deadline, t_start, scenarios, seeds)
+        return replace(robust, nominal=nominal)
 
 
-def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResult:
-    job = _Job(problem, on_progress, deadline)
+def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, seeds=()) -> OptimizeResult:
+    """The job; ``seeds`` are (label, schedule, end time) of known good feeds tried as
+    starts before the candidate feeds (e.g. the nominal optimum, for a scenario solve)."""
+    job = _Job(problem, on_progress, deadline, merge_identical(scenarios))
     s = job.settings
     record = {"problem_file": problem.source, "problem_digest": problem_digest(problem),
               "settings": dict(vars(s), elements=s.elements), **stamp()}
@@ -341,7 +500,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
         return result(st.INFEASIBLE, f"before solving: {blocked}")
 
     job.progress("simulating initial feeds", 0, s.starts)
-    guesses = make_guesses(problem, job.full, s.starts)
+    guesses = _seed_guesses(job, seeds) + make_guesses(problem, job.full, s.starts)
     if not guesses:
         return result(st.FAILED, "the integrator could not follow any of the initial feeds")
     diagnosis = _always_broken(job, guesses)
@@ -701,9 +860,22 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
         message = (f"{ver.message}; refine the grid "
                    "(solver.elements_per_step, degree)")
     points = _full_points(job, un)
+    objective_sim = None if ver.objective_sim is None else ver.objective_sim * job.f_obj
+    if job.scenarios is not None and ver.trajectory is not None:
+        sc = job.scenarios
+        sims = [c.objective_sim for c in job.scenario_checks]
+        nlps = nlp.scenario_objectives(best.w, data)
+        objective_sim = None if None in sims else combine(np.array(sims), sc, job.sense < 0) * job.f_obj
+        record["scenarios"] = {
+            "count": sc.size, "objective_over_scenarios": sc.combine, "k": sc.risk,
+            "labels": list(sc.labels),
+            "objective_nlp": [float(v) * job.f_obj for v in nlps],
+            "objective_resimulated": [None if v is None else float(v) * job.f_obj for v in sims],
+            "verified": [bool(c.verified) for c in job.scenario_checks],
+        }
     return result(
         status, message, objective_nlp=best.objective * job.f_obj,
-        objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+        objective_sim=objective_sim,
         end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
         outcome=outcome, points=points,
     )

@@ -256,7 +256,8 @@ class FeedNLP:
             mean = ca.dot(ws, Js)
             if self.combine == "mean_std":
                 var = ca.dot(ws, (Js - mean) ** 2)
-                J_comb = mean - risk * ca.sqrt(var + (1e-9 * js) ** 2)
+                # risk-averse in either sense: less k std when maximising, plus when minimising
+                J_comb = mean + self.sense * risk * ca.sqrt(var + (1e-9 * js) ** 2)
             else:
                 J_comb = mean
             obj = self.sense * J_comb / js
