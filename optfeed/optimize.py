@@ -207,6 +207,7 @@ class _Answer:
     verification: Verification | None = None
     backoff: dict = field(default_factory=dict)
     label: str = ""
+    pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
 
 
 @dataclass(frozen=True)
@@ -257,7 +258,9 @@ class _Job:
         self.sense = -1.0 if problem.objective.sense == "maximize" else 1.0
         self.j_scale = None
 
-    def data(self, scaling: Scaling, backoff=None) -> NLPData:
+    def data(self, scaling: Scaling, backoff=None, pump=None) -> NLPData:
+        """The numbers of a solve; ``pump`` = (lower, upper), each (nu, M) L/h, bounds
+        the pumps step by step (an on/off pattern fixed)."""
         p, lean = self.problem, self.lean
         self.j_scale = self.j_scale or scaling.objective
         lower, upper, scale = {}, {}, {}
@@ -276,9 +279,11 @@ class _Job:
             weights, risk = sc.w, sc.risk
         return NLPData(
             constants=constants, x0=x0, end_time=self.fixed, end_bounds=self.t_bounds,
-            pump_min=np.array([f.min_rate for f in p.feeds]), pump_max=np.array([f.max_rate for f in p.feeds]),
+            pump_min=np.array([f.min_rate for f in p.feeds]) if pump is None else pump[0],
+            pump_max=np.array([f.max_rate for f in p.feeds]) if pump is None else pump[1],
             lower=lower, upper=upper, scale=scale, x_scale=scaling.x, t_scale=scaling.t,
             j_scale=scaling.objective, weights=weights, smoothing=self.settings.smoothing, risk=risk,
+            pump_scale=np.array([f.max_rate for f in p.feeds]),
         )
 
     def nlp(self, grid: Grid):
@@ -551,6 +556,10 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
     if best is not None and s.refine_grid and not _stop_now(job):
         best = _refine_grid(job, best, scaling, record)
 
+    # 5: pumps as they are: off, or at least their minimum setting
+    if best is not None and any(f.min_on > f.min_rate for f in problem.feeds) and not _stop_now(job):
+        best = _pump_minimum(job, best, scaling, record)
+
     chosen = best or first_unverified
     return _final(job, result, chosen, summaries, spread, record, diagnosis)
 
@@ -739,14 +748,14 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
             trial[name] = trial.get(name, 0.0) + 1.5 * amount
         job.progress(f"keeping clear of {', '.join(excess)} between collocation points (round {round_})",
                      None, None)
-        data = job.data(scaling, trial)
+        data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
                     deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             break
         st_.iterations += ans.start.iterations
-        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label)
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump)
     return ans
 
 
@@ -800,6 +809,55 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
     return best
 
 
+def _pump_minimum(job, best: _Answer, scaling, record) -> _Answer:
+    """A pump that is either off or runs at least ``min_on`` makes the problem
+    combinatorial. Solved honestly in two steps: the relaxed answer (any rate in the
+    range) fixes the on/off pattern (a step is on where the relaxed rate reaches half
+    the minimum), then the problem is solved again with each step held off or at
+    least at the minimum, and verified. Both objectives are recorded."""
+    s = job.settings
+    un = best.nlp.unpack(best.start.w, best.data)
+    u = un.u_steps.T  # (nu, M)
+    lo, hi = np.zeros_like(u), np.zeros_like(u)
+    switched = {}
+    for j, f in enumerate(job.problem.feeds):
+        if f.min_on > f.min_rate:
+            on = u[j] >= 0.5 * f.min_on
+            lo[j] = np.where(on, f.min_on, f.min_rate)
+            hi[j] = np.where(on, f.max_rate, f.min_rate)
+            switched[f.name] = {"steps_on": int(on.sum()), "steps_off": int((~on).sum()),
+                                "steps_raised_to_minimum": int((on & (u[j] < f.min_on)).sum())}
+        else:
+            lo[j], hi[j] = f.min_rate, f.max_rate
+    already = all(np.all((u[j] <= 1e-12 * f.max_rate) | (u[j] >= f.min_on * (1 - 1e-9)))
+                  for j, f in enumerate(job.problem.feeds) if f.min_on > f.min_rate)
+    if already:
+        record["pump_minimum"] = {"note": "the relaxed answer already keeps every pump off or at its minimum",
+                                  "feeds": switched}
+        return best
+    job.progress("fixing the pumps' on/off pattern and solving again", None, None)
+    pump = (lo, hi)
+    data = job.data(scaling, best.backoff, pump)
+    lbx, ubx, _, _ = best.nlp.bounds(data)
+    w0 = np.clip(best.start.w, lbx, ubx)
+    st_ = solve(best.nlp, data, w0, best.label + ", pumps off or at their minimum", profile="near",
+                tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+    relaxed = best.start.objective * job.f_obj
+    if st_.status == "converged" and st_.objective is not None:
+        ans = _verified(job, _Answer(st_, best.nlp, data, label=best.label, backoff=dict(best.backoff), pump=pump),
+                        scaling)
+        record["pump_minimum"] = {"relaxed_objective": relaxed, "objective": st_.objective * job.f_obj,
+                                  "feeds": switched, "note": "on/off pattern of the relaxed answer fixed, then "
+                                  "solved again with each step off or at least at the pump's minimum"}
+        return ans
+    record["pump_minimum"] = {"relaxed_objective": relaxed, "feeds": switched,
+                              "note": f"solving with the on/off pattern fixed ended {st_.status}"}
+    bad = replace(best.verification, verified=False,
+                  message=f"the answer runs a pump below its minimum setting (min_on), and solving again with "
+                          f"the on/off pattern fixed ended {st_.status}")
+    return _Answer(best.start, best.nlp, best.data, bad, best.backoff, best.label)
+
+
 # ---------------------------------------------------------------------- the result
 
 
@@ -846,6 +904,11 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
     kept += kept_margin
+    pm = record.get("pump_minimum", {})
+    if "objective" in pm:
+        kept += (f"; pumps off or at least their minimum setting: the relaxed answer's on/off pattern fixed and "
+                 f"solved again ({pm['relaxed_objective']:.6g} relaxed, {pm['objective']:.6g} {job.unit} as "
+                 "the pumps can run)")
     gap = record.get("grid_gap_relative")
     if gap is not None:
         kept += f"; pump grid {nlp.grid.pump_steps} steps (last refinement changed the objective by {gap:.2%})"
