@@ -257,6 +257,9 @@ class _Job:
         self.better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
         self.sense = -1.0 if problem.objective.sense == "maximize" else 1.0
         self.j_scale = None
+        # pumps that are off or at least a minimum: the search works on the relaxed
+        # problem, and only the final stage holds (and verifies) the minimum settings
+        self.relaxed_pumps = any(f.min_on > f.min_rate for f in problem.feeds)
 
     def data(self, scaling: Scaling, backoff=None, pump=None) -> NLPData:
         """The numbers of a solve; ``pump`` = (lower, upper), each (nu, M) L/h, bounds
@@ -331,11 +334,13 @@ class _Job:
         schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
                                   self.problem.feeds, end_time=un.T)
         tol = self.settings.verify_tolerance
+        ignore = ("setting",) if self.relaxed_pumps else ()
         if self.scenarios is None:
-            return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator)
+            return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator,
+                          ignore=ignore)
         J_nlp = nlp.scenario_objectives(start.w, data)
         checks = [verify(self.full, self.full_limits, schedule, un.T, float(J_nlp[s]), tol, self.simulator,
-                         x0=x0, p=p) for s, (x0, p) in enumerate(self.scenario_inputs())]
+                         x0=x0, p=p, ignore=ignore) for s, (x0, p) in enumerate(self.scenario_inputs())]
         self.scenario_checks = checks
         bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
         nominal = checks[0]
@@ -720,7 +725,7 @@ def _excess(job, ver) -> dict:
     out = {}
     margin = job.problem.vessel.margin
     for lim, rep in zip(job.full_limits, ver.limits):
-        if lim.kind == "pump":
+        if lim.kind in ("pump", "setting"):
             continue
         slack = rep.min_slack / lim.factor  # to the limit itself, internal units
         bound = lim.upper if rep.side == "max" else lim.lower
@@ -832,9 +837,12 @@ def _pump_minimum(job, best: _Answer, scaling, record) -> _Answer:
     already = all(np.all((u[j] <= 1e-12 * f.max_rate) | (u[j] >= f.min_on * (1 - 1e-9)))
                   for j, f in enumerate(job.problem.feeds) if f.min_on > f.min_rate)
     if already:
+        job.relaxed_pumps = False
+        best = _verified(job, best, scaling)
         record["pump_minimum"] = {"note": "the relaxed answer already keeps every pump off or at its minimum",
                                   "feeds": switched}
         return best
+    job.relaxed_pumps = False
     job.progress("fixing the pumps' on/off pattern and solving again", None, None)
     pump = (lo, hi)
     data = job.data(scaling, best.backoff, pump)
@@ -867,6 +875,11 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     if ans is None:
         return result(st.FAILED, "no answer to verify", starts=summaries, spread=spread)
     ver, best, nlp, data = ans.verification, ans.start, ans.nlp, ans.data
+    if job.relaxed_pumps and ver.verified:  # stopped before the pumps' minimum settings were held
+        broken = [r.name for r in ver.limits if r.kind == "setting" and r.violated]
+        if broken:
+            ver = replace(ver, verified=False, message=f"{ver.message}; but '{broken[0]}' is broken: the search "
+                          "stopped before the pumps' minimum settings were held")
     un = nlp.unpack(best.w, data)
     record["grid"] = {"pump_steps": nlp.grid.pump_steps, "elements": nlp.grid.elements, "degree": nlp.grid.degree}
     margin = job.problem.vessel.margin
@@ -1032,7 +1045,7 @@ def _blocked_at_start(job) -> str:
     """A path limit that no pump setting can meet at t = 0, described; '' if none."""
     feeds = job.problem.feeds
     corners = list(itertools.product(*[(f.min_rate, f.max_rate) for f in feeds]))[:64]
-    path = [l for l in job.full_limits if not l.at_end and l.kind != "pump"]
+    path = [l for l in job.full_limits if not l.at_end and l.kind not in ("pump", "setting")]
     if not path:
         return ""
     g = limit_function(job.full, path)
@@ -1068,7 +1081,7 @@ def _always_broken(job, guesses) -> str:
     broken = None
     for traj in trials:
         reports, _ = judge(job.full, job.full_limits, traj)
-        names = {r.name: r for r in reports if r.violated and r.kind != "pump"}
+        names = {r.name: r for r in reports if r.violated and r.kind not in ("pump", "setting")}
         if broken is None:
             broken = {n: [r] for n, r in names.items()}
         else:

@@ -144,7 +144,7 @@ class FeedNLP:
                  combine: str = "mean", smoothing: bool = False):
         if combine not in COMBINE:
             raise ValueError(f"combine must be one of {COMBINE}")
-        self.model, self.limits, self.grid = model, list(limits), grid
+        self.model, self.limits, self.grid = model, [l for l in limits if l.kind != "setting"], grid
         self.free_time, self.S, self.combine = free_time, int(scenarios), combine
         self.has_smoothing = smoothing
         self.sense = -1.0 if (model.problem.objective is None or model.problem.objective.sense == "maximize") else 1.0
@@ -165,7 +165,7 @@ class FeedNLP:
         us = P.add("u_scale", nu)
         js = P.add("j_scale")
         ws = P.add("weights", S)
-        path = [l for l in self.limits if not l.at_end and l.kind != "pump"]
+        path = [l for l in self.limits if not l.at_end and l.kind not in ("pump", "setting")]
         rows_lim = [l for l in path if l.state is None]
         self.bound_limits = [l for l in path if l.state is not None]
         ends = [l for l in self.limits if l.at_end]

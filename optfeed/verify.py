@@ -65,10 +65,12 @@ def pump_schedule(feed_names, t_steps, u_steps, source: str = "") -> Schedule:
 
 
 def verify(model, limits, schedule: Schedule, end_time: float, objective_nlp, tolerance: float,
-           simulator: Simulator | None = None, x0=None, p=None) -> Verification:
+           simulator: Simulator | None = None, x0=None, p=None, ignore: tuple = ()) -> Verification:
     """Re-simulate ``schedule`` over [0, end_time] h with CVODES and judge it exactly
     as ``optfeed check`` does. ``model`` is the full model (every state); ``x0`` and
-    ``p`` another scenario's initial state and constants (default: the problem's)."""
+    ``p`` another scenario's initial state and constants (default: the problem's).
+    Limits of the kinds in ``ignore`` are judged and reported but do not decide
+    (a relaxed answer whose pump settings are fixed afterwards)."""
     sim = simulator or Simulator(model)
     try:
         traj = sim.run(schedule, end_time, x0=x0, p=p)
@@ -85,6 +87,8 @@ def verify(model, limits, schedule: Schedule, end_time: float, objective_nlp, to
         diff = 0.0
     worst, worst_name = 0.0, ""
     for lim, rep in zip(limits, reports):
+        if lim.kind in ignore:
+            continue
         rel = lim.relative_excess(rep)
         if rel > worst:
             worst, worst_name = rel, lim.name

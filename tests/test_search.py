@@ -171,3 +171,13 @@ def test_pumps_run_off_or_at_least_their_minimum_on_their_own_step(tmp_path):
     out = write_optimize_run(r, tmp_path / "run", figures=False)
     c = optfeed.check(DEMO, out / "schedule.csv", set={"feeds.concentrate.min_on": "20 mL/h"})
     assert c.status == "within limits", c.message
+
+
+def test_check_names_a_rate_below_the_pumps_minimum_setting(write):
+    # 5 mL/h from 10 h on a pump that is off or runs at least 20 mL/h: broken at 10 h
+    # by 5 mL/h (how far the rate lies inside the band the pump cannot run in)
+    sched = write("mo.csv", "time [h],concentrate [mL/h]\n0,0\n10,5\n20,40\n")
+    r = optfeed.check(DEMO, sched, set={"feeds.concentrate.min_on": "20 mL/h"})
+    rep = next(x for x in r.limits if x.name == "pump concentrate minimum setting")
+    assert rep.first_violation == pytest.approx(10.0)
+    assert rep.worst_violation == pytest.approx(5.0) and rep.unit == "mL/h"
