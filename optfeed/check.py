@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 
 from . import status as st
-from .errors import InputError, SimulationError
+from .errors import InputError, SimulationError, TimeLimitReached
 from .limits import LimitReport, build_limits, judge
 from .model import build_model
 from .outcome import Outcome, outcome_of
@@ -92,7 +93,8 @@ class CheckResult:
         return result_repr(self)
 
 
-def check(problem, schedule, end_time: float | None = None, set: dict | None = None) -> CheckResult:
+def check(problem, schedule, end_time: float | None = None, set: dict | None = None,
+          time_limit: float | None = None) -> CheckResult:
     """Simulate ``schedule`` on ``problem`` and judge every limit.
 
     Parameters
@@ -108,6 +110,9 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     set : dict, optional
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h"}``.
+    time_limit : float, optional
+        Seconds for the simulation; when it is reached the status is 'time limit'
+        and the message says how far the run got.
 
     Returns
     -------
@@ -128,8 +133,13 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}
     limits = build_limits(model)
+    deadline = None if time_limit is None else time.monotonic() + time_limit
     try:
-        traj = simulate(model, schedule, tf)
+        traj = simulate(model, schedule, tf, deadline=deadline)
+    except TimeLimitReached as exc:
+        return CheckResult(st.TIME_LIMIT, f"time limit of {time_limit:g} s reached: the simulation got to "
+                           f"{exc.time:.4g} h of {tf:.4g} h; nothing was judged", (), None, tf, problem, schedule,
+                           None, {}, record)
     except SimulationError as exc:
         return CheckResult(st.SIMULATION_FAILED, str(exc), (), None, tf, problem,  # the status says 'failed'
                            schedule, None, {}, record)

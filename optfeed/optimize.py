@@ -117,7 +117,10 @@ class OptimizeResult:
         Wall time of the whole job.
     record : dict
         Provenance and how the answer was found: settings, the final grid, the
-        grid's estimated gap, distinct local optima met, back-offs.
+        grid's estimated gap, distinct local optima met, back-offs; for a scenario
+        solve, each scenario's objective and verification ('scenarios').
+    nominal : OptimizeResult or None
+        For a scenario solve: the nominal problem's own optimum, for comparison.
     """
 
     status: str
@@ -136,6 +139,7 @@ class OptimizeResult:
     points: dict = field(repr=False, default_factory=dict)
     seconds: float = 0.0
     record: dict = field(default_factory=dict)
+    nominal: "OptimizeResult | None" = field(default=None, repr=False)
 
     @property
     def exit_code(self) -> int:
@@ -189,6 +193,7 @@ class OptimizeResult:
 # iteration caps of the stages (the whole start never exceeds solver.max_iter)
 COARSE_ITER = 600
 MAX_BACKOFF_ROUNDS = 3
+REFINE_ITER = 200  # a refinement that needs more than this from a near point is not worth its time
 DISTINCT_REL = 1e-4  # coarse answers closer than this (objective and pump profile) are one optimum
 
 
@@ -202,13 +207,43 @@ class _Answer:
     verification: Verification | None = None
     backoff: dict = field(default_factory=dict)
     label: str = ""
+    pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
+
+
+@dataclass(frozen=True)
+class ScenarioSet:
+    """The scenarios an optimisation carries (the nominal first).
+
+    constants : (n_constants, S) the model's constant vector per scenario
+    x0 : (nx, S) initial states per scenario, the full model's layout
+    labels : tuple of S names
+    combine : 'mean', 'worst' or 'mean_std' (objective over scenarios)
+    risk : k of mean - k*std
+    weights : (S,) summing to 1, or None for equal weights
+    """
+
+    constants: np.ndarray
+    x0: np.ndarray
+    labels: tuple
+    combine: str = "mean"
+    risk: float = 0.0
+    weights: tuple | None = None
+
+    @property
+    def w(self) -> np.ndarray:
+        return np.full(self.size, 1.0 / self.size) if self.weights is None else np.asarray(self.weights, float)
+
+    @property
+    def size(self) -> int:
+        return self.constants.shape[1]
 
 
 class _Job:
     """Everything the stages of one optimize run share."""
 
-    def __init__(self, problem: Problem, on_progress, deadline):
+    def __init__(self, problem: Problem, on_progress, deadline, scenarios: ScenarioSet | None = None):
         self.problem = problem
+        self.scenarios = scenarios
         self.settings = problem.settings
         self.full, self.lean, self.limits = models(problem)
         self.full_limits = build_limits(self.full)
@@ -220,50 +255,183 @@ class _Job:
         self.label, self.unit = objective_label(self.full)
         self.f_obj = factor_to(self.unit) if self.unit else 1.0
         self.better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
+        self.sense = -1.0 if problem.objective.sense == "maximize" else 1.0
+        self.j_scale = None
 
-    def data(self, scaling: Scaling, backoff=None) -> NLPData:
+    def data(self, scaling: Scaling, backoff=None, pump=None) -> NLPData:
+        """The numbers of a solve; ``pump`` = (lower, upper), each (nu, M) L/h, bounds
+        the pumps step by step (an on/off pattern fixed)."""
         p, lean = self.problem, self.lean
+        self.j_scale = self.j_scale or scaling.objective
         lower, upper, scale = {}, {}, {}
         for lim in self.limits:
+            lo, hi = design_bounds(lim, p.vessel.margin)
             b = (backoff or {}).get(lim.name, 0.0)
-            lower[lim.name] = None if lim.lower is None else lim.lower + b
-            upper[lim.name] = None if lim.upper is None else lim.upper - b
+            lower[lim.name] = None if lo is None else lo + b
+            upper[lim.name] = None if hi is None else hi - b
             scale[lim.name] = lim.scale()
+        sc = self.scenarios
+        if sc is None:
+            constants, x0, weights, risk = lean.p0[:, None], lean.x0[:, None], np.ones(1), 0.0
+        else:
+            keep = [self.full.index(n) for n in lean.state_names]
+            constants, x0 = sc.constants, sc.x0[keep, :]
+            weights, risk = sc.w, sc.risk
         return NLPData(
-            constants=lean.p0[:, None], x0=lean.x0[:, None], end_time=self.fixed, end_bounds=self.t_bounds,
-            pump_min=np.array([f.min_rate for f in p.feeds]), pump_max=np.array([f.max_rate for f in p.feeds]),
+            constants=constants, x0=x0, end_time=self.fixed, end_bounds=self.t_bounds,
+            pump_min=np.array([f.min_rate for f in p.feeds]) if pump is None else pump[0],
+            pump_max=np.array([f.max_rate for f in p.feeds]) if pump is None else pump[1],
             lower=lower, upper=upper, scale=scale, x_scale=scaling.x, t_scale=scaling.t,
-            j_scale=scaling.objective, weights=np.ones(1), smoothing=self.settings.smoothing,
+            j_scale=scaling.objective, weights=weights, smoothing=self.settings.smoothing, risk=risk,
+            pump_scale=np.array([f.max_rate for f in p.feeds]),
         )
 
     def nlp(self, grid: Grid):
-        return get_nlp(self.problem, self.lean, self.limits, grid, self.free, smoothing=self.settings.smoothing > 0)
+        sc = self.scenarios
+        return get_nlp(self.problem, self.lean, self.limits, grid, self.free,
+                       scenarios=1 if sc is None else sc.size, combine="mean" if sc is None else sc.combine,
+                       smoothing=self.settings.smoothing > 0)
 
-    def report(self, label, iteration, objective):
-        """Progress of a running solve (objective in the NLP's scaled units)."""
-        text = f"{label}: iteration {iteration}"
+    def scenario_inputs(self):
+        """(x0 of the full model, constants) per scenario: [(x0, p), ...]."""
+        sc = self.scenarios
+        if sc is None:
+            return [(self.full.x0, self.full.p0)]
+        return [(sc.x0[:, s], sc.constants[:, s]) for s in range(sc.size)]
+
+    def report(self, label, iteration, f, infeasibility=None):
+        """Progress of a running solve: ``f`` is the NLP's scaled objective, shown as
+        the objective in its unit (with the scaling of the first data built)."""
+        J = f * self.sense * self.j_scale * self.f_obj if self.j_scale else f
+        text = f"{label}: iteration {iteration}, objective {J:.6g} {self.unit}".rstrip()
+        if infeasibility is not None:
+            text += f", largest constraint violation {infeasibility:.1e} (scaled)"
         if not report_progress(text):
             self.progress(text, None, None)
 
     def pack_from_schedule(self, nlp, data, steps_u, T, traj=None):
-        """NLP vector from pump steps, with the states of their simulation."""
-        if traj is None:
-            M = steps_u.shape[0]
-            sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
-            traj = self.simulator.run(sched, T, min_points=max(400, 4 * M))
-        return nlp.pack(data, steps_u, T, traj.t, states_for(self.lean, self.full, traj.x))
+        """NLP vector from pump steps, with the states of their simulation in every
+        scenario (``traj``: the nominal's, when already simulated)."""
+        M = steps_u.shape[0]
+        sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
+        times, states = [], []
+        for s, (x0, p) in enumerate(self.scenario_inputs()):
+            tr = traj if (traj is not None and s == 0) else self.simulator.run(
+                sched, T, min_points=max(400, 4 * M), x0=x0, p=p)
+            times.append(tr.t)
+            states.append(states_for(self.lean, self.full, tr.x))
+        return nlp.pack(data, steps_u, T, times, states)
 
     def verify(self, nlp, data, start: Start) -> Verification:
+        """Re-simulate the answer's schedule (as schedule.csv will hold it: rounded,
+        exact zeros) in every scenario; verified when every scenario is. Returns the
+        nominal scenario's Verification, its message covering all of them; the
+        others are kept in ``self.scenario_checks``."""
         un = nlp.unpack(start.w, data)
-        # verify the schedule exactly as schedule.csv will hold it: rounded, exact zeros
         schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
                                   self.problem.feeds, end_time=un.T)
-        return verify(self.full, self.full_limits, schedule, un.T, start.objective,
-                      self.settings.verify_tolerance, self.simulator)
+        tol = self.settings.verify_tolerance
+        if self.scenarios is None:
+            return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator)
+        J_nlp = nlp.scenario_objectives(start.w, data)
+        checks = [verify(self.full, self.full_limits, schedule, un.T, float(J_nlp[s]), tol, self.simulator,
+                         x0=x0, p=p) for s, (x0, p) in enumerate(self.scenario_inputs())]
+        self.scenario_checks = checks
+        bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
+        nominal = checks[0]
+        if not bad:
+            message = f"every one of {len(checks)} scenarios verified; nominal: {nominal.message}"
+        else:
+            first = next(c for c in checks if not c.verified)
+            message = f"not verified in scenario(s) {', '.join(bad)}: {first.message}"
+        from dataclasses import replace as _replace
+
+        worst = max(checks, key=lambda c: c.worst_violation)
+        return _replace(nominal, verified=not bad, message=message, objective_nlp=start.objective,
+                        worst_violation=worst.worst_violation, worst_limit=worst.worst_limit,
+                        limits=_worst_reports([c.limits for c in checks]))
+
+
+def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
+    """Scenarios that are the same problem carry nothing new (and would make the NLP's
+    constraints degenerate): keep one of each (all the same: the nominal problem)."""
+    if sc is None:
+        return None
+    first, weight = {}, {}
+    for s, w in zip(range(sc.size), sc.w):
+        key = (tuple(sc.constants[:, s]), tuple(sc.x0[:, s]))
+        first.setdefault(key, s)
+        weight[key] = weight.get(key, 0.0) + w  # a repeated draw keeps its share of the mean
+    if len(first) == 1:
+        return None
+    if len(first) == sc.size:
+        return sc
+    keep = list(first.values())
+    return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep],
+                   labels=tuple(sc.labels[s] for s in keep), weights=tuple(weight[k] for k in first))
+
+
+def _seed_guesses(job, seeds) -> list:
+    """Known good feeds as starts: each schedule averaged onto the base pump grid and
+    simulated like any candidate feed."""
+    from .solve import Guess
+
+    out = []
+    M = job.settings.pump_steps
+    for label, schedule, T in seeds:
+        edges = np.linspace(0.0, T, M + 1)
+        segs = schedule.segments(job.full.feed_names, T)
+        steps = np.zeros((M, job.full.nu))
+        for k in range(M):
+            a, b = edges[k], edges[k + 1]
+            for seg in segs:
+                lo, hi = max(a, seg.start), min(b, seg.end)
+                if hi > lo:
+                    tt = np.linspace(lo, hi, 9)
+                    steps[k] += np.trapezoid(seg.rates(tt), tt, axis=0) / (b - a)
+        sched = piecewise_constant(job.full.feed_names, edges[:-1], steps)
+        try:
+            traj = job.simulator.run(sched, T, min_points=max(400, 4 * M))
+        except Exception:  # noqa: BLE001 - a seed the integrator cannot follow is left out
+            continue
+        J = job.full.end_value(traj.final, T, traj.u[-1])
+        out.append(Guess(label, steps, T, traj.t, traj.x, float(J), traj))
+    return out
+
+
+def combine(values, sc: ScenarioSet, maximize: bool = True) -> float:
+    """The scenarios' objectives made one, as the NLP makes them (equal weights): the
+    mean, the worst, or the mean less k standard deviations (plus, when minimising)."""
+    values = np.asarray(values, dtype=float)
+    if sc.combine == "worst":
+        return float(values.min() if maximize else values.max())
+    w = sc.w
+    mean = float(w @ values)
+    if sc.combine == "mean_std":
+        std = float(np.sqrt(w @ (values - mean) ** 2))
+        return mean - sc.risk * std if maximize else mean + sc.risk * std
+    return mean
+
+
+def _worst_reports(per_scenario) -> tuple:
+    """Per limit, the report of the scenario where it comes closest to (or furthest
+    past) its bound."""
+    return tuple(min(reps, key=lambda r: r.min_slack) for reps in zip(*per_scenario))
+
+
+def design_bounds(lim, margin: float) -> tuple:
+    """(lower, upper) the optimizer designs to (internal units): the limit's own bounds
+    moved inward by the engineering margin (``vessel.margin``), except for pumps,
+    whose range is the machine's."""
+    if lim.kind == "pump" or not margin:
+        return lim.lower, lim.upper
+    lo = None if lim.lower is None else lim.lower + margin * abs(lim.lower)
+    hi = None if lim.upper is None else lim.upper - margin * abs(lim.upper)
+    return lo, hi
 
 
 def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
-             set: dict | None = None) -> OptimizeResult:
+             set: dict | None = None, scenarios: ScenarioSet | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -279,6 +447,9 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``. (The name
         shadows the builtin ``set`` inside this function.)
+    scenarios : ScenarioSet, optional
+        Optimise one shared pump profile over these scenarios (every limit held in
+        each); default: the problem's ``uncertainty`` section, if it has one.
 
     Returns
     -------
@@ -298,12 +469,25 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
                              "(e.g. objective: {maximize: product_mass, product: P})")
     limit = time_limit if time_limit is not None else problem.settings.time_limit
     deadline = None if limit is None else time.monotonic() + limit
+    scenarios = merge_identical(scenarios)
     with interrupt_guard():
-        return _optimize(problem, workers, on_progress, deadline, t_start)
+        if scenarios is None:
+            return _optimize(problem, workers, on_progress, deadline, t_start)
+        # one pump profile over the scenarios, started (among others) from the
+        # nominal optimum, which is also reported beside it
+        say = on_progress or (lambda *a: None)
+        say("the nominal problem", None, None)
+        nominal = _optimize(problem, workers, on_progress, deadline, t_start)
+        say(f"one feed profile for {scenarios.size} scenarios", None, None)
+        seeds = [] if nominal.schedule is None else [("the nominal optimum", nominal.schedule, nominal.end_time)]
+        robust = _optimize(problem, workers, on_progress, deadline, t_start, scenarios, seeds)
+        return replace(robust, nominal=nominal)
 
 
-def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResult:
-    job = _Job(problem, on_progress, deadline)
+def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, seeds=()) -> OptimizeResult:
+    """The job; ``seeds`` are (label, schedule, end time) of known good feeds tried as
+    starts before the candidate feeds (e.g. the nominal optimum, for a scenario solve)."""
+    job = _Job(problem, on_progress, deadline, merge_identical(scenarios))
     s = job.settings
     record = {"problem_file": problem.source, "problem_digest": problem_digest(problem),
               "settings": dict(vars(s), elements=s.elements), **stamp()}
@@ -318,12 +502,12 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
 
     blocked = _blocked_at_start(job)
     if blocked:
-        return result(st.INFEASIBLE, f"infeasible before solving: {blocked}")
+        return result(st.INFEASIBLE, f"before solving: {blocked}")
 
     job.progress("simulating initial feeds", 0, s.starts)
-    guesses = make_guesses(problem, job.full, s.starts)
+    guesses = _seed_guesses(job, seeds) + make_guesses(problem, job.full, s.starts)
     if not guesses:
-        return result(st.FAILED, "failed: the integrator could not follow any of the initial feeds")
+        return result(st.FAILED, "the integrator could not follow any of the initial feeds")
     diagnosis = _always_broken(job, guesses)
     if diagnosis:
         record["diagnosis"] = diagnosis
@@ -371,6 +555,10 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
     # 4: a pump grid fine enough
     if best is not None and s.refine_grid and not _stop_now(job):
         best = _refine_grid(job, best, scaling, record)
+
+    # 5: pumps as they are: off, or at least their minimum setting
+    if best is not None and any(f.min_on > f.min_rate for f in problem.feeds) and not _stop_now(job):
+        best = _pump_minimum(job, best, scaling, record)
 
     chosen = best or first_unverified
     return _final(job, result, chosen, summaries, spread, record, diagnosis)
@@ -526,14 +714,22 @@ def _summaries(job, guesses, coarse_starts, groups, fine_starts):
 
 
 def _excess(job, ver) -> dict:
-    """Limit name -> amount (internal units) by which the re-simulation exceeds it
-    beyond the verification tolerance."""
+    """Limit name -> amount (internal units) by which the re-simulation passes the
+    bound the optimizer designs to (the limit's own, or inside it by the engineering
+    margin) beyond the verification tolerance."""
     out = {}
+    margin = job.problem.vessel.margin
     for lim, rep in zip(job.full_limits, ver.limits):
-        if lim.kind == "pump" or rep.worst_violation <= 0:
+        if lim.kind == "pump":
             continue
-        if lim.relative_excess(rep) > REL_TOL:
-            out[lim.name] = rep.worst_violation / lim.factor
+        slack = rep.min_slack / lim.factor  # to the limit itself, internal units
+        bound = lim.upper if rep.side == "max" else lim.lower
+        lo, hi = design_bounds(lim, margin)
+        designed = hi if rep.side == "max" else lo
+        inside = 0.0 if bound is None or designed is None else abs(bound - designed)
+        amount = inside - slack  # how far past the designed bound
+        if amount > REL_TOL * lim.scale() + 1e-12 * lim.scale():
+            out[lim.name] = amount
     return out
 
 
@@ -545,21 +741,21 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
     for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
         ver = ans.verification
         excess = _excess(job, ver)
-        if ver.verified or not excess or ver.objective_rel_diff > s.verify_tolerance or _stop_now(job):
+        if not excess or ver.objective_rel_diff > s.verify_tolerance or _stop_now(job):
             break
         trial = dict(ans.backoff)
         for name, amount in excess.items():
             trial[name] = trial.get(name, 0.0) + 1.5 * amount
         job.progress(f"keeping clear of {', '.join(excess)} between collocation points (round {round_})",
                      None, None)
-        data = job.data(scaling, trial)
+        data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
                     deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             break
         st_.iterations += ans.start.iterations
-        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label)
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump)
     return ans
 
 
@@ -575,11 +771,18 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
         new_grid = Grid(M2, N2, grid.degree)
         job.progress(f"refining the pump grid: {M2} steps", None, None)
         nlp = job.nlp(new_grid)
-        un = best.nlp.unpack(best.start.w, best.data)
-        steps = np.repeat(un.u_steps, 2, axis=0)
-        w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
-        st_ = solve(nlp, best.data, w0, best.label + f", {M2} pump steps", profile="near",
-                    tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+        label = best.label + f", {M2} pump steps"
+        moved = best.nlp.split_steps(nlp, best.start.w, best.start.lam_g, best.start.lam_x)
+        if moved is not None:  # the same elements: start exactly at the old optimum, multipliers and all
+            w0, lam_g, lam_x = moved
+            st_ = solve(nlp, best.data, w0, label, profile="warm", tolerance=s.tolerance, max_iter=s.max_iter,
+                        warm=(lam_g, lam_x), deadline=job.deadline, report=job.report)
+        else:  # finer elements too: start from the simulated schedule, with a capped budget
+            un = best.nlp.unpack(best.start.w, best.data)
+            steps = np.repeat(un.u_steps, 2, axis=0)
+            w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
+            st_ = solve(nlp, best.data, w0, label, profile="near", tolerance=s.tolerance,
+                        max_iter=min(s.max_iter, REFINE_ITER), deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             record["grid_refinement"] = f"stopped at {grid.pump_steps} pump steps: the {M2}-step solve {st_.status}"
             break
@@ -606,6 +809,55 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
     return best
 
 
+def _pump_minimum(job, best: _Answer, scaling, record) -> _Answer:
+    """A pump that is either off or runs at least ``min_on`` makes the problem
+    combinatorial. Solved honestly in two steps: the relaxed answer (any rate in the
+    range) fixes the on/off pattern (a step is on where the relaxed rate reaches half
+    the minimum), then the problem is solved again with each step held off or at
+    least at the minimum, and verified. Both objectives are recorded."""
+    s = job.settings
+    un = best.nlp.unpack(best.start.w, best.data)
+    u = un.u_steps.T  # (nu, M)
+    lo, hi = np.zeros_like(u), np.zeros_like(u)
+    switched = {}
+    for j, f in enumerate(job.problem.feeds):
+        if f.min_on > f.min_rate:
+            on = u[j] >= 0.5 * f.min_on
+            lo[j] = np.where(on, f.min_on, f.min_rate)
+            hi[j] = np.where(on, f.max_rate, f.min_rate)
+            switched[f.name] = {"steps_on": int(on.sum()), "steps_off": int((~on).sum()),
+                                "steps_raised_to_minimum": int((on & (u[j] < f.min_on)).sum())}
+        else:
+            lo[j], hi[j] = f.min_rate, f.max_rate
+    already = all(np.all((u[j] <= 1e-12 * f.max_rate) | (u[j] >= f.min_on * (1 - 1e-9)))
+                  for j, f in enumerate(job.problem.feeds) if f.min_on > f.min_rate)
+    if already:
+        record["pump_minimum"] = {"note": "the relaxed answer already keeps every pump off or at its minimum",
+                                  "feeds": switched}
+        return best
+    job.progress("fixing the pumps' on/off pattern and solving again", None, None)
+    pump = (lo, hi)
+    data = job.data(scaling, best.backoff, pump)
+    lbx, ubx, _, _ = best.nlp.bounds(data)
+    w0 = np.clip(best.start.w, lbx, ubx)
+    st_ = solve(best.nlp, data, w0, best.label + ", pumps off or at their minimum", profile="near",
+                tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+    relaxed = best.start.objective * job.f_obj
+    if st_.status == "converged" and st_.objective is not None:
+        ans = _verified(job, _Answer(st_, best.nlp, data, label=best.label, backoff=dict(best.backoff), pump=pump),
+                        scaling)
+        record["pump_minimum"] = {"relaxed_objective": relaxed, "objective": st_.objective * job.f_obj,
+                                  "feeds": switched, "note": "on/off pattern of the relaxed answer fixed, then "
+                                  "solved again with each step off or at least at the pump's minimum"}
+        return ans
+    record["pump_minimum"] = {"relaxed_objective": relaxed, "feeds": switched,
+                              "note": f"solving with the on/off pattern fixed ended {st_.status}"}
+    bad = replace(best.verification, verified=False,
+                  message=f"the answer runs a pump below its minimum setting (min_on), and solving again with "
+                          f"the on/off pattern fixed ended {st_.status}")
+    return _Answer(best.start, best.nlp, best.data, bad, best.backoff, best.label)
+
+
 # ---------------------------------------------------------------------- the result
 
 
@@ -613,10 +865,23 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     s = job.settings
     timed_out = job.deadline is not None and time.monotonic() > job.deadline
     if ans is None:
-        return result(st.FAILED, "failed: no answer to verify", starts=summaries, spread=spread)
+        return result(st.FAILED, "no answer to verify", starts=summaries, spread=spread)
     ver, best, nlp, data = ans.verification, ans.start, ans.nlp, ans.data
     un = nlp.unpack(best.w, data)
     record["grid"] = {"pump_steps": nlp.grid.pump_steps, "elements": nlp.grid.elements, "degree": nlp.grid.degree}
+    margin = job.problem.vessel.margin
+    if margin:
+        designed = {}
+        for lim in job.full_limits:
+            lo, hi = design_bounds(lim, margin)
+            if lim.kind != "pump" and (lo, hi) != (lim.lower, lim.upper):
+                designed[lim.name] = {"min": None if lo is None else lo * lim.factor,
+                                      "max": None if hi is None else hi * lim.factor, "unit": lim.unit}
+        record["margin"] = {"fraction": margin, "designed_to": designed,
+                            "note": "marginal values are per unit of the designed bound"}
+        kept_margin = f"; every limit kept {margin:.0%} inside its bound (vessel.margin)"
+    else:
+        kept_margin = ""
     if ans.backoff:
         by_name = {l.name: l for l in job.limits}
         record["backoff"] = {n: {"amount": v * by_name[n].factor, "unit": by_name[n].unit}
@@ -638,23 +903,42 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
             f"'{n}' by {v['amount']:.3g} {unit_words(v['unit'])}" for n, v in record["backoff"].items())
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
+    kept += kept_margin
+    pm = record.get("pump_minimum", {})
+    if "objective" in pm:
+        kept += (f"; pumps off or at least their minimum setting: the relaxed answer's on/off pattern fixed and "
+                 f"solved again ({pm['relaxed_objective']:.6g} relaxed, {pm['objective']:.6g} {job.unit} as "
+                 "the pumps can run)")
     gap = record.get("grid_gap_relative")
     if gap is not None:
         kept += f"; pump grid {nlp.grid.pump_steps} steps (last refinement changed the objective by {gap:.2%})"
     if ver.verified and not timed_out:
-        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
+        status, message = st.OPTIMAL_VERIFIED, f"{ver.message}{kept}"
     elif ver.verified:
         status = st.TIME_LIMIT
-        message = (f"time limit reached; the best answer so far is verified ({ver.message}) but the search "
-                   f"did not finish{kept}")
+        message = (f"the search did not finish; the best answer found before the deadline is verified "
+                   f"({ver.message}){kept}")
     else:
         status = st.CONVERGED_NOT_VERIFIED
-        message = (f"the solver converged but the answer is not verified: {ver.message}; refine the grid "
+        message = (f"{ver.message}; refine the grid "
                    "(solver.elements_per_step, degree)")
     points = _full_points(job, un)
+    objective_sim = None if ver.objective_sim is None else ver.objective_sim * job.f_obj
+    if job.scenarios is not None and ver.trajectory is not None:
+        sc = job.scenarios
+        sims = [c.objective_sim for c in job.scenario_checks]
+        nlps = nlp.scenario_objectives(best.w, data)
+        objective_sim = None if None in sims else combine(np.array(sims), sc, job.sense < 0) * job.f_obj
+        record["scenarios"] = {
+            "count": sc.size, "objective_over_scenarios": sc.combine, "k": sc.risk,
+            "labels": list(sc.labels),
+            "objective_nlp": [float(v) * job.f_obj for v in nlps],
+            "objective_resimulated": [None if v is None else float(v) * job.f_obj for v in sims],
+            "verified": [bool(c.verified) for c in job.scenario_checks],
+        }
     return result(
         status, message, objective_nlp=best.objective * job.f_obj,
-        objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+        objective_sim=objective_sim,
         end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
         outcome=outcome, points=points,
     )
@@ -680,30 +964,55 @@ def _full_points(job, un) -> dict:
 
 
 def _no_answer(job, result, starts, summaries, coarse, fine, data, diagnosis) -> OptimizeResult:
-    """No start converged: say why, naming the limit in words."""
+    """No start converged: say why, naming the limit in words and what to relax, and
+    re-simulate the closest point's pump schedule so that the run folder still holds
+    its figures and limit table (never labelled an answer)."""
     statuses = {s_.status for s_ in starts}
-    tried = [s_ for s_ in starts if s_.w.size]
-    where = ""
-    if tried:
-        best = tried[-1]
-        nlp = fine if best.w.size == fine.n_w else coarse
-        name, amount = _worst_violation(job, nlp, data, best.w)
-        if name:
-            where = f"; the closest point misses '{name}' by {amount}"
-    hint = f"; {diagnosis}" if diagnosis else ""
     if "interrupted" in statuses:
         raise KeyboardInterrupt
+    closest, closest_nlp, worst = None, None, math.inf
+    for s_ in starts:
+        if not s_.w.size:
+            continue
+        nlp = fine if s_.w.size == fine.n_w else coarse
+        v = nlp.violations(s_.w, data)
+        rel = max([val / data.scale[n] for n, val in v.items() if n in data.scale] + [v["model equations"]])
+        if rel < worst:
+            closest, closest_nlp, worst = s_, nlp, rel
+    where, extra = "", {}
+    if closest is not None:
+        name, amount = _worst_violation(job, closest_nlp, data, closest.w)
+        try:
+            ver = job.verify(closest_nlp, data, closest)
+        except Exception:  # noqa: BLE001 - the diagnosis is a help, never a new failure
+            ver = None
+        broken = []
+        if ver is not None and ver.trajectory is not None:
+            un = closest_nlp.unpack(closest.w, data)
+            extra = dict(verification=ver, end_time=un.T, points=_full_points(job, un),
+                         objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+                         outcome=outcome_of(job.full, ver.trajectory, un.T),
+                         limits=tuple(LimitValue(rep, False, 0.0, 0.0) for rep in ver.limits))
+            broken = [(lim, rep) for lim, rep in zip(job.full_limits, ver.limits) if rep.violated]
+        if broken:
+            lim, rep = max(broken, key=lambda lr: lr[0].relative_excess(lr[1]))
+            where = (f"; the closest schedule the solver found breaks '{lim.name}' from {rep.first_violation:.4g} h "
+                     f"by up to {rep.worst_violation:.4g} {lim.unit}".rstrip() +
+                     " (its figures and limit table are in the run folder)")
+        elif name:
+            where = f"; the solver's closest point misses '{name}' by {amount}"
+    lead = f"{diagnosis}; " if diagnosis else ""
     if statuses & {"time limit", "not run"} and job.deadline is not None and time.monotonic() > job.deadline:
-        return result(st.TIME_LIMIT, f"time limit reached before any start converged{where}{hint}",
-                      starts=summaries)
+        return result(st.TIME_LIMIT, f"{lead}no start converged before the deadline{where}",
+                      starts=summaries, **extra)
     if "iteration limit" in statuses:
-        return result(st.ITERATION_LIMIT, f"no start converged within its iteration budget{where}{hint}",
-                      starts=summaries)
+        return result(st.ITERATION_LIMIT, f"{lead}no start converged within its iteration budget{where}",
+                      starts=summaries, **extra)
     if statuses <= {"infeasible"}:
-        return result(st.INFEASIBLE, f"infeasible: no start found a feed profile that meets every limit "
-                      f"(IPOPT detected local infeasibility from each){where}{hint}", starts=summaries)
-    return result(st.FAILED, f"failed: IPOPT ended with {', '.join(sorted({s_.ipopt_status for s_ in starts}))}"
-                  f"{where}{hint}", starts=summaries)
+        return result(st.INFEASIBLE, f"{lead}no start found a feed profile that meets every limit "
+                      f"(IPOPT detected local infeasibility from each){where}", starts=summaries, **extra)
+    return result(st.FAILED, f"{lead}IPOPT ended with {', '.join(sorted({s_.ipopt_status for s_ in starts}))}"
+                  f"{where}", starts=summaries, **extra)
 
 
 def _worst_violation(job, nlp, data, w):
@@ -774,7 +1083,6 @@ def _always_broken(job, guesses) -> str:
         lim = by_name[name]
         key = lim.key if lim.kind in ("volume", "oxygen", "heat") else f"{lim.key}.{reps[0].side}"
         parts.append(f"every trial feed (pumps off, pumps at maximum and the initial feeds) breaks '{name}', "
-                     f"the earliest at {first:.3g} h; to make the problem feasible, relax it ({key} by at least "
-                     f"{least:.3g} {lim.unit}) or change what drives it before then (initial values, "
-                     f"kinetics)".replace(" )", ")"))
+                     f"the earliest at {first:.3g} h: relax {key} by at least {least:.3g} {lim.unit}".rstrip() +
+                     " or change what drives it before then (initial values, kinetics)")
     return "; ".join(parts)

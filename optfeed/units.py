@@ -28,7 +28,19 @@ from dataclasses import dataclass
 
 import pint
 
-UREG = pint.UnitRegistry()
+
+
+def _registry():
+    """pint's registry, with its parsed definitions cached in the user's cache folder
+    (measured: building it costs about 0.25 s CPU per process, about 0.03 s from the
+    cache); without a writable cache folder it is built as usual."""
+    try:
+        return pint.UnitRegistry(cache_folder=":auto:")
+    except Exception:  # noqa: BLE001 - a cache is an optimisation, never a failure
+        return pint.UnitRegistry()
+
+
+UREG = _registry()
 UREG.define("cell = 1 = cells")
 
 # base dimension -> internal unit
@@ -69,6 +81,8 @@ KINDS = {
     "oxygen_rate": Kind("oxygen_rate", "mmol/L/h", "150 mmol/L/h", (_dim("mmol/L/h"),)),
     "power": Kind("power", "W", "500 W", (_dim("W"),)),
     "heat_yield": Kind("heat_yield", "kJ/mol", "460 kJ/mol", (_dim("kJ/mol"),)),
+    # a share of something: '10 %', or a bare fraction (0.1)
+    "fraction": Kind("fraction", "", "10 %", (_dim(""),)),
     # species amounts: anything, bare numbers are g/L
     "amount": Kind("amount", "g/L", "0.5 g/L", ()),
     # parameters and bounds on expressions: anything, bare numbers are internal units

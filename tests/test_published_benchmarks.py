@@ -23,8 +23,6 @@ The task sets the bar at 0.5 % of the best-known value, from default settings.
 
 import pytest
 
-from optfeed.optimize import optimize
-
 from conftest import ROOT
 
 PUBLISHED = ROOT / "tests" / "published"
@@ -41,8 +39,8 @@ LEE_RAMIREZ_REFERENCE = 1.00960
 
 
 @pytest.mark.parametrize("name,best_known,tf,rel", CASES)
-def test_reaches_best_known_optimum(name, best_known, tf, rel):
-    r = optimize(PUBLISHED / name)
+def test_reaches_best_known_optimum(name, best_known, tf, rel, optimized):
+    r = optimized(PUBLISHED / name)
     assert r.status == "optimal, verified", r.message
     assert r.objective_sim == pytest.approx(best_known, rel=rel)
     assert r.objective_nlp == pytest.approx(best_known, rel=rel)

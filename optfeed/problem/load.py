@@ -397,7 +397,20 @@ class _Builder:
                 if lo[0] > hi[0]:
                     self.fail(("feeds", name, "min_rate"),
                               f"minimum pump rate {fd.min_rate!r} is above the maximum {fd.max_rate!r}")
-                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description))
+                extra = {}
+                for key, word in (("min_on", "minimum setting when on"), ("step", "setting step")):
+                    value = getattr(fd, key)
+                    if value is None:
+                        continue
+                    got = self.quantity(value, "flow", ("feeds", name, key))
+                    if not got:
+                        continue
+                    if not 0 < got[0] <= hi[0]:
+                        self.fail(("feeds", name, key), f"the pump's {word} must be above zero and at most its "
+                                                        f"maximum {fd.max_rate!r}, got {value!r}")
+                        continue
+                    extra[key] = got[0]
+                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description, **extra))
         return out
 
     def _vessel(self, env):
@@ -431,7 +444,14 @@ class _Builder:
             if qmax and y:
                 heat = Heat(qmax[0], y[0], qmax[1])
         if v0 and vw:
-            return Vessel(v0[0], vw[0], vw[1], oxygen, heat)
+            margin = 0.0
+            if v.margin is not None:
+                got = self.quantity(v.margin, "fraction", ("vessel", "margin"))
+                if got:
+                    margin = got[0]
+                    if not 0 <= margin < 0.5:
+                        self.fail(("vessel", "margin"), f"must be at least 0 % and below 50 %, got {v.margin!r}")
+            return Vessel(v0[0], vw[0], vw[1], oxygen, heat, margin)
         return None
 
     def _bounds(self, species_dims, env):
