@@ -169,9 +169,9 @@ REF_MAX_ITER = 500  # the reference's cold single start needs thousands of itera
 def part_elements(sizes, steps: int = 50) -> None:
     print(f"\n2. Elements {sizes[0]} to {sizes[-1]}: Park-Ramirez, {steps} pump steps, one start, fixed grid, "
           "a fresh process each")
-    print(f"   {'':>8} | {'optfeed (coarse grid, then this grid)':<49} | {'reference (this grid)':<40} |")
-    print(f"   {'elements':>8} | {'it':>9} {'ms/it':>6} {'solve':>7} {'total':>7} {'objective':>10} {'status':<4} | "
-          f"{'it':>5} {'ms/it':>6} {'solve':>7} {'total':>7} {'objective':>10} | {'total ratio':>11}")
+    print(f"   {'':>8} | {'optfeed (coarse grid, then this grid)':<56} | {'reference (this grid)':<47} |")
+    print(f"   {'elements':>8} | {'it':>9} {'ms/it':>6} {'solve':>7} {'total':>7} {'MB':>6} {'objective':>10} {'status':<4} | "
+          f"{'it':>5} {'ms/it':>6} {'solve':>7} {'total':>7} {'MB':>6} {'objective':>10} | {'total ratio':>11}")
     rows = []
     for n in sizes:
         k = n // steps
@@ -186,9 +186,10 @@ def part_elements(sizes, steps: int = 50) -> None:
         its = f"{o['iterations'] - o['fine_iterations']}+{o['fine_iterations']}"
         ok = "ok" if o["status"] == "optimal, verified" else o["status"]
         r_ok = "" if r["status"] == "Solve_Succeeded" else f" ({r['status']})"
-        print(f"   {n:>8} | {its:>9} {o_it:>6.1f} {o['cpu_solve']:>6.1f}s {o['cpu']:>6.1f}s "
+        print(f"   {n:>8} | {its:>9} {o_it:>6.1f} {o['cpu_solve']:>6.1f}s {o['cpu']:>6.1f}s {o['rss_mb']:>6.0f} "
               f"{o['objective'] or float('nan'):>10.5g} {ok:<4} | {r['iterations']:>5} {r_it:>6.1f} "
-              f"{r['cpu_solve']:>6.1f}s {r['cpu']:>6.1f}s {r['objective']:>10.5g} | {o['cpu'] / r['cpu']:>11.2f}{r_ok}")
+              f"{r['cpu_solve']:>6.1f}s {r['cpu']:>6.1f}s {r['rss_mb']:>6.0f} {r['objective']:>10.5g} | "
+              f"{o['cpu'] / r['cpu']:>11.2f}{r_ok}")
     n0, o0, r0, o_it0, r_it0 = rows[0]
     print(f"   growth against {n0} elements (optfeed: per iteration on this grid, total CPU | reference: per "
           "iteration, iterations, total CPU):")
@@ -197,7 +198,7 @@ def part_elements(sizes, steps: int = 50) -> None:
               f"reference x{r_it / r_it0:.2f} /it, x{r['iterations'] / max(r0['iterations'], 1):.2f} it, "
               f"x{r['cpu'] / r0['cpu']:.2f} total")
     print("   it = IPOPT iterations (optfeed: coarse + this grid); ms/it = CPU per iteration on this grid; "
-          f"solve = CPU in IPOPT; total = process CPU; the reference is stopped at {REF_MAX_ITER} iterations")
+          f"solve = CPU in IPOPT; total = process CPU; MB = peak resident memory; the reference is stopped at {REF_MAX_ITER} iterations")
 
 
 # ---------------------------------------------------------------------- 3. sweep throughput
