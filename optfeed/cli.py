@@ -5,7 +5,7 @@
     optfeed optimize PROBLEM [--workers N] [--set KEY=VALUE ...] [--time-limit T] [--out DIR | --results DIR]
                      [--json] [--quiet]
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
-                  [--allow-symlink] [--retry-failed] [--quiet]
+                  [--allow-symlink] [--retry-failed] [--fresh-process-per-case] [--quiet]
     optfeed recipe RUN_FOLDER [--unit mL/min] [--step "1 min"] [--start "2026-12-04 08:00"] [--problem FILE]
 
 Exit codes are those of :mod:`optfeed.status`: 0 fine, 1 a limit broken (or not a
@@ -70,6 +70,9 @@ def _parser() -> argparse.ArgumentParser:
                         "cases are counted before any is built")
     w.add_argument("--allow-symlink", action="store_true",
                    help="accept a sweep folder that is a symbolic link (refused by default)")
+    w.add_argument("--fresh-process-per-case", action="store_true",
+                   help="run every case in a new process (default: each worker process runs case after case and "
+                        "keeps the solvers it built)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
 
     r = sub.add_parser("recipe", help="a pump controller's setpoint table for a run's schedule, checked again")
@@ -325,7 +328,7 @@ def _sweep(args) -> int:
     folder = Path(args.out) if args.out is not None else Path(args.results) / sweep.name
     if args.quiet:
         result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed,
-                           allow_symlink=args.allow_symlink)
+                           allow_symlink=args.allow_symlink, fresh_process_per_case=args.fresh_process_per_case)
     else:
         result = _sweep_with_progress(sweep, folder, args)
         _out(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
@@ -363,7 +366,8 @@ def _sweep_with_progress(sweep, folder, args):
                       file=sys.stderr)
 
         return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event,
-                         retry=args.retry_failed, allow_symlink=args.allow_symlink)
+                         retry=args.retry_failed, allow_symlink=args.allow_symlink,
+                         fresh_process_per_case=args.fresh_process_per_case)
 
 
 def _with_progress(job):
