@@ -272,6 +272,10 @@ def _spread(name, spec, nom: _Nominal, loc, fail) -> Uncertain | None:
             fail(loc + (side,), f"a {dist} distribution is given by 'sd' or 'relative_sd' around the file's "
                                 f"value, not by {side!r} (that is for 'uniform')")
             ok = False
+    if dist == "lognormal" and nom.value <= 0:
+        fail(loc, f"a lognormal distribution holds positive values only, but the value in the file is "
+                  f"{_show(nom)}; use 'normal'")
+        return None
     if (spec.sd is None) == (spec.relative_sd is None):
         fail(loc, f"a {dist} distribution needs its standard deviation: give 'sd' (in the value's unit) or "
                   "'relative_sd' (a fraction of the value, e.g. 10 %), not both")
@@ -299,10 +303,6 @@ def _spread(name, spec, nom: _Nominal, loc, fail) -> Uncertain | None:
         except ValueError as exc:
             fail(loc + ("relative_sd",), str(exc))
     if sd is None or not ok:
-        return None
-    if dist == "lognormal" and nom.value <= 0:
-        fail(loc, f"a lognormal distribution holds positive values only, but the value in the file is "
-                  f"{_show(nom)}; use 'normal'")
         return None
     return Uncertain(name, nom.target, nom.ref, dist, nom.value, float(sd), None, None, nom.unit, key)
 
@@ -353,10 +353,12 @@ def _covariance(text, source, lines, loc, nominals, fail, issues):
     if eig[0] <= MIN_EIGENVALUE:
         vec = np.linalg.eigh(corr)[1][:, 0]
         order = np.argsort(-np.abs(vec))[:3]
-        direction = " + ".join(f"{vec[i]:.2g}*{names[i]}" for i in order if abs(vec[i]) > 1e-3)
+        vec = vec if vec[order[0]] > 0 else -vec
+        direction = " ".join(f"{'-' if vec[i] < 0 else '+'} {abs(vec[i]):.2g} {names[i]}" for i in order
+                             if abs(vec[i]) > 1e-3).removeprefix("+ ")
         fail(loc, f"the covariance matrix in {Path(text).name} is not positive definite (smallest eigenvalue of "
-                  f"its correlation matrix {eig[0]:.3g}): the values cannot move along {direction} (scaled "
-                  "by their standard deviations). A variance of zero, a correlation of exactly +-1 or numbers "
+                  f"its correlation matrix {eig[0]:.3g}): along {direction} (each scaled by its standard "
+                  "deviation) it gives a variance of zero or less. A variance of zero, a correlation of exactly +-1 or numbers "
                   "rounded too far do this; a covariance matrix must be symmetric positive definite")
         return None
     return names, matrix, str(path)
