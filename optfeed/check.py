@@ -9,6 +9,7 @@ from . import status as st
 from .errors import InputError, SimulationError
 from .limits import LimitReport, build_limits, judge
 from .model import build_model
+from .montecarlo import MonteCarloResult, monte_carlo
 from .outcome import Outcome, outcome_of
 from .problem import Problem
 from .problem.dotted import as_problem
@@ -41,6 +42,10 @@ class CheckResult:
         Limit name -> % of its upper bound at each trajectory sample.
     record : dict
         Provenance: problem digest, files, tool version, time.
+    uncertainty : MonteCarloResult or None
+        With ``uncertainty=True``: the schedule judged over a Monte Carlo sample of
+        the uncertain values (:mod:`optfeed.montecarlo`). The status, message and
+        exit code stay those of the nominal run; these figures stand beside them.
     """
 
     status: str
@@ -53,6 +58,7 @@ class CheckResult:
     trajectory: Trajectory | None = field(repr=False, default=None)
     use: dict = field(repr=False, default_factory=dict)
     record: dict = field(default_factory=dict)
+    uncertainty: MonteCarloResult | None = field(repr=False, default=None)
 
     @property
     def exit_code(self) -> int:
@@ -92,8 +98,11 @@ class CheckResult:
         return result_repr(self)
 
 
-def check(problem, schedule, end_time: float | None = None, set: dict | None = None) -> CheckResult:
-    """Simulate ``schedule`` on ``problem`` and judge every limit.
+def check(problem, schedule, end_time: float | None = None, set: dict | None = None, uncertainty: bool = False,
+          samples: int | None = None, seed: int | None = None, workers: int | None = None,
+          on_progress=None) -> CheckResult:
+    """Simulate ``schedule`` on ``problem`` and judge every limit; with
+    ``uncertainty=True`` also over a Monte Carlo sample of its uncertain values.
 
     Parameters
     ----------
@@ -108,6 +117,16 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     set : dict, optional
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h"}``.
+    uncertainty : bool
+        Also judge the schedule over a fresh sample of the values the problem's
+        ``uncertainty`` section makes uncertain (it must have one), and report the
+        probability of breaking each limit (``result.uncertainty``).
+    samples, seed : int, optional
+        Monte Carlo samples and seed (default: the section's ``monte_carlo``).
+    workers : int, optional
+        Processes for the Monte Carlo simulations (default: the cores).
+    on_progress : callable, optional
+        ``on_progress(text, done, total)`` as Monte Carlo samples finish.
 
     Returns
     -------
@@ -119,6 +138,15 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         For a bad problem or schedule file.
     """
     problem = as_problem(problem, set)
+    if not uncertainty:
+        for option, value in (("--samples", samples), ("--seed", seed), ("--workers", workers)):
+            if value is not None:
+                raise InputError.one(option, None, option, f"{option} is used only with --uncertainty "
+                                                           "(uncertainty=True)")
+    elif problem.uncertainty is None:
+        raise InputError.one(problem.source, None, "uncertainty",
+                             "--uncertainty needs an 'uncertainty' section in the problem file: the values that "
+                             "are uncertain and their distributions (see README, 'Writing a problem file')")
     tf = run_length(problem, end_time)
     model = build_model(problem)
     if isinstance(schedule, Schedule):
@@ -128,11 +156,16 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}
     limits = build_limits(model)
+    mc = None
+    if uncertainty:  # beside the nominal verdict, never in it
+        mc = monte_carlo(problem, schedule, tf, samples=samples, seed=seed, workers=workers,
+                         on_progress=on_progress)
+        record["monte_carlo"] = {"samples": mc.samples, "seed": mc.seed, "workers": mc.workers}
     try:
         traj = simulate(model, schedule, tf)
     except SimulationError as exc:
         return CheckResult(st.SIMULATION_FAILED, str(exc), (), None, tf, problem,  # the status says 'failed'
-                           schedule, None, {}, record)
+                           schedule, None, {}, record, mc)
     reports, use = judge(model, limits, traj)
     outcome = outcome_of(model, traj, tf)
     broken = sorted((r for r in reports if r.violated), key=lambda r: r.first_violation)
@@ -147,7 +180,7 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         if used:
             tight = max(used, key=lambda r: r.peak_use)
             message += f"; highest use: {tight.name} at {tight.peak_use:.1f} %"
-    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record)
+    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, mc)
 
 
 def run_length(problem: Problem, end_time: float | None = None, source: str = "--end-time") -> float:
