@@ -30,6 +30,7 @@ from .errors import InputError, SimulationError
 Z95 = 1.959963984540054  # standard normal quantile of 0.975
 BAND_POINTS = 600  # time points kept per band (plus both sides of every pump change)
 CHUNKS_PER_WORKER = 8  # samples are shared out in this many pieces per process
+BROKEN_SHOWN = 20  # runs that break a limit kept for its figure
 
 
 def wilson_interval(k: int, n: int, z: float = Z95) -> tuple[float, float]:
@@ -128,7 +129,8 @@ class Band:
 
     t : times, h; p5, p50, p95 : percentiles over the judged samples at each time;
     nominal : the nominal run (NaN if it failed); lower, upper : the limit's bounds;
-    at_end : the bound holds at the end of the run only.
+    at_end : the bound holds at the end of the run only; broken : the runs of the
+    first :data:`BROKEN_SHOWN` samples that break the limit, shape (k, len(t)).
     """
 
     name: str
@@ -142,6 +144,7 @@ class Band:
     p50: np.ndarray = field(repr=False)
     p95: np.ndarray = field(repr=False)
     nominal: np.ndarray = field(repr=False)
+    broken: np.ndarray = field(repr=False, default=None)
 
 
 @dataclass(frozen=True)
@@ -462,9 +465,11 @@ def _bands(limits, nominal, judged) -> tuple:
             p5, p50, p95 = (np.percentile(stack[:, :, i], q, axis=0) * f for q in (5, 50, 95))
         else:
             p5 = p50 = p95 = np.full(len(t), np.nan)
+        rows = [k for k, d in enumerate(judged) if lim.name in d["broken"]][:BROKEN_SHOWN]
+        broken = stack[rows, :, i] * f if rows else np.zeros((0, len(t)))
         bands.append(Band(lim.name, lim.kind, lim.unit, lim.at_end,
                           None if lim.lower is None else lim.lower * f, None if lim.upper is None else lim.upper * f,
-                          t, p5, p50, p95, nominal_g[:, i] * f))
+                          t, p5, p50, p95, nominal_g[:, i] * f, broken))
     return tuple(bands)
 
 

@@ -467,6 +467,10 @@ def fan_drawing(bands, title: str = "", name: str = "figure-fan", reference=None
             ax.fill_between(b.t, b.p5, b.p95, color=FAN, alpha=0.28, lw=0, zorder=1,
                             label=f"5-95 % of the {label}")
             ax.plot(b.t, b.p50, color=FAN, lw=1.0, ls=(0, (4, 2)), zorder=2, label=f"median of the {label}")
+            broken = () if b.broken is None else b.broken
+            for k, y in enumerate(broken):
+                ax.plot(b.t, y, color=LIMIT, lw=0.6, alpha=0.45, zorder=2,
+                        label=f"{label} that break it" if k == 0 else None)
             if b.name in ref:
                 r = ref[b.name]
                 for k, y in enumerate((r.p5, r.p95)):
@@ -491,7 +495,7 @@ def fan_drawing(bands, title: str = "", name: str = "figure-fan", reference=None
         _finish(fig, axes, n, ncol, title, t)
     return Drawing(name, f"Each limited quantity over the {label}: shaded, where 90 % of the {label} lie at each "
                    "time (5th to 95th percentile); dashed, their median; solid, the nominal run; red dashed, the "
-                   "limit.", fig)
+                   f"limit; thin red lines, {label} that break it (the first twenty).", fig)
 
 
 # ------------------------------------------------------------------ sweeps
