@@ -82,6 +82,7 @@ def test_probability_agrees_with_scipy_on_the_same_samples():
     r = optfeed.check(SMALL, PLAN, uncertainty=True, samples=30, seed=11, workers=2)
     mc = r.uncertainty
     assert r.status == "within limits"  # the nominal run
+    assert f"monte_carlo='{r.uncertainty.any_limit.broken} of 30 samples break a limit'" in repr(r)
     assert mc.samples == 30 and mc.judged == 30 and mc.failed == 0
     names = list(mc.names)
     assert names == ["mu_max", "initial.V"] and mc.units == ("1/h", "L")
