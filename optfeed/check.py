@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 
 from . import status as st
-from .errors import InputError, SimulationError
+from .errors import InputError, SimulationError, TimeLimitReached
 from .limits import LimitReport, build_limits, judge
 from .model import build_model
 from .montecarlo import MonteCarloResult, monte_carlo
@@ -98,9 +99,9 @@ class CheckResult:
         return result_repr(self)
 
 
-def check(problem, schedule, end_time: float | None = None, set: dict | None = None, uncertainty: bool = False,
-          samples: int | None = None, seed: int | None = None, workers: int | None = None,
-          on_progress=None) -> CheckResult:
+def check(problem, schedule, end_time: float | None = None, set: dict | None = None,
+          time_limit: float | None = None, uncertainty: bool = False, samples: int | None = None,
+          seed: int | None = None, workers: int | None = None, on_progress=None) -> CheckResult:
     """Simulate ``schedule`` on ``problem`` and judge every limit; with
     ``uncertainty=True`` also over a Monte Carlo sample of its uncertain values.
 
@@ -117,6 +118,11 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     set : dict, optional
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h"}``.
+    time_limit : float, optional
+        Seconds for the simulation; when it is reached the status is 'time limit'
+        and the message says how far the run got. With ``uncertainty`` the same
+        limit covers the Monte Carlo samples too: those not simulated by then are
+        left out and counted (``result.uncertainty.not_run``).
     uncertainty : bool
         Also judge the schedule over a fresh sample of the values the problem's
         ``uncertainty`` section makes uncertain (it must have one), and report the
@@ -156,16 +162,25 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}
     limits = build_limits(model)
-    mc = None
-    if uncertainty:  # beside the nominal verdict, never in it
+    deadline = None if time_limit is None else time.monotonic() + time_limit
+
+    def beside():  # the Monte Carlo figures stand beside the nominal verdict, never in it
+        if not uncertainty:
+            return None
         mc = monte_carlo(problem, schedule, tf, samples=samples, seed=seed, workers=workers,
-                         on_progress=on_progress)
+                         on_progress=on_progress, deadline=deadline)
         record["monte_carlo"] = {"samples": mc.samples, "seed": mc.seed, "workers": mc.workers}
+        return mc
+
     try:
-        traj = simulate(model, schedule, tf)
+        traj = simulate(model, schedule, tf, deadline=deadline)
+    except TimeLimitReached as exc:
+        return CheckResult(st.TIME_LIMIT, f"time limit of {time_limit:g} s reached: the simulation got to "
+                           f"{exc.time:.4g} h of {tf:.4g} h; nothing was judged", (), None, tf, problem, schedule,
+                           None, {}, record, beside())
     except SimulationError as exc:
         return CheckResult(st.SIMULATION_FAILED, str(exc), (), None, tf, problem,  # the status says 'failed'
-                           schedule, None, {}, record, mc)
+                           schedule, None, {}, record, beside())
     reports, use = judge(model, limits, traj)
     outcome = outcome_of(model, traj, tf)
     broken = sorted((r for r in reports if r.violated), key=lambda r: r.first_violation)
@@ -180,7 +195,7 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         if used:
             tight = max(used, key=lambda r: r.peak_use)
             message += f"; highest use: {tight.name} at {tight.peak_use:.1f} %"
-    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, mc)
+    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, beside())
 
 
 def run_length(problem: Problem, end_time: float | None = None, source: str = "--end-time") -> float:

@@ -45,6 +45,8 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("problem", help="problem file (YAML)")
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
     c.add_argument("--end-time", type=float, help="run length in h (only for a free end time; default: its guess)")
+    c.add_argument("--time-limit", help="time for the simulation, with its unit, e.g. '2 min' (with --uncertainty: "
+                                        "for the Monte Carlo samples too)")
     c.add_argument("--uncertainty", action="store_true",
                    help="also judge the schedule over a Monte Carlo sample of the values the problem's "
                         "'uncertainty' section makes uncertain: the probability of breaking each limit")
@@ -59,6 +61,8 @@ def _parser() -> argparse.ArgumentParser:
     o.add_argument("problem", help="problem file (YAML)")
     o.add_argument("--workers", type=int, help="processes for the multistart (default: the cores)")
     o.add_argument("--starts", type=int, help="number of starts (overrides solver.starts)")
+    o.add_argument("--time-limit", help="time for the whole job, with its unit, e.g. '20 min' (overrides "
+                   "solver.time_limit); when it is reached the best verified answer so far is reported as such")
     _set_arg(o)
     _output_args(o)
 
@@ -244,9 +248,10 @@ def _check(args) -> int:
     problem = load_problem(args.problem, set=_overrides(args.set))
     _warn(problem)
     target = _run_folder(args, problem.name, "check")
+    limit = _time_limit(args)
 
     def job(progress=None):
-        return check(problem, args.schedule, end_time=args.end_time, uncertainty=args.uncertainty,
+        return check(problem, args.schedule, end_time=args.end_time, time_limit=limit, uncertainty=args.uncertainty,
                      samples=args.samples, seed=args.seed, workers=args.workers, on_progress=progress)
 
     result = job() if args.quiet or args.json or not args.uncertainty else _with_progress(job, "Monte Carlo")
@@ -276,12 +281,32 @@ def _optimize(args) -> int:
             raise InputError.one("--starts", None, "--starts", "must be between 1 and 64")
         problem = dataclasses.replace(problem, settings=dataclasses.replace(problem.settings, starts=args.starts))
     target = _run_folder(args, problem.name, "optimize")
+    limit = _time_limit(args)
     if args.quiet or args.json:
-        result = optimize(problem, workers=args.workers)
+        result = optimize(problem, workers=args.workers, time_limit=limit)
     else:
-        result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb))
+        result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb,
+                                                    time_limit=limit))
     write_optimize_run(result, target, figures=not args.no_figures)
     return _show(args, result, optimize_summary(result), optimize_text(result), target, "")
+
+
+def _time_limit(args) -> float | None:
+    """--time-limit in seconds (None if not given); bad input unless a time above zero."""
+    if getattr(args, "time_limit", None) is None:
+        return None
+    from .units import parse_quantity, to_internal
+
+    if not any(c.isalpha() for c in args.time_limit):
+        raise InputError.one("--time-limit", None, "--time-limit",
+                             f"give the time limit with its unit, e.g. '20 min', got {args.time_limit!r}")
+    try:
+        seconds = to_internal(parse_quantity(args.time_limit, "time")) * 3600.0
+    except ValueError as exc:
+        raise InputError.one("--time-limit", None, "--time-limit", str(exc)) from None
+    if not 0 < seconds <= 30 * 86400:
+        raise InputError.one("--time-limit", None, "--time-limit", "must be above zero and at most 30 days")
+    return seconds
 
 
 def _recipe(args) -> int:

@@ -83,3 +83,7 @@ class SimulationError(OptfeedError, RuntimeError):
 
     def __reduce__(self):
         return (type(self), (self.message, self.time))
+
+
+class TimeLimitReached(SimulationError):
+    """A job's time limit was reached while simulating (``time`` is how far it got, h)."""

@@ -25,12 +25,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import status as st
-from .errors import InputError, SimulationError
+from .errors import InputError, SimulationError, TimeLimitReached
 
 Z95 = 1.959963984540054  # standard normal quantile of 0.975
 BAND_POINTS = 600  # time points kept per band (plus both sides of every pump change)
 CHUNKS_PER_WORKER = 8  # samples are shared out in this many pieces per process
 BROKEN_SHOWN = 20  # runs that break a limit kept for its figure
+NOT_RUN = "not run"  # a sample not simulated before the time limit: left out of every fraction
 
 
 def wilson_interval(k: int, n: int, z: float = Z95) -> tuple[float, float]:
@@ -103,7 +104,8 @@ class SampleRun:
     values : tuple of float
         The uncertain values of the sample, each in its unit (``MonteCarloResult.units``).
     status : str
-        'within limits', 'limit broken' or 'simulation failed'.
+        'within limits', 'limit broken', 'simulation failed' or 'not run' (the
+        time limit came first).
     objective : float or None
         In the objective's unit.
     margins : tuple of float or None
@@ -162,6 +164,9 @@ class MonteCarloResult:
         Samples whose simulation failed (counted, never dropped).
     failed_interval : tuple
         95 % Wilson interval of the probability that a run fails to simulate.
+    not_run : int
+        Samples not simulated because the time limit was reached first (left out
+        of every fraction; 0 without a time limit).
     any_limit : LimitRisk
         Breaking at least one limit.
     limits : tuple of LimitRisk
@@ -204,6 +209,7 @@ class MonteCarloResult:
     nominal_status: str = ""
     seconds: float = 0.0
     workers: int = 1
+    not_run: int = 0
 
     @property
     def samples_per_second(self) -> float:
@@ -217,7 +223,8 @@ class MonteCarloResult:
 
 
 def monte_carlo(problem, schedule, end_time: float | None = None, samples: int | None = None,
-                seed: int | None = None, workers: int | None = None, on_progress=None) -> MonteCarloResult:
+                seed: int | None = None, workers: int | None = None, on_progress=None,
+                deadline: float | None = None) -> MonteCarloResult:
     """Simulate ``schedule`` over a fresh Monte Carlo sample of ``problem``'s uncertain
     values and judge every run as ``optfeed check`` does.
 
@@ -237,6 +244,9 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
         others, such as a sweep case).
     on_progress : callable, optional
         ``on_progress(text, done, total)`` as samples finish.
+    deadline : float, optional
+        A ``time.monotonic()`` time: samples not simulated by then are left out
+        (and counted as not run).
 
     Returns
     -------
@@ -284,8 +294,8 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     workers = max(1, min(int(workers), int(samples)))
 
     t0 = time.perf_counter()
-    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0)
-    outs = _run_all(problem, schedule, tf, drawn, workers, on_progress)
+    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, deadline=deadline)
+    outs = _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline)
     seconds = time.perf_counter() - t0
     return _result(model, limits, drawn, nominal, outs, int(samples), int(seed), seconds, workers,
                    objective_label(model))
@@ -294,7 +304,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
 # ------------------------------------------------------------------ simulating the samples
 
 
-def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None) -> dict:
+def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=None) -> dict:
     """Simulate and judge one sample; a plain dict (it crosses a process pipe)."""
     from .limits import evaluate, judge
     from .outcome import outcome_of
@@ -302,9 +312,13 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None) -> dict:
     from .simulate import Simulator
 
     sim = simulator or Simulator(model)
+    if deadline is not None and time.monotonic() > deadline:
+        return {"status": NOT_RUN, "message": "the time limit was reached first"}
     try:
-        traj = sim.run(schedule, tf, x0=x0, p=p)
+        traj = sim.run(schedule, tf, x0=x0, p=p, deadline=deadline)
         reports, _ = judge(model, limits, traj)
+    except TimeLimitReached:
+        return {"status": NOT_RUN, "message": "the time limit was reached first"}
     except SimulationError as exc:
         return {"status": st.SIMULATION_FAILED, "message": str(exc)}
     outcome = outcome_of(model, traj, tf)
@@ -326,18 +340,18 @@ def _chunk(job) -> list:
     from .processes import report_progress
     from .simulate import Simulator
 
-    problem, schedule, tf, constants, x0 = job
+    problem, schedule, tf, constants, x0, deadline = job
     model = build_model(problem)
     limits = build_limits(model)
     sim = Simulator(model)
     out = []
     for k in range(constants.shape[1]):
-        out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim))
+        out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline))
         report_progress(1)
     return out
 
 
-def _run_all(problem, schedule, tf, drawn, workers, on_progress) -> list:
+def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) -> list:
     """Every sample's dict, in drawing order."""
     n = drawn.count
     total = [0]
@@ -352,7 +366,7 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress) -> list:
     if workers == 1:
         out = []
         for k in range(0, n, 16):
-            piece = _chunk((problem, schedule, tf, drawn.constants[:, k:k + 16], drawn.x0[:, k:k + 16]))
+            piece = _chunk((problem, schedule, tf, drawn.constants[:, k:k + 16], drawn.x0[:, k:k + 16], deadline))
             out += piece
             progress(len(piece))
         return out
@@ -361,7 +375,7 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress) -> list:
 
     size = max(1, math.ceil(n / (workers * CHUNKS_PER_WORKER)))
     starts = list(range(0, n, size))
-    items = [(k, (problem, schedule, tf, drawn.constants[:, s:s + size], drawn.x0[:, s:s + size]))
+    items = [(k, (problem, schedule, tf, drawn.constants[:, s:s + size], drawn.x0[:, s:s + size], deadline))
              for k, s in enumerate(starts)]
     results = {}
 
@@ -373,8 +387,12 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress) -> list:
             why = f"the process simulating it ended: {payload}"
             results[key] = [{"status": st.SIMULATION_FAILED, "message": why}] * count
 
-    run_killable(items, _chunk, workers, done, on_progress=lambda key, payload: progress(payload))
-    return [d for k in range(len(starts)) for d in results[k]]
+    def late():
+        return deadline is not None and time.monotonic() > deadline
+
+    run_killable(items, _chunk, workers, done, on_progress=lambda key, payload: progress(payload), should_stop=late)
+    not_run = {"status": NOT_RUN, "message": "the time limit was reached first"}
+    return [d for k, s in enumerate(starts) for d in results.get(k, [not_run] * min(size, n - s))]
 
 
 # ------------------------------------------------------------------ the result
@@ -392,9 +410,10 @@ def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers
     u = model.problem.uncertainty
     units = tuple(v.unit for v in u.values)
     factors = [factor_to(v.unit) if v.unit else 1.0 for v in u.values]
-    judged = [d for d in outs if d["status"] != st.SIMULATION_FAILED]
-    n_judged, n_failed = len(judged), len(outs) - len(judged)
-    nominal_ok = nominal["status"] != st.SIMULATION_FAILED
+    judged = [d for d in outs if d["status"] in (st.WITHIN_LIMITS, st.LIMIT_BROKEN)]
+    n_failed = sum(d["status"] == st.SIMULATION_FAILED for d in outs)
+    n_judged, n_not_run = len(judged), sum(d["status"] == NOT_RUN for d in outs)
+    nominal_ok = nominal["status"] in (st.WITHIN_LIMITS, st.LIMIT_BROKEN)
 
     def risk(lim, broken, margins=(), nominal_broken=None):
         p = broken / n_judged if n_judged else None
@@ -432,11 +451,11 @@ def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers
 
     return MonteCarloResult(
         samples=samples, seed=seed, judged=n_judged, failed=n_failed,
-        failed_interval=wilson_interval(n_failed, len(outs)), any_limit=any_limit, limits=tuple(risks),
+        failed_interval=wilson_interval(n_failed, n_judged + n_failed), any_limit=any_limit, limits=tuple(risks),
         objective_label=label, objective_unit=unit, objective=objective, names=tuple(drawn.names), units=units,
         distributions=tuple(distribution_text(v) for v in u.values), runs=tuple(runs),
         bands=_bands(limits, nominal, judged), nominal_status=nominal["status"], seconds=seconds,
-        workers=workers,
+        workers=workers, not_run=n_not_run,
     )
 
 
@@ -444,7 +463,8 @@ def _bands(limits, nominal, judged) -> tuple:
     """The fan of every limited quantity except the pumps, on the nominal run's times
     (every run of one schedule is sampled at the same times; a run sampled otherwise
     is interpolated onto them)."""
-    ref = nominal if nominal["status"] != st.SIMULATION_FAILED else (judged[0] if judged else None)
+    nominal_ok = nominal["status"] in (st.WITHIN_LIMITS, st.LIMIT_BROKEN)
+    ref = nominal if nominal_ok else (judged[0] if judged else None)
     if ref is None:
         return ()
     t = ref["t"]
@@ -455,7 +475,7 @@ def _bands(limits, nominal, judged) -> tuple:
         else:
             curves.append(np.column_stack([np.interp(t, d["t"], d["g"][:, i]) for i in range(d["g"].shape[1])]))
     stack = np.array(curves) if curves else np.full((1,) + ref["g"].shape, np.nan)
-    nominal_g = nominal["g"] if nominal["status"] != st.SIMULATION_FAILED else np.full(ref["g"].shape, np.nan)
+    nominal_g = nominal["g"] if nominal_ok else np.full(ref["g"].shape, np.nan)
     bands = []
     for i, lim in enumerate(limits):
         if lim.kind == "pump":

@@ -189,6 +189,7 @@ class OptimizeResult:
 # iteration caps of the stages (the whole start never exceeds solver.max_iter)
 COARSE_ITER = 600
 MAX_BACKOFF_ROUNDS = 3
+REFINE_ITER = 200  # a refinement that needs more than this from a near point is not worth its time
 DISTINCT_REL = 1e-4  # coarse answers closer than this (objective and pump profile) are one optimum
 
 
@@ -220,14 +221,18 @@ class _Job:
         self.label, self.unit = objective_label(self.full)
         self.f_obj = factor_to(self.unit) if self.unit else 1.0
         self.better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
+        self.sense = -1.0 if problem.objective.sense == "maximize" else 1.0
+        self.j_scale = None
 
     def data(self, scaling: Scaling, backoff=None) -> NLPData:
         p, lean = self.problem, self.lean
+        self.j_scale = self.j_scale or scaling.objective
         lower, upper, scale = {}, {}, {}
         for lim in self.limits:
+            lo, hi = design_bounds(lim, p.vessel.margin)
             b = (backoff or {}).get(lim.name, 0.0)
-            lower[lim.name] = None if lim.lower is None else lim.lower + b
-            upper[lim.name] = None if lim.upper is None else lim.upper - b
+            lower[lim.name] = None if lo is None else lo + b
+            upper[lim.name] = None if hi is None else hi - b
             scale[lim.name] = lim.scale()
         return NLPData(
             constants=lean.p0[:, None], x0=lean.x0[:, None], end_time=self.fixed, end_bounds=self.t_bounds,
@@ -239,9 +244,13 @@ class _Job:
     def nlp(self, grid: Grid):
         return get_nlp(self.problem, self.lean, self.limits, grid, self.free, smoothing=self.settings.smoothing > 0)
 
-    def report(self, label, iteration, objective):
-        """Progress of a running solve (objective in the NLP's scaled units)."""
-        text = f"{label}: iteration {iteration}"
+    def report(self, label, iteration, f, infeasibility=None):
+        """Progress of a running solve: ``f`` is the NLP's scaled objective, shown as
+        the objective in its unit (with the scaling of the first data built)."""
+        J = f * self.sense * self.j_scale * self.f_obj if self.j_scale else f
+        text = f"{label}: iteration {iteration}, objective {J:.6g} {self.unit}".rstrip()
+        if infeasibility is not None:
+            text += f", largest constraint violation {infeasibility:.1e} (scaled)"
         if not report_progress(text):
             self.progress(text, None, None)
 
@@ -260,6 +269,17 @@ class _Job:
                                   self.problem.feeds, end_time=un.T)
         return verify(self.full, self.full_limits, schedule, un.T, start.objective,
                       self.settings.verify_tolerance, self.simulator)
+
+
+def design_bounds(lim, margin: float) -> tuple:
+    """(lower, upper) the optimizer designs to (internal units): the limit's own bounds
+    moved inward by the engineering margin (``vessel.margin``), except for pumps,
+    whose range is the machine's."""
+    if lim.kind == "pump" or not margin:
+        return lim.lower, lim.upper
+    lo = None if lim.lower is None else lim.lower + margin * abs(lim.lower)
+    hi = None if lim.upper is None else lim.upper - margin * abs(lim.upper)
+    return lo, hi
 
 
 def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
@@ -318,12 +338,12 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
 
     blocked = _blocked_at_start(job)
     if blocked:
-        return result(st.INFEASIBLE, f"infeasible before solving: {blocked}")
+        return result(st.INFEASIBLE, f"before solving: {blocked}")
 
     job.progress("simulating initial feeds", 0, s.starts)
     guesses = make_guesses(problem, job.full, s.starts)
     if not guesses:
-        return result(st.FAILED, "failed: the integrator could not follow any of the initial feeds")
+        return result(st.FAILED, "the integrator could not follow any of the initial feeds")
     diagnosis = _always_broken(job, guesses)
     if diagnosis:
         record["diagnosis"] = diagnosis
@@ -526,14 +546,22 @@ def _summaries(job, guesses, coarse_starts, groups, fine_starts):
 
 
 def _excess(job, ver) -> dict:
-    """Limit name -> amount (internal units) by which the re-simulation exceeds it
-    beyond the verification tolerance."""
+    """Limit name -> amount (internal units) by which the re-simulation passes the
+    bound the optimizer designs to (the limit's own, or inside it by the engineering
+    margin) beyond the verification tolerance."""
     out = {}
+    margin = job.problem.vessel.margin
     for lim, rep in zip(job.full_limits, ver.limits):
-        if lim.kind == "pump" or rep.worst_violation <= 0:
+        if lim.kind == "pump":
             continue
-        if lim.relative_excess(rep) > REL_TOL:
-            out[lim.name] = rep.worst_violation / lim.factor
+        slack = rep.min_slack / lim.factor  # to the limit itself, internal units
+        bound = lim.upper if rep.side == "max" else lim.lower
+        lo, hi = design_bounds(lim, margin)
+        designed = hi if rep.side == "max" else lo
+        inside = 0.0 if bound is None or designed is None else abs(bound - designed)
+        amount = inside - slack  # how far past the designed bound
+        if amount > REL_TOL * lim.scale() + 1e-12 * lim.scale():
+            out[lim.name] = amount
     return out
 
 
@@ -545,7 +573,7 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
     for round_ in range(1, MAX_BACKOFF_ROUNDS + 1):
         ver = ans.verification
         excess = _excess(job, ver)
-        if ver.verified or not excess or ver.objective_rel_diff > s.verify_tolerance or _stop_now(job):
+        if not excess or ver.objective_rel_diff > s.verify_tolerance or _stop_now(job):
             break
         trial = dict(ans.backoff)
         for name, amount in excess.items():
@@ -575,11 +603,18 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
         new_grid = Grid(M2, N2, grid.degree)
         job.progress(f"refining the pump grid: {M2} steps", None, None)
         nlp = job.nlp(new_grid)
-        un = best.nlp.unpack(best.start.w, best.data)
-        steps = np.repeat(un.u_steps, 2, axis=0)
-        w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
-        st_ = solve(nlp, best.data, w0, best.label + f", {M2} pump steps", profile="near",
-                    tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+        label = best.label + f", {M2} pump steps"
+        moved = best.nlp.split_steps(nlp, best.start.w, best.start.lam_g, best.start.lam_x)
+        if moved is not None:  # the same elements: start exactly at the old optimum, multipliers and all
+            w0, lam_g, lam_x = moved
+            st_ = solve(nlp, best.data, w0, label, profile="warm", tolerance=s.tolerance, max_iter=s.max_iter,
+                        warm=(lam_g, lam_x), deadline=job.deadline, report=job.report)
+        else:  # finer elements too: start from the simulated schedule, with a capped budget
+            un = best.nlp.unpack(best.start.w, best.data)
+            steps = np.repeat(un.u_steps, 2, axis=0)
+            w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
+            st_ = solve(nlp, best.data, w0, label, profile="near", tolerance=s.tolerance,
+                        max_iter=min(s.max_iter, REFINE_ITER), deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             record["grid_refinement"] = f"stopped at {grid.pump_steps} pump steps: the {M2}-step solve {st_.status}"
             break
@@ -613,10 +648,23 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     s = job.settings
     timed_out = job.deadline is not None and time.monotonic() > job.deadline
     if ans is None:
-        return result(st.FAILED, "failed: no answer to verify", starts=summaries, spread=spread)
+        return result(st.FAILED, "no answer to verify", starts=summaries, spread=spread)
     ver, best, nlp, data = ans.verification, ans.start, ans.nlp, ans.data
     un = nlp.unpack(best.w, data)
     record["grid"] = {"pump_steps": nlp.grid.pump_steps, "elements": nlp.grid.elements, "degree": nlp.grid.degree}
+    margin = job.problem.vessel.margin
+    if margin:
+        designed = {}
+        for lim in job.full_limits:
+            lo, hi = design_bounds(lim, margin)
+            if lim.kind != "pump" and (lo, hi) != (lim.lower, lim.upper):
+                designed[lim.name] = {"min": None if lo is None else lo * lim.factor,
+                                      "max": None if hi is None else hi * lim.factor, "unit": lim.unit}
+        record["margin"] = {"fraction": margin, "designed_to": designed,
+                            "note": "marginal values are per unit of the designed bound"}
+        kept_margin = f"; every limit kept {margin:.0%} inside its bound (vessel.margin)"
+    else:
+        kept_margin = ""
     if ans.backoff:
         by_name = {l.name: l for l in job.limits}
         record["backoff"] = {n: {"amount": v * by_name[n].factor, "unit": by_name[n].unit}
@@ -638,18 +686,19 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
             f"'{n}' by {v['amount']:.3g} {unit_words(v['unit'])}" for n, v in record["backoff"].items())
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
+    kept += kept_margin
     gap = record.get("grid_gap_relative")
     if gap is not None:
         kept += f"; pump grid {nlp.grid.pump_steps} steps (last refinement changed the objective by {gap:.2%})"
     if ver.verified and not timed_out:
-        status, message = st.OPTIMAL_VERIFIED, f"optimal and verified: {ver.message}{kept}"
+        status, message = st.OPTIMAL_VERIFIED, f"{ver.message}{kept}"
     elif ver.verified:
         status = st.TIME_LIMIT
-        message = (f"time limit reached; the best answer so far is verified ({ver.message}) but the search "
-                   f"did not finish{kept}")
+        message = (f"the search did not finish; the best answer found before the deadline is verified "
+                   f"({ver.message}){kept}")
     else:
         status = st.CONVERGED_NOT_VERIFIED
-        message = (f"the solver converged but the answer is not verified: {ver.message}; refine the grid "
+        message = (f"{ver.message}; refine the grid "
                    "(solver.elements_per_step, degree)")
     points = _full_points(job, un)
     return result(
@@ -680,30 +729,55 @@ def _full_points(job, un) -> dict:
 
 
 def _no_answer(job, result, starts, summaries, coarse, fine, data, diagnosis) -> OptimizeResult:
-    """No start converged: say why, naming the limit in words."""
+    """No start converged: say why, naming the limit in words and what to relax, and
+    re-simulate the closest point's pump schedule so that the run folder still holds
+    its figures and limit table (never labelled an answer)."""
     statuses = {s_.status for s_ in starts}
-    tried = [s_ for s_ in starts if s_.w.size]
-    where = ""
-    if tried:
-        best = tried[-1]
-        nlp = fine if best.w.size == fine.n_w else coarse
-        name, amount = _worst_violation(job, nlp, data, best.w)
-        if name:
-            where = f"; the closest point misses '{name}' by {amount}"
-    hint = f"; {diagnosis}" if diagnosis else ""
     if "interrupted" in statuses:
         raise KeyboardInterrupt
+    closest, closest_nlp, worst = None, None, math.inf
+    for s_ in starts:
+        if not s_.w.size:
+            continue
+        nlp = fine if s_.w.size == fine.n_w else coarse
+        v = nlp.violations(s_.w, data)
+        rel = max([val / data.scale[n] for n, val in v.items() if n in data.scale] + [v["model equations"]])
+        if rel < worst:
+            closest, closest_nlp, worst = s_, nlp, rel
+    where, extra = "", {}
+    if closest is not None:
+        name, amount = _worst_violation(job, closest_nlp, data, closest.w)
+        try:
+            ver = job.verify(closest_nlp, data, closest)
+        except Exception:  # noqa: BLE001 - the diagnosis is a help, never a new failure
+            ver = None
+        broken = []
+        if ver is not None and ver.trajectory is not None:
+            un = closest_nlp.unpack(closest.w, data)
+            extra = dict(verification=ver, end_time=un.T, points=_full_points(job, un),
+                         objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+                         outcome=outcome_of(job.full, ver.trajectory, un.T),
+                         limits=tuple(LimitValue(rep, False, 0.0, 0.0) for rep in ver.limits))
+            broken = [(lim, rep) for lim, rep in zip(job.full_limits, ver.limits) if rep.violated]
+        if broken:
+            lim, rep = max(broken, key=lambda lr: lr[0].relative_excess(lr[1]))
+            where = (f"; the closest schedule the solver found breaks '{lim.name}' from {rep.first_violation:.4g} h "
+                     f"by up to {rep.worst_violation:.4g} {lim.unit}".rstrip() +
+                     " (its figures and limit table are in the run folder)")
+        elif name:
+            where = f"; the solver's closest point misses '{name}' by {amount}"
+    lead = f"{diagnosis}; " if diagnosis else ""
     if statuses & {"time limit", "not run"} and job.deadline is not None and time.monotonic() > job.deadline:
-        return result(st.TIME_LIMIT, f"time limit reached before any start converged{where}{hint}",
-                      starts=summaries)
+        return result(st.TIME_LIMIT, f"{lead}no start converged before the deadline{where}",
+                      starts=summaries, **extra)
     if "iteration limit" in statuses:
-        return result(st.ITERATION_LIMIT, f"no start converged within its iteration budget{where}{hint}",
-                      starts=summaries)
+        return result(st.ITERATION_LIMIT, f"{lead}no start converged within its iteration budget{where}",
+                      starts=summaries, **extra)
     if statuses <= {"infeasible"}:
-        return result(st.INFEASIBLE, f"infeasible: no start found a feed profile that meets every limit "
-                      f"(IPOPT detected local infeasibility from each){where}{hint}", starts=summaries)
-    return result(st.FAILED, f"failed: IPOPT ended with {', '.join(sorted({s_.ipopt_status for s_ in starts}))}"
-                  f"{where}{hint}", starts=summaries)
+        return result(st.INFEASIBLE, f"{lead}no start found a feed profile that meets every limit "
+                      f"(IPOPT detected local infeasibility from each){where}", starts=summaries, **extra)
+    return result(st.FAILED, f"{lead}IPOPT ended with {', '.join(sorted({s_.ipopt_status for s_ in starts}))}"
+                  f"{where}", starts=summaries, **extra)
 
 
 def _worst_violation(job, nlp, data, w):
@@ -774,7 +848,6 @@ def _always_broken(job, guesses) -> str:
         lim = by_name[name]
         key = lim.key if lim.kind in ("volume", "oxygen", "heat") else f"{lim.key}.{reps[0].side}"
         parts.append(f"every trial feed (pumps off, pumps at maximum and the initial feeds) breaks '{name}', "
-                     f"the earliest at {first:.3g} h; to make the problem feasible, relax it ({key} by at least "
-                     f"{least:.3g} {lim.unit}) or change what drives it before then (initial values, "
-                     f"kinetics)".replace(" )", ")"))
+                     f"the earliest at {first:.3g} h: relax {key} by at least {least:.3g} {lim.unit}".rstrip() +
+                     " or change what drives it before then (initial values, kinetics)")
     return "; ".join(parts)

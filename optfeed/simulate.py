@@ -14,12 +14,13 @@ limit's extremum, or the moment it is first crossed, between samples.
 from __future__ import annotations
 
 import math
+import time
 from dataclasses import dataclass, field
 
 import casadi as ca
 import numpy as np
 
-from .errors import SimulationError
+from .errors import SimulationError, TimeLimitReached
 from .model import Model
 from .schedule import Schedule, ScheduleOverflow, Segment
 from .units import factor_to
@@ -112,9 +113,11 @@ class Simulator:
                                          0.0, grid, opts)
         self._grid = grid
 
-    def run(self, schedule: Schedule, end_time: float, min_points: int = SAMPLES, x0=None, p=None) -> Trajectory:
+    def run(self, schedule: Schedule, end_time: float, min_points: int = SAMPLES, x0=None, p=None,
+            deadline: float | None = None) -> Trajectory:
         """Integrate ``schedule`` from 0 to ``end_time`` (h) from ``x0`` (default:
-        model.x0) with constants ``p`` (default: model.p0).
+        model.x0) with constants ``p`` (default: model.p0). ``deadline``
+        (time.monotonic) stops it with :class:`~optfeed.errors.TimeLimitReached`.
 
         Raises
         ------
@@ -133,6 +136,8 @@ class Simulator:
         ts, xs, us, pieces, index = [], [], [], [], []
         for seg in segments:
             for piece in _pieces(seg, max_len, m.feed_names):
+                if deadline is not None and time.monotonic() > deadline:
+                    raise TimeLimitReached("the time limit was reached before the end of the run", piece.start)
                 t, xf = self._integrate(piece, piece.start, x, piece.end, p)
                 ts.append(np.concatenate([[piece.start], t]))
                 xs.append(np.vstack([x, xf]))
@@ -203,8 +208,8 @@ class Simulator:
 def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Trajectory:
     """Integrate ``schedule`` over [0, end_time] h. See :class:`Simulator`."""
     min_points = kwargs.pop("min_points", SAMPLES)
-    x0, p = kwargs.pop("x0", None), kwargs.pop("p", None)
-    return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points, x0=x0, p=p)
+    x0, p, deadline = kwargs.pop("x0", None), kwargs.pop("p", None), kwargs.pop("deadline", None)
+    return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points, x0=x0, p=p, deadline=deadline)
 
 
 def _pieces(seg: Segment, max_len: float, feed_names=()):

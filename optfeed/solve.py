@@ -105,8 +105,10 @@ class Watch(ca.Callback):
         self.reset()
         self.construct("watch", {})
 
-    def reset(self, deadline: float | None = None, report=None, every: float = 2.0, label: str = ""):
+    def reset(self, deadline: float | None = None, report=None, every: float = 2.0, label: str = "",
+              lbg=None, ubg=None):
         self.deadline, self.report, self.every, self.label = deadline, report, every, label
+        self.lbg, self.ubg = lbg, ubg
         self.iterations = 0
         self.stopped_for = None
         self._last = time.monotonic()
@@ -145,7 +147,11 @@ class Watch(ca.Callback):
             return [1]
         if self.report is not None and now - self._last >= self.every:
             self._last = now
-            self.report(self.label, self.iterations, float(arg[1]))
+            infeasibility = None
+            if self.lbg is not None and len(self.lbg):
+                g = np.array(arg[2]).ravel()
+                infeasibility = float(np.max(np.maximum(np.maximum(self.lbg - g, g - self.ubg), 0.0)))
+            self.report(self.label, self.iterations, float(arg[1]), infeasibility)
         return [0]
 
 
@@ -273,11 +279,13 @@ def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold",
 
     ``warm`` = (lam_g, lam_x), multipliers of a nearby solution (use with profile
     'warm'). ``deadline`` (time.monotonic) stops the solve ('time limit');
-    ``report(label, iteration, objective)`` is called every few seconds.
+    ``report(label, iteration, objective, infeasibility)`` is called every few
+    seconds with the NLP's own (scaled) objective and its largest constraint
+    violation (scaled rows).
     """
     solver, watch = _solver(nlp, profile, tolerance, max_iter)
-    watch.reset(deadline, report, label=label)
     args = nlp.arguments(data)
+    watch.reset(deadline, report, label=label, lbg=args["lbg"], ubg=args["ubg"])
     if warm is not None:
         args["lam_g0"], args["lam_x0"] = warm
     c0 = time.process_time()

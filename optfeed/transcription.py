@@ -388,6 +388,42 @@ class FeedNLP:
             T=T,
         )
 
+    def split_steps(self, finer: "FeedNLP", w, lam_g, lam_x):
+        """Move a solution of this NLP, with its multipliers, onto ``finer``: the same
+        elements and scenarios, each pump step split into equal parts. The point is
+        the same schedule, so a warm start from it begins at the old optimum.
+
+        Returns (w, lam_g, lam_x) for ``finer``, or None when the two NLPs do not
+        share their elements (then there is no exact transfer).
+        """
+        g0, g1 = self.grid, finer.grid
+        if (g0.elements, g0.degree) != (g1.elements, g1.degree) or g1.pump_steps % g0.pump_steps \
+                or self.S != finer.S or self.free_time != finer.free_time or self.combine != finer.combine:
+            return None
+        r = g1.pump_steps // g0.pump_steps
+        w, lam_g, lam_x = (np.asarray(v, dtype=float).ravel() for v in (w, lam_g, lam_x))
+        W0, W1 = self.W, finer.W
+        w1, lx1 = W1.zeros(), W1.zeros()
+        for name in W0._parts:
+            if name == "u":
+                W1.put(w1, "u", np.repeat(W0.get(w, "u"), r, axis=1))
+                W1.put(lx1, "u", np.repeat(W0.get(lam_x, "u") / r, r, axis=1))
+            else:
+                W1.put(w1, name, W0.get(w, name))
+                W1.put(lx1, name, W0.get(lam_x, name))
+        lg1 = np.zeros(finer.n_g)
+        old = {(grp.kind, grp.name, grp.scenario, len(grp.rows)): grp.rows for grp in self.groups}
+        for grp in finer.groups:
+            rows = old.get((grp.kind, grp.name, grp.scenario, len(grp.rows)))
+            if rows is not None:
+                lg1[grp.rows] = lam_g[rows]
+                continue
+            # a limit's rows at pump-step starts: the old steps start at every r-th new one
+            coarse = old.get((grp.kind, grp.name, grp.scenario, len(grp.rows) // r))
+            if coarse is not None and len(grp.rows) == r * len(coarse):
+                lg1[grp.rows[::r]] = lam_g[coarse]
+        return w1, lg1, lx1
+
     def objective_value(self, w, data: NLPData) -> float:
         """The combined objective J (internal units, its own sense) at ``w``."""
         return float(self._J_fun(w, self.parameters(data))[0])

@@ -69,6 +69,8 @@ KINDS = {
     "oxygen_rate": Kind("oxygen_rate", "mmol/L/h", "150 mmol/L/h", (_dim("mmol/L/h"),)),
     "power": Kind("power", "W", "500 W", (_dim("W"),)),
     "heat_yield": Kind("heat_yield", "kJ/mol", "460 kJ/mol", (_dim("kJ/mol"),)),
+    # a share of something: '10 %', or a bare fraction (0.1)
+    "fraction": Kind("fraction", "", "10 %", (_dim(""),)),
     # species amounts: anything, bare numbers are g/L
     "amount": Kind("amount", "g/L", "0.5 g/L", ()),
     # parameters and bounds on expressions: anything, bare numbers are internal units

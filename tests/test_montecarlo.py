@@ -193,6 +193,21 @@ def test_objective_of_a_run_uses_its_own_initial_state():
     assert outcome_of(m, traj, 8.0).objective_internal == pytest.approx(by_hand, rel=1e-12)
 
 
+def test_time_limit_leaves_samples_out():
+    """Samples not simulated before the time limit are counted as not run and left out of
+    every fraction; the nominal verdict says 'time limit' as check does without uncertainty."""
+    r = optfeed.check(SMALL, PLAN, uncertainty=True, samples=5, workers=2, time_limit=1e-9)
+    assert r.status == "time limit"
+    mc = r.uncertainty
+    assert (mc.not_run, mc.judged, mc.failed) == (5, 0, 0)
+    assert mc.any_limit.probability is None and all(x.probability is None for x in mc.limits)
+    assert {run.status for run in mc.runs} == {"not run"}
+    assert mc.nominal_status == "not run" and mc.bands == ()
+    from optfeed.report.text import check_text
+
+    assert "5 not run (the time limit came first)" in check_text(r)
+
+
 # ---------------------------------------------------------------- inputs of the job
 
 

@@ -435,7 +435,14 @@ class _Builder:
             if qmax and y:
                 heat = Heat(qmax[0], y[0], qmax[1])
         if v0 and vw:
-            return Vessel(v0[0], vw[0], vw[1], oxygen, heat)
+            margin = 0.0
+            if v.margin is not None:
+                got = self.quantity(v.margin, "fraction", ("vessel", "margin"))
+                if got:
+                    margin = got[0]
+                    if not 0 <= margin < 0.5:
+                        self.fail(("vessel", "margin"), f"must be at least 0 % and below 50 %, got {v.margin!r}")
+            return Vessel(v0[0], vw[0], vw[1], oxygen, heat, margin)
         return None
 
     def _bounds(self, species_dims, env):

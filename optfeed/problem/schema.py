@@ -60,6 +60,7 @@ class VesselIn(_Strict):
     working_volume: Scalar
     oxygen: Optional[OxygenIn] = None
     heat: Optional[HeatIn] = None
+    margin: Optional[Scalar] = None  # engineering margin kept from every limit by optimize, e.g. '10 %'
 
 
 class BoundIn(_Strict):

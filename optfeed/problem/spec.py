@@ -123,13 +123,20 @@ class Heat:
 
 @dataclass(frozen=True)
 class Vessel:
-    """initial_volume, working_volume in L; unit as written for working_volume."""
+    """initial_volume, working_volume in L; unit as written for working_volume.
+
+    margin : float
+        Engineering margin (a fraction, 0.1 for 10 %) that ``optimize`` keeps from
+        every limit but the pumps: a maximum U is designed to U - margin*|U|, a
+        minimum L to L + margin*|L|. ``check`` judges the limits themselves.
+    """
 
     initial_volume: float
     working_volume: float
     unit: str
     oxygen: Oxygen | None = None
     heat: Heat | None = None
+    margin: float = 0.0
 
 
 @dataclass(frozen=True)

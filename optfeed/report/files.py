@@ -140,6 +140,7 @@ def uncertainty_summary(mc, problem) -> dict:
         "note": "Monte Carlo over the uncertain values; the status above is the nominal run's",
         "samples": mc.samples, "seed": mc.seed, "method": "independent random draws",
         "judged": mc.judged, "simulation_failed": mc.failed, "simulation_failed_interval_95": list(mc.failed_interval),
+        "not_run_time_limit": mc.not_run,
         "limits": [risk(r) for r in mc.limits], "any_limit": risk(mc.any_limit),
         "objective": None if mc.objective is None else {**mc.objective, "label": mc.objective_label,
                                                         "unit": mc.objective_unit},

@@ -275,13 +275,17 @@ def uncertainty_section(mc, uncertain=(), title: str = "Over the uncertain value
         rows.append([r.name, f"{r.broken} of {r.judged}", percent(r.probability), interval(r), nominal(r), margin])
         broken.append(bool(r.broken))
     lo, hi = mc.failed_interval
-    rows.append(["simulation failed", f"{mc.failed} of {mc.samples}", percent(mc.failed / mc.samples),
+    tried = mc.judged + mc.failed
+    rows.append(["simulation failed", f"{mc.failed} of {tried}", percent(mc.failed / tried if tried else None),
                  f"{percent(lo)} \u2013 {percent(hi)}", "failed" if mc.nominal_status == "simulation failed" else "-",
                  "-"])
     broken.append(bool(mc.failed))
     body = [f"<p>{esc(what[:1].upper() + what[1:])} was simulated for {mc.samples} independent random samples of the "
             f"uncertain values (seed {mc.seed}) and each run judged as the nominal one is. The status at the top "
             "is the nominal run's; here is how often each limit is broken over the samples.</p>"]
+    if mc.not_run:
+        body.append(f"<p><b>{mc.not_run} of the {mc.samples} samples were not simulated: the time limit came first."
+                    "</b> They are left out of every fraction below.</p>")
     body.append(table(["limit", "broken in", "probability", "95 % interval", "nominal run",
                        "smallest margin: 5th percentile / median"], rows,
                       row_class=lambda k: "broken" if broken[k] else ""))

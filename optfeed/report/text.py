@@ -98,14 +98,16 @@ def risk_row(r) -> tuple:
 
 def uncertainty_lines(mc, problem) -> list[str]:
     """The Monte Carlo block of a text report (a :class:`~optfeed.montecarlo.MonteCarloResult`)."""
+    late = f", {mc.not_run} not run (the time limit came first)" if mc.not_run else ""
     lines = [f"Over the uncertain values (Monte Carlo: {mc.samples} independent samples, seed {mc.seed}; "
-             f"{mc.judged} simulated to the end, {mc.failed} failed):",
+             f"{mc.judged} simulated to the end, {mc.failed} failed{late}):",
              "  The status above is the nominal run's. Here: the fraction of samples that break each limit,",
              "  with its 95 % Wilson interval (the pumps follow the schedule in every sample)."]
     rows = [("limit", "broken in", "probability", "95 % interval", "nominal run")]
     rows += [risk_row(r) for r in mc.limits if r.kind != "pump"] + [risk_row(mc.any_limit)]
     lo, hi = mc.failed_interval
-    rows.append(("simulation failed", f"{mc.failed} of {mc.samples}", percent(mc.failed / mc.samples),
+    tried = mc.judged + mc.failed
+    rows.append(("simulation failed", f"{mc.failed} of {tried}", percent(mc.failed / tried if tried else None),
                  f"{percent(lo)} .. {percent(hi)}", "failed" if mc.nominal_status == "simulation failed" else "-"))
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     for k, row in enumerate(rows):
