@@ -274,10 +274,17 @@ def _between_samples(traj, f, i, lim, values):
     if len(minima) == 0:
         return np.zeros(0), np.zeros(0)
     band = REFINE_BAND * lim.scale()
-    closest = minima[np.argmin(slack[minima])]
+    least = slack[minima].min()
+    closest = minima[slack[minima] <= least + 1e-12 * lim.scale()]  # ties included
     chosen = minima[slack[minima] < band]
     chosen = chosen[np.argsort(slack[chosen])][:MAX_REFINED]
-    chosen = np.union1d(chosen, [closest])
+    chosen = np.union1d(chosen, closest)
+    # a sample at a piece boundary is also the first (or last) sample of the next (or
+    # previous) piece: the extremum may lie on either side of it
+    n = len(traj.t)
+    twins = [k + 1 for k in chosen if k + 1 < n and traj.t[k + 1] == traj.t[k]]
+    twins += [k - 1 for k in chosen if k > 0 and traj.t[k - 1] == traj.t[k]]
+    chosen = np.union1d(chosen, np.array(twins, dtype=int))
     ts, vs = [], []
     for k in chosen:
         lo = k - 1 if k > 0 and traj.piece[k - 1] == traj.piece[k] else k

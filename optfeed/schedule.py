@@ -57,11 +57,11 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError, Issue
-from .problem.yamlio import key_text, read_text, read_yaml
+from .csvfile import header_cell, read_table, unit_factor
+from .problem.yamlio import key_text, read_yaml
 from .units import factor_to, parse_quantity, to_internal
 
 _LOG_LARGEST = math.log(sys.float_info.max)  # ~709.8: exp() of more overflows
-_HEADER_RE = re.compile(r"^\s*(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\]]*)\])?\s*$")
 
 
 @dataclass(frozen=True)
@@ -443,34 +443,16 @@ def _missing(path, feed_names, given, line):
 
 
 def _load_csv(path, feed_names, end_time) -> Schedule:
-    text = read_text(path)
+    table = read_table(path)
     interpolation = "constant"
-    rows = []
-    for lineno, line in enumerate(text.splitlines(), start=1):
-        stripped = line.strip()
-        if not stripped:
-            continue
-        if stripped.startswith("#"):
-            m = re.match(r"#\s*interpolation\s*:\s*(\S+)", stripped)
-            if m:
-                interpolation = m.group(1).lower()
-                if interpolation not in ("constant", "linear"):
-                    raise InputError.one(path, lineno, "interpolation",
-                                         f"expected 'constant' or 'linear', got {m.group(1)!r}")
-            continue
-        rows.append((lineno, line))
-    if not rows:
-        raise InputError.one(path, None, "", "no header row")
-    delimiter = _delimiter(path, *rows[0])
-    parsed = []
-    for lineno, line in rows:
-        try:
-            cells = next(csv.reader([line], delimiter=delimiter))
-        except csv.Error as exc:
-            raise InputError.one(path, lineno, "", f"CSV error: {exc}") from None
-        parsed.append((lineno, [c.strip() for c in cells]))
-    rows = parsed
-    header_line, header = rows[0]
+    for lineno, text in table.comments:
+        m = re.match(r"interpolation\s*:\s*(\S+)", text)
+        if m:
+            interpolation = m.group(1).lower()
+            if interpolation not in ("constant", "linear"):
+                raise InputError.one(path, lineno, "interpolation",
+                                     f"expected 'constant' or 'linear', got {m.group(1)!r}")
+    header_line, header = table.header
     most = 1 + 2 * len(feed_names)
     if len(header) > most + 10:  # a few stray columns get their own message below
         raise InputError.one(path, header_line, "", f"the header has {len(header)} columns; a schedule for "
@@ -479,12 +461,11 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     columns = []  # (feed name, 'rate'|'growth'|'time', factor)
     issues = []
     for c, cell in enumerate(header):
-        m = _HEADER_RE.match(cell)
-        if not m or not m.group("unit"):
-            issues.append(Issue(path, header_line, cell or f"column {c + 1}",
-                                "header cells name a column and its unit in brackets, e.g. 'glucose [L/h]'"))
+        got = header_cell(path, header_line, cell, c, "glucose [L/h]")
+        if isinstance(got, Issue):
+            issues.append(got)
             continue
-        name, unit = m.group("name").strip(), m.group("unit").strip()
+        name, unit = got
         if c == 0:
             kind, role = "time", "time"
             if name.lower() != "time":
@@ -493,14 +474,11 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
             kind, role, name = "specific_rate", "growth", name[: -len(" growth")].strip()
         else:
             kind, role = "flow", "rate"
-        try:
-            q = parse_quantity(f"1 {unit}", kind)
-            factor = to_internal(q)
-        except ValueError as exc:
-            msg = str(exc).replace("'1 ", "'", 1) if str(exc).startswith("'1 ") else str(exc)
-            issues.append(Issue(path, header_line, cell, f"unit {msg}" if msg.startswith("'") else msg))
+        got = unit_factor(path, header_line, cell, unit, kind)
+        if isinstance(got, Issue):
+            issues.append(got)
             continue
-        columns.append((name, role, factor, cell))
+        columns.append((name, role, got[0], cell))
     if issues:
         raise InputError(issues)
     given = [n for n, role, _, _ in columns if role == "rate"]
@@ -514,29 +492,16 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     issues = _missing(path, feed_names, given, header_line)
     if issues:
         raise InputError(issues)
+    table.check_width()
     times, lines = [], []
     data = {n: ([], []) for n in feed_names}
-    for lineno, cells in rows[1:]:
-        if len(cells) != len(header):
-            hint = ("; numbers with a decimal comma (0,12) need ';' between the columns"
-                    if delimiter == "," and len(cells) > len(header) else "")
-            raise InputError.one(path, lineno, "", f"row has {len(cells)} cells, the header has {len(header)}{hint}")
+    for lineno, cells in table.rows[1:]:
         growth_seen = {n: 0.0 for n in feed_names}
         rate_row = {}
         for (name, role, factor, cell), text_value in zip(columns, cells):
             if role == "growth" and text_value == "":
                 continue
-            try:
-                if not text_value.isascii():  # float() would read fullwidth digits as numbers
-                    raise ValueError
-                value = float(_decimal_point(text_value) if delimiter == ";" else text_value)
-                if not math.isfinite(value):
-                    raise ValueError
-            except ValueError:
-                hint = ""
-                if delimiter == ";" and "," in text_value and "." in text_value:
-                    hint = " (no thousands separators: write 1234,5 or 1234.5)"
-                raise InputError.one(path, lineno, cell, f"expected a number, got {text_value!r}{hint}") from None
+            value = table.number(lineno, cell, text_value)
             if role == "time":
                 t = value * factor
             elif role == "rate":
@@ -559,24 +524,6 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
         unique = {(i.line, i.message): i for i in reversed(issues)}
         raise InputError(sorted(unique.values(), key=lambda i: (i.line or 0)))
     return Schedule(feeds, interpolation, path)
-
-
-_DECIMAL_COMMA = re.compile(r"^[-+]?\d*,\d+(?:[eE][-+]?\d+)?$")
-
-
-def _delimiter(path, lineno, header: str) -> str:
-    """',' or ';' between the columns, read off the header row. With ';' (common where
-    the decimal mark is a comma) numbers may be written 0,12 as well as 0.12."""
-    outside = re.sub(r"\[[^\]]*\]", "", header)  # units in brackets do not count
-    if ";" in outside and "," in outside:
-        raise InputError.one(path, lineno, "", "the header mixes ',' and ';': separate the columns with one of "
-                                               "them (with ';', numbers may use a decimal comma: 0,12)")
-    return ";" if ";" in outside else ","
-
-
-def _decimal_point(text: str) -> str:
-    """'0,12' -> '0.12' (one comma and digits only); anything else as it is."""
-    return text.replace(",", ".") if _DECIMAL_COMMA.match(text) else text
 
 
 def _load_yaml(path, feed_names, end_time) -> Schedule:

@@ -28,3 +28,22 @@ def write(tmp_path):
         return path
 
     return _write
+
+
+_OPTIMIZED: dict = {}
+
+
+@pytest.fixture(scope="session")
+def optimized():
+    """optimized(path) -> the OptimizeResult of that problem file with default
+    settings, computed once per test session (optimize is deterministic: budgets are
+    iteration counts), so several tests can judge one run."""
+    from optfeed.optimize import optimize
+
+    def get(path):
+        key = str(path)
+        if key not in _OPTIMIZED:
+            _OPTIMIZED[key] = optimize(path)
+        return _OPTIMIZED[key]
+
+    return get

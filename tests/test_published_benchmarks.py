@@ -15,8 +15,6 @@ The task sets the bar at 0.5 % of the best-known value, from default settings.
 
 import pytest
 
-from optfeed.optimize import optimize
-
 from conftest import ROOT
 
 PUBLISHED = ROOT / "tests" / "published"
@@ -29,8 +27,8 @@ CASES = [
 
 
 @pytest.mark.parametrize("name,best_known,tf", CASES)
-def test_reaches_best_known_optimum(name, best_known, tf):
-    r = optimize(PUBLISHED / name)
+def test_reaches_best_known_optimum(name, best_known, tf, optimized):
+    r = optimized(PUBLISHED / name)
     assert r.status == "optimal, verified", r.message
     assert r.objective_sim == pytest.approx(best_known, rel=5e-3)
     assert r.objective_nlp == pytest.approx(best_known, rel=5e-3)

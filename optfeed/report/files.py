@@ -282,6 +282,8 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
     answer also schedule.csv (the pump schedule, readable by ``optfeed check
     --schedule``), trajectory.csv (re-simulated), points.csv (the NLP's collocation
     points) and the figures figure-limits.png, figure-culture.png, figure-feeds.png.
+    When the solve failed, the closest schedule the solver found is written as
+    closest-schedule.csv (with its trajectory and figures), never as schedule.csv.
     """
     from ..model import build_model
     from ..schedule import schedule_csv_text
@@ -300,10 +302,14 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             model = build_model(result.problem)
             units = {f.name: f.unit for f in result.problem.feeds}
             end = f" --end-time {result.end_time!r}" if result.problem.horizon.free else ""
+            answer = result.objective_nlp is not None  # a converged solve, verified or not
+            name = "schedule.csv" if answer else "closest-schedule.csv"
             note = (f"Pump schedule from optfeed optimize ({result.status}) for {result.problem.name}.\n"
+                    + ("" if answer else "NOT AN ANSWER: the closest schedule the solver found, kept to show "
+                       "why the problem failed.\n") +
                     f"Run length: {result.end_time!r} h. Check it with: "
-                    f"optfeed check PROBLEM --schedule schedule.csv{end}")
-            (tmp / "schedule.csv").write_text(schedule_csv_text(result.schedule, units, note))
+                    f"optfeed check PROBLEM --schedule {name}{end}")
+            (tmp / name).write_text(schedule_csv_text(result.schedule, units, note))
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
