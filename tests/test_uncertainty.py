@@ -175,6 +175,8 @@ def test_covariance_names_and_mixing(tmp_path):
     ("name,mu_max [1/h]\nmu_max [1/min],1e-4\n", 2, "mu_max [1/min]", "the row's unit differs"),
     ("name,mu_max [1/h]\nmu_max [1/h],fast\n", 2, "mu_max [1/h]", "expected a number, got 'fast'"),
     ("name,mu_max [1/h],mu_max [1/h]\n", 1, "mu_max [1/h]", "names a column twice"),
+    ("name,mu_max\nmu_max,1e-4\n", 1, "mu_max", r"header cells name a column and its unit in brackets"),
+    ("name,mu_max [1/h]\nmu_max [1/h],1e-4,2\n", 2, "", "row has 3 cells, the header has 2"),
 ])
 def test_bad_covariance_files(tmp_path, csv, line, key, message):
     path = _problem(tmp_path, "covariance: cov.csv\n", csv)

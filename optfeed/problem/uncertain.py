@@ -29,7 +29,6 @@ inside it).
 
 from __future__ import annotations
 
-import csv
 import difflib
 import math
 import re
@@ -42,7 +41,6 @@ from ..errors import InputError, Issue
 from ..paths import inside
 from ..units import parse_quantity, to_internal, written_unit
 from .spec import Uncertain, Uncertainty
-from .yamlio import read_text
 
 MAX_SCENARIOS = 256  # blocks of the optimizer's NLP
 MAX_SAMPLES = 100_000  # Monte Carlo re-simulations
@@ -52,8 +50,8 @@ MAX_COVARIANCE_NAMES = 200
 SYMMETRY_TOL = 1e-6  # |c_ij - c_ji| relative to sqrt(c_ii c_jj): a file written to 7 digits passes
 MIN_EIGENVALUE = 1e-10  # of the correlation matrix; below: not positive definite
 
-_HEADER_RE = re.compile(r"^\s*(?P<name>[^\[\]]*?)\s*(?:\[(?P<unit>[^\]]*)\])?\s*$")
-_DECIMAL_COMMA = re.compile(r"^[-+]?\d*,\d+(?:[eE][-+]?\d+)?$")
+# a row's name with its unit, if given (as the header of the project's CSV tables)
+HEADER_RE = re.compile(r"^\s*(?P<name>[^\[\]]+?)\s*(?:\[(?P<unit>[^\]]*)\])?\s*$")
 
 
 @dataclass(frozen=True)
@@ -329,86 +327,70 @@ def canonical_name(name: str, nominals: dict) -> str | None:
 def _covariance(text, source, lines, loc, nominals, fail, issues):
     """(names, matrix in internal units, file path) of the covariance file, or None
     after recording issues."""
+    from ..csvfile import read_table
+
     line = lines.get(loc)
     try:
         path = inside(text, Path(source).parent, source, line, ".".join(loc), what="covariance file")
-        content = read_text(path)
-    except InputError as exc:
-        i = exc.issues[0]
-        if i.file == source:  # about the path as written
-            issues.append(i)
-        else:  # about the file (missing, a folder, too large, binary...)
-            fail(loc, f"{text}: {i.message}")
-        return None
-    try:
-        names, matrix = read_covariance(content, str(path), nominals)
     except InputError as exc:
         issues.extend(exc.issues)
+        return None
+    try:
+        names, matrix = read_covariance(read_table(path), nominals)
+    except InputError as exc:
+        for i in exc.issues:
+            if i.line is None:  # the file itself: missing, a folder, too large, binary, empty...
+                fail(loc, f"{text}: {i.message}")
+            else:
+                issues.append(i)
         return None
     # positive definite: look at the correlation matrix (unit-free), whose eigenvalues
     # say how far from singular the matrix is
     d = np.sqrt(np.diag(matrix))
     corr = matrix / np.outer(d, d)
-    eig = np.linalg.eigvalsh(corr)
+    eig, vecs = np.linalg.eigh(corr)
     if eig[0] <= MIN_EIGENVALUE:
-        vec = np.linalg.eigh(corr)[1][:, 0]
+        vec = vecs[:, 0]
         order = np.argsort(-np.abs(vec))[:3]
         vec = vec if vec[order[0]] > 0 else -vec
         direction = " ".join(f"{'-' if vec[i] < 0 else '+'} {abs(vec[i]):.2g} {names[i]}" for i in order
                              if abs(vec[i]) > 1e-3).removeprefix("+ ")
         fail(loc, f"the covariance matrix in {Path(text).name} is not positive definite (smallest eigenvalue of "
                   f"its correlation matrix {eig[0]:.3g}): along {direction} (each scaled by its standard "
-                  "deviation) it gives a variance of zero or less. A variance of zero, a correlation of exactly +-1 or numbers "
-                  "rounded too far do this; a covariance matrix must be symmetric positive definite")
+                  "deviation) it gives a variance of zero or less. A variance of zero, a correlation of exactly "
+                  "+-1 or numbers rounded too far do this; a covariance matrix must be symmetric positive definite")
         return None
     return names, matrix, str(path)
 
 
-def read_covariance(text: str, path: str, nominals: dict):
-    """Read a covariance file's text: ``(names, matrix)``, internal units.
+def read_covariance(table, nominals: dict):
+    """A covariance file (an :class:`optfeed.csvfile.Table`) as ``(names, matrix)``,
+    internal units.
 
-    The format (``,`` or ``;`` between cells; with ``;`` a decimal comma is
-    allowed; ``#`` starts a comment line)::
+    The format is that of the project's other CSV tables (``,`` or ``;`` between
+    cells, a decimal comma with ``;``, ``#`` comment lines)::
 
         # covariance of the fitted parameters
         name, mu_max [1/h], K_s [g/L]
         mu_max [1/h], 4.0e-4, 1.0e-5
         K_s [g/L], 1.0e-5, 2.5e-3
 
-    The first header cell is a label of the names (any text). Each column names an
-    uncertain value with its unit in brackets (without one: the unit the value is
-    written in in the problem file); each row starts with the name (and, if given,
-    the same unit) of one column, in any order. The entry of row i and column j is
-    in unit_i * unit_j. Checked here: names, units, numbers, variances above zero,
-    correlations within +-1, symmetry (to :data:`SYMMETRY_TOL`). Positive
-    definiteness is checked by the caller.
+    The first header cell labels the names (any text). Each further header cell
+    names an uncertain value and its unit in brackets; each row starts with the
+    name of one column (its unit may be repeated, and must then be the same), in any
+    order. The entry of row i and column j is in unit_i * unit_j. Checked here:
+    names, units, numbers, variances above zero, correlations within +-1, symmetry
+    (to :data:`SYMMETRY_TOL`). Positive definiteness is checked by the caller.
 
     Raises
     ------
     InputError
-        Naming ``path``, the line and the cell.
+        Naming the file, the line and the cell.
     """
-    rows = []
-    for lineno, line in enumerate(text.splitlines(), start=1):
-        if line.strip() and not line.strip().startswith("#"):
-            rows.append((lineno, line))
-    if not rows:
-        raise InputError.one(path, None, "", "no header row: expected a header naming each value with its unit, "
-                                             "e.g. 'name, mu_max [1/h], K_s [g/L]'")
-    header_line, header_text = rows[0]
-    outside = re.sub(r"\[[^\]]*\]", "", header_text)
-    if ";" in outside and "," in outside:
-        raise InputError.one(path, header_line, "", "the header mixes ',' and ';': separate the cells with one of "
-                                                    "them")
-    delimiter = ";" if ";" in outside else ","
-    parsed = []
-    for lineno, line in rows:
-        try:
-            cells = next(csv.reader([line], delimiter=delimiter))
-        except csv.Error as exc:
-            raise InputError.one(path, lineno, "", f"CSV error: {exc}") from None
-        parsed.append((lineno, [c.strip() for c in cells]))
-    header = parsed[0][1]
+    from ..csvfile import header_cell
+
+    path = table.path
+    header_line, header = table.header
     if len(header) - 1 > MAX_COVARIANCE_NAMES:
         raise InputError.one(path, header_line, "", f"the header names {len(header) - 1} values; a covariance "
                                                     f"file holds at most {MAX_COVARIANCE_NAMES}")
@@ -417,25 +399,32 @@ def read_covariance(text: str, path: str, nominals: dict):
                                                     "'name, mu_max [1/h], K_s [g/L]'")
     issues = []
     names, factors = [], []
-    for cell in header[1:]:
-        got = _named(cell, nominals, path, header_line, issues)
-        if got is None:
+    for k, cell in enumerate(header[1:], start=1):
+        got = header_cell(path, header_line, cell, k, "mu_max [1/h]")
+        if isinstance(got, Issue):
+            issues.append(got)
             continue
-        name, factor = got
-        if name in names:
-            issues.append(Issue(path, header_line, cell, f"{name!r} names a column twice"))
+        name = _named(got[0], got[1], nominals, path, header_line, cell, issues)
+        if name is None:
             continue
-        names.append(name)
-        factors.append(factor)
+        if name[0] in names:
+            issues.append(Issue(path, header_line, cell, f"{name[0]!r} names a column twice"))
+            continue
+        names.append(name[0])
+        factors.append(name[1])
     if issues:
         raise InputError(issues)
+    table.check_width()
     n = len(names)
     matrix = np.full((n, n), np.nan)
     row_of = {}
-    for lineno, cells in parsed[1:]:
-        label = cells[0] if cells else ""
-        got = _named(label, nominals, path, lineno, issues)
+    for lineno, cells in table.rows[1:]:
+        label = cells[0]
+        m = HEADER_RE.match(label)
+        got = _named(m.group("name").strip(), m.group("unit"), nominals, path, lineno, label, issues) if m else None
         if got is None:
+            if not m:
+                issues.append(Issue(path, lineno, label or "(empty)", "expected the name of a column"))
             continue
         name, factor = got
         if name not in names:
@@ -443,7 +432,7 @@ def read_covariance(text: str, path: str, nominals: dict):
                                                      "columns name the same values"))
             continue
         i = names.index(name)
-        if not math.isclose(factor, factors[i], rel_tol=1e-12):
+        if m.group("unit") is not None and not math.isclose(factor, factors[i], rel_tol=1e-12):
             issues.append(Issue(path, lineno, label, f"the row's unit differs from the unit of column "
                                                      f"{header[i + 1]!r}; give both the same unit"))
             continue
@@ -451,30 +440,16 @@ def read_covariance(text: str, path: str, nominals: dict):
             issues.append(Issue(path, lineno, label, f"row {name!r} appears twice (first at line {row_of[name]})"))
             continue
         row_of[name] = lineno
-        if len(cells) != len(header):
-            issues.append(Issue(path, lineno, label, f"row has {len(cells)} cells, the header has {len(header)}"))
-            continue
         for j, value_text in enumerate(cells[1:]):
-            try:
-                if not value_text.isascii():
-                    raise ValueError
-                value = float(value_text.replace(",", ".") if delimiter == ";" and _DECIMAL_COMMA.match(value_text)
-                              else value_text)
-                if not math.isfinite(value):
-                    raise ValueError
-            except ValueError:
-                issues.append(Issue(path, lineno, header[j + 1], f"expected a number, got {value_text!r}"))
-                continue
-            matrix[i, j] = value * factors[i] * factors[j]
-    for name in names:
-        if name not in row_of and not issues:
-            issues.append(Issue(path, header_line, name, f"no row for {name!r}: the matrix needs a row for every "
-                                                         "column"))
+            matrix[i, j] = table.number(lineno, header[j + 1], value_text) * factors[i] * factors[j]
+    if not issues:
+        for name in names:
+            if name not in row_of:
+                issues.append(Issue(path, header_line, name, f"no row for {name!r}: the matrix needs a row for "
+                                                             "every column"))
     if issues:
         raise InputError(issues)
-    inv = {name: i for i, name in enumerate(names)}
-    for name in names:
-        i = inv[name]
+    for i, name in enumerate(names):
         if not matrix[i, i] > 0:
             issues.append(Issue(path, row_of[name], header[i + 1], f"the variance of {name!r} must be above zero, "
                                                                    f"got {matrix[i, i] / factors[i] ** 2:g}"))
@@ -499,32 +474,25 @@ def read_covariance(text: str, path: str, nominals: dict):
     return names, 0.5 * (matrix + matrix.T)
 
 
-def _named(cell, nominals, path, lineno, issues):
-    """(canonical name, internal value of 1 unit) of a header cell or row label, or
-    None after recording an issue."""
-    m = _HEADER_RE.match(cell)
-    if not m or not m.group("name"):
-        issues.append(Issue(path, lineno, cell or "(empty)", "expected the name of a value with its unit in "
-                                                            "brackets, e.g. 'mu_max [1/h]'"))
-        return None
-    name = canonical_name(m.group("name"), nominals)
+def _named(text, unit, nominals, path, lineno, cell, issues):
+    """(canonical name, internal value of 1 ``unit``) of a column or row name (a row
+    without a unit takes its column's), or None after recording an issue."""
+    from ..csvfile import unit_factor
+
+    name = canonical_name(text, nominals)
     if name is None:
-        known = [k for k in nominals]
-        issues.append(Issue(path, lineno, cell, f"{m.group('name')!r} is not a parameter, initial value "
-                                                f"('initial.X') or feed composition ('feeds.<feed>.<species>') of "
-                                                f"the problem{_hint(m.group('name'), known)}"))
+        issues.append(Issue(path, lineno, cell, f"{text!r} is not a parameter, initial value ('initial.X') or feed "
+                                                f"composition ('feeds.<feed>.<species>') of the problem"
+                                                f"{_hint(text, list(nominals))}"))
         return None
     nom = nominals[name]
-    unit = m.group("unit")
     if unit is None or not unit.strip():
         return name, nom.factor
-    try:
-        q = parse_quantity(f"1 {unit.strip()}", "any")
-        factor = to_internal(q)
-    except ValueError as exc:
-        msg = str(exc)
-        issues.append(Issue(path, lineno, cell, msg.replace("'1 ", "'", 1) if msg.startswith("'1 ") else msg))
+    got = unit_factor(path, lineno, cell, unit.strip(), "any")
+    if isinstance(got, Issue):
+        issues.append(got)
         return None
+    factor, q = got
     if nom.known_dims and q.dimensionality != nom.dims:
         issues.append(Issue(path, lineno, cell, f"unit {unit.strip()!r} has dimension {_dims(q.dimensionality)}, "
                                                 f"but {name} is written in {nom.unit!r} ({_dims(nom.dims)})"))
