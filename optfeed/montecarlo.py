@@ -333,8 +333,9 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=N
     }
 
 
-def _chunk(job) -> list:
-    """Simulate a piece of the sample in this process (one model and integrator)."""
+def _chunk(job, progress=None) -> list:
+    """Simulate a piece of the sample in this process (one model and integrator);
+    ``progress(1)`` after each sample (default: to the parent process, if any)."""
     from .limits import build_limits
     from .model import build_model
     from .processes import report_progress
@@ -347,7 +348,7 @@ def _chunk(job) -> list:
     out = []
     for k in range(constants.shape[1]):
         out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline))
-        report_progress(1)
+        (progress or report_progress)(1)
     return out
 
 
@@ -364,12 +365,7 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) 
             on_progress(f"Monte Carlo: {total[0]}/{n} samples simulated", total[0], n)
 
     if workers == 1:
-        out = []
-        for k in range(0, n, 16):
-            piece = _chunk((problem, schedule, tf, drawn.constants[:, k:k + 16], drawn.x0[:, k:k + 16], deadline))
-            out += piece
-            progress(len(piece))
-        return out
+        return _chunk((problem, schedule, tf, drawn.constants, drawn.x0, deadline), progress)
 
     from .processes import run_killable
 
