@@ -401,7 +401,20 @@ class _Builder:
                 if lo[0] > hi[0]:
                     self.fail(("feeds", name, "min_rate"),
                               f"minimum pump rate {fd.min_rate!r} is above the maximum {fd.max_rate!r}")
-                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description))
+                extra = {}
+                for key, word in (("min_on", "minimum setting when on"), ("step", "setting step")):
+                    value = getattr(fd, key)
+                    if value is None:
+                        continue
+                    got = self.quantity(value, "flow", ("feeds", name, key))
+                    if not got:
+                        continue
+                    if not 0 < got[0] <= hi[0]:
+                        self.fail(("feeds", name, key), f"the pump's {word} must be above zero and at most its "
+                                                        f"maximum {fd.max_rate!r}, got {value!r}")
+                        continue
+                    extra[key] = got[0]
+                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description, **extra))
         return out
 
     def _vessel(self, env):

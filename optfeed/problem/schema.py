@@ -42,6 +42,8 @@ class FeedIn(_Strict):
     composition: dict[str, Scalar] = Field(default_factory=dict)
     max_rate: Scalar
     min_rate: Scalar = 0.0
+    min_on: Optional[Scalar] = None  # the pump is off, or runs at least this fast
+    step: Optional[Scalar] = None  # the smallest change the pump can make
     description: Text = ""
 
 

@@ -57,6 +57,12 @@ class Feed:
         Species name -> concentration in the feed, internal units.
     min_rate, max_rate : float
         Pump limits, L/h.
+    min_on : float
+        L/h; when above zero the pump is either off or runs at least this fast
+        (optimize fixes the relaxed answer's on/off pattern and solves again).
+    step : float
+        L/h; the smallest change of setting the pump can make (0: any), to which
+        the written schedule is rounded and then verified.
     unit : str
         The unit the user wrote for ``max_rate`` (for reports).
     """
@@ -67,6 +73,8 @@ class Feed:
     max_rate: float
     unit: str
     description: str = ""
+    min_on: float = 0.0
+    step: float = 0.0
 
 
 @dataclass(frozen=True)
