@@ -1,7 +1,8 @@
 """The command line: a thin layer over the Python API.
 
     optfeed validate PROBLEM [--schedule FILE] [--set KEY=VALUE ...]
-    optfeed check PROBLEM --schedule FILE [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed check PROBLEM --schedule FILE [--uncertainty [--samples N] [--seed S] [--workers N]]
+                  [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
     optfeed optimize PROBLEM [--workers N] [--set KEY=VALUE ...] [--time-limit T] [--out DIR | --results DIR]
                      [--json] [--quiet]
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
@@ -44,7 +45,15 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("problem", help="problem file (YAML)")
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
     c.add_argument("--end-time", type=float, help="run length in h (only for a free end time; default: its guess)")
-    c.add_argument("--time-limit", help="time for the simulation, with its unit, e.g. '2 min'")
+    c.add_argument("--time-limit", help="time for the simulation, with its unit, e.g. '2 min' (with --uncertainty: "
+                                        "for the Monte Carlo samples too)")
+    c.add_argument("--uncertainty", action="store_true",
+                   help="also judge the schedule over a Monte Carlo sample of the values the problem's "
+                        "'uncertainty' section makes uncertain: the probability of breaking each limit")
+    c.add_argument("--samples", type=int, help="Monte Carlo samples (with --uncertainty; default: the section's "
+                                               "monte_carlo.samples, 200)")
+    c.add_argument("--seed", type=int, help="Monte Carlo seed (with --uncertainty; default: the section's)")
+    c.add_argument("--workers", type=int, help="processes for the Monte Carlo simulations (default: the cores)")
     _set_arg(c)
     _output_args(c)
 
@@ -242,9 +251,17 @@ def _check(args) -> int:
     problem = load_problem(args.problem, set=_overrides(args.set))
     _warn(problem)
     target = _run_folder(args, problem.name, "check")
-    result = check(problem, args.schedule, end_time=args.end_time, time_limit=_time_limit(args))
+    limit = _time_limit(args)
+
+    def job(progress=None):
+        return check(problem, args.schedule, end_time=args.end_time, time_limit=limit, uncertainty=args.uncertainty,
+                     samples=args.samples, seed=args.seed, workers=args.workers, on_progress=progress)
+
+    result = job() if args.quiet or args.json or not args.uncertainty else _with_progress(job, "Monte Carlo")
     write_check_run(result, target, figures=not args.no_figures)
     files = "summary.json, report.txt, report.html, limits.csv, schedule.csv, trajectory.csv"
+    if result.uncertainty is not None:
+        files += ", montecarlo.csv"
     if not args.no_figures and result.trajectory is not None:
         files += ", figure-*.png"
     return _show(args, result, check_summary(result), check_text(result), target, f" ({files})")
@@ -370,7 +387,7 @@ def _sweep_with_progress(sweep, folder, args):
                          fresh_process_per_case=args.fresh_process_per_case)
 
 
-def _with_progress(job):
+def _with_progress(job, first: str = "optimizing"):
     """Run ``job(callback)`` under a progress display on stderr."""
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -378,7 +395,7 @@ def _with_progress(job):
     console = Console(stderr=True)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True, disable=not console.is_terminal) as bar:
-        task = bar.add_task("optimizing", total=1)
+        task = bar.add_task(first, total=1)
 
         def callback(text, done, total):
             bar.update(task, description=text, completed=done, total=total)
