@@ -33,6 +33,7 @@ from .problem import Problem, load_problem  # noqa: E402
 from .schedule import Schedule, load_schedule, piecewise_constant  # noqa: E402
 from .validate import ValidateResult, validate  # noqa: E402
 from .check import CheckResult, check  # noqa: E402
+from .montecarlo import MonteCarloResult  # noqa: E402
 from .optimize import OptimizeResult, optimize  # noqa: E402
 from .sweep import SweepResult, load_sweep, run_sweep  # noqa: E402
 from .recipe import RecipeResult, recipe  # noqa: E402
@@ -44,5 +45,5 @@ __all__ = [
     "__version__", "load_problem", "validate", "check", "optimize", "sweep", "run_sweep", "load_sweep",
     "ValidateResult", "CheckResult", "OptimizeResult", "SweepResult", "Problem", "Schedule",
     "load_schedule", "piecewise_constant", "InputError", "OptfeedError", "SimulationError", "recipe",
-    "RecipeResult", "fit", "FitResult",
+    "RecipeResult", "MonteCarloResult", "fit", "FitResult",
 ]

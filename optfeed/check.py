@@ -10,6 +10,7 @@ from . import status as st
 from .errors import InputError, SimulationError, TimeLimitReached
 from .limits import LimitReport, build_limits, judge
 from .model import build_model
+from .montecarlo import MonteCarloResult, monte_carlo
 from .outcome import Outcome, outcome_of
 from .problem import Problem
 from .problem.dotted import as_problem
@@ -42,6 +43,10 @@ class CheckResult:
         Limit name -> % of its upper bound at each trajectory sample.
     record : dict
         Provenance: problem digest, files, tool version, time.
+    uncertainty : MonteCarloResult or None
+        With ``uncertainty=True``: the schedule judged over a Monte Carlo sample of
+        the uncertain values (:mod:`optfeed.montecarlo`). The status, message and
+        exit code stay those of the nominal run; these figures stand beside them.
     """
 
     status: str
@@ -54,6 +59,7 @@ class CheckResult:
     trajectory: Trajectory | None = field(repr=False, default=None)
     use: dict = field(repr=False, default_factory=dict)
     record: dict = field(default_factory=dict)
+    uncertainty: MonteCarloResult | None = field(repr=False, default=None)
 
     @property
     def exit_code(self) -> int:
@@ -94,8 +100,10 @@ class CheckResult:
 
 
 def check(problem, schedule, end_time: float | None = None, set: dict | None = None,
-          time_limit: float | None = None) -> CheckResult:
-    """Simulate ``schedule`` on ``problem`` and judge every limit.
+          time_limit: float | None = None, uncertainty: bool = False, samples: int | None = None,
+          seed: int | None = None, workers: int | None = None, on_progress=None) -> CheckResult:
+    """Simulate ``schedule`` on ``problem`` and judge every limit; with
+    ``uncertainty=True`` also over a Monte Carlo sample of its uncertain values.
 
     Parameters
     ----------
@@ -112,7 +120,19 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         ``{"parameters.mu_max": "0.5 1/h"}``.
     time_limit : float, optional
         Seconds for the simulation; when it is reached the status is 'time limit'
-        and the message says how far the run got.
+        and the message says how far the run got. With ``uncertainty`` the same
+        limit covers the Monte Carlo samples too: those not simulated by then are
+        left out and counted (``result.uncertainty.not_run``).
+    uncertainty : bool
+        Also judge the schedule over a fresh sample of the values the problem's
+        ``uncertainty`` section makes uncertain (it must have one), and report the
+        probability of breaking each limit (``result.uncertainty``).
+    samples, seed : int, optional
+        Monte Carlo samples and seed (default: the section's ``monte_carlo``).
+    workers : int, optional
+        Processes for the Monte Carlo simulations (default: the cores).
+    on_progress : callable, optional
+        ``on_progress(text, done, total)`` as Monte Carlo samples finish.
 
     Returns
     -------
@@ -124,6 +144,15 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         For a bad problem or schedule file.
     """
     problem = as_problem(problem, set)
+    if not uncertainty:
+        for option, value in (("--samples", samples), ("--seed", seed), ("--workers", workers)):
+            if value is not None:
+                raise InputError.one(option, None, option, f"{option} is used only with --uncertainty "
+                                                           "(uncertainty=True)")
+    elif problem.uncertainty is None:
+        raise InputError.one(problem.source, None, "uncertainty",
+                             "--uncertainty needs an 'uncertainty' section in the problem file: the values that "
+                             "are uncertain and their distributions (see README, 'Writing a problem file')")
     tf = run_length(problem, end_time)
     model = build_model(problem)
     if isinstance(schedule, Schedule):
@@ -134,15 +163,24 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
               "problem_digest": problem_digest(problem), **stamp()}
     limits = build_limits(model)
     deadline = None if time_limit is None else time.monotonic() + time_limit
+
+    def beside():  # the Monte Carlo figures stand beside the nominal verdict, never in it
+        if not uncertainty:
+            return None
+        mc = monte_carlo(problem, schedule, tf, samples=samples, seed=seed, workers=workers,
+                         on_progress=on_progress, deadline=deadline)
+        record["monte_carlo"] = {"samples": mc.samples, "seed": mc.seed, "workers": mc.workers}
+        return mc
+
     try:
         traj = simulate(model, schedule, tf, deadline=deadline)
     except TimeLimitReached as exc:
         return CheckResult(st.TIME_LIMIT, f"time limit of {time_limit:g} s reached: the simulation got to "
                            f"{exc.time:.4g} h of {tf:.4g} h; nothing was judged", (), None, tf, problem, schedule,
-                           None, {}, record)
+                           None, {}, record, beside())
     except SimulationError as exc:
         return CheckResult(st.SIMULATION_FAILED, str(exc), (), None, tf, problem,  # the status says 'failed'
-                           schedule, None, {}, record)
+                           schedule, None, {}, record, beside())
     reports, use = judge(model, limits, traj)
     outcome = outcome_of(model, traj, tf)
     broken = sorted((r for r in reports if r.violated), key=lambda r: r.first_violation)
@@ -157,7 +195,7 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         if used:
             tight = max(used, key=lambda r: r.peak_use)
             message += f"; highest use: {tight.name} at {tight.peak_use:.1f} %"
-    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record)
+    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, beside())
 
 
 def run_length(problem: Problem, end_time: float | None = None, source: str = "--end-time") -> float:

@@ -1,11 +1,12 @@
 """The command line: a thin layer over the Python API.
 
     optfeed validate PROBLEM [--schedule FILE] [--set KEY=VALUE ...]
-    optfeed check PROBLEM --schedule FILE [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
+    optfeed check PROBLEM --schedule FILE [--uncertainty [--samples N] [--seed S] [--workers N]]
+                  [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
     optfeed optimize PROBLEM [--workers N] [--set KEY=VALUE ...] [--time-limit T] [--out DIR | --results DIR]
                      [--json] [--quiet]
     optfeed sweep SWEEP [--workers N | --scheduler ADDRESS] [--out DIR | --results DIR] [--max-cases N]
-                  [--allow-symlink] [--retry-failed] [--quiet]
+                  [--allow-symlink] [--retry-failed] [--fresh-process-per-case] [--quiet]
     optfeed recipe RUN_FOLDER [--unit mL/min] [--step "1 min"] [--start "2026-12-04 08:00"] [--problem FILE]
     optfeed fit PROBLEM RUNS [--profile] [--set KEY=VALUE ...] [--out DIR | --results DIR] [--json] [--quiet]
 
@@ -46,7 +47,15 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("problem", help="problem file (YAML)")
     c.add_argument("--schedule", required=True, help="schedule file (CSV or YAML)")
     c.add_argument("--end-time", type=float, help="run length in h (only for a free end time; default: its guess)")
-    c.add_argument("--time-limit", help="time for the simulation, with its unit, e.g. '2 min'")
+    c.add_argument("--time-limit", help="time for the simulation, with its unit, e.g. '2 min' (with --uncertainty: "
+                                        "for the Monte Carlo samples too)")
+    c.add_argument("--uncertainty", action="store_true",
+                   help="also judge the schedule over a Monte Carlo sample of the values the problem's "
+                        "'uncertainty' section makes uncertain: the probability of breaking each limit")
+    c.add_argument("--samples", type=int, help="Monte Carlo samples (with --uncertainty; default: the section's "
+                                               "monte_carlo.samples, 200)")
+    c.add_argument("--seed", type=int, help="Monte Carlo seed (with --uncertainty; default: the section's)")
+    c.add_argument("--workers", type=int, help="processes for the Monte Carlo simulations (default: the cores)")
     _set_arg(c)
     _output_args(c)
 
@@ -72,6 +81,9 @@ def _parser() -> argparse.ArgumentParser:
                         "cases are counted before any is built")
     w.add_argument("--allow-symlink", action="store_true",
                    help="accept a sweep folder that is a symbolic link (refused by default)")
+    w.add_argument("--fresh-process-per-case", action="store_true",
+                   help="run every case in a new process (default: each worker process runs case after case and "
+                        "keeps the solvers it built)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
 
     f = sub.add_parser("fit", help="calibrate the problem's parameters against past runs, with confidence")
@@ -252,9 +264,17 @@ def _check(args) -> int:
     problem = load_problem(args.problem, set=_overrides(args.set))
     _warn(problem)
     target = _run_folder(args, problem.name, "check")
-    result = check(problem, args.schedule, end_time=args.end_time, time_limit=_time_limit(args))
+    limit = _time_limit(args)
+
+    def job(progress=None):
+        return check(problem, args.schedule, end_time=args.end_time, time_limit=limit, uncertainty=args.uncertainty,
+                     samples=args.samples, seed=args.seed, workers=args.workers, on_progress=progress)
+
+    result = job() if args.quiet or args.json or not args.uncertainty else _with_progress(job, "Monte Carlo")
     write_check_run(result, target, figures=not args.no_figures)
     files = "summary.json, report.txt, report.html, limits.csv, schedule.csv, trajectory.csv"
+    if result.uncertainty is not None:
+        files += ", montecarlo.csv"
     if not args.no_figures and result.trajectory is not None:
         files += ", figure-*.png"
     return _show(args, result, check_summary(result), check_text(result), target, f" ({files})")
@@ -362,7 +382,7 @@ def _sweep(args) -> int:
     folder = Path(args.out) if args.out is not None else Path(args.results) / sweep.name
     if args.quiet:
         result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed,
-                           allow_symlink=args.allow_symlink)
+                           allow_symlink=args.allow_symlink, fresh_process_per_case=args.fresh_process_per_case)
     else:
         result = _sweep_with_progress(sweep, folder, args)
         _out(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
@@ -400,10 +420,11 @@ def _sweep_with_progress(sweep, folder, args):
                       file=sys.stderr)
 
         return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event,
-                         retry=args.retry_failed, allow_symlink=args.allow_symlink)
+                         retry=args.retry_failed, allow_symlink=args.allow_symlink,
+                         fresh_process_per_case=args.fresh_process_per_case)
 
 
-def _with_progress(job, what: str = "optimizing"):
+def _with_progress(job, first: str = "optimizing"):
     """Run ``job(callback)`` under a progress display on stderr."""
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
@@ -411,7 +432,7 @@ def _with_progress(job, what: str = "optimizing"):
     console = Console(stderr=True)
     with Progress(TextColumn("{task.description}"), BarColumn(), TextColumn("{task.completed}/{task.total}"),
                   TimeElapsedColumn(), console=console, transient=True, disable=not console.is_terminal) as bar:
-        task = bar.add_task(what, total=1)
+        task = bar.add_task(first, total=1)
 
         def callback(text, done, total):
             bar.update(task, description=text, completed=done, total=total)

@@ -52,7 +52,8 @@ class Limit:
     ----------
     name : str
     kind : str
-        'pump', 'volume', 'oxygen', 'heat', 'path' or 'end'.
+        'pump', 'setting' (a pump's minimum setting when on; judged only), 'volume',
+        'oxygen', 'heat', 'path' or 'end'.
     expr : casadi.SX
         g(t, x, u, p), internal units.
     lower, upper : float or None
@@ -174,6 +175,11 @@ def build_limits(model: Model) -> list[Limit]:
     for j, f in enumerate(p.feeds):
         add(f"pump {f.name}", "pump", model.u[j], f.min_rate, f.max_rate, f.unit, factor_to(f.unit), False,
             f"feeds.{f.name}")
+        if f.min_on > f.min_rate:
+            # off, or at least min_on: g = min(u, min_on - u) is how far a rate lies inside
+            # the forbidden band (0, min_on); judged only (optimize fixes an on/off pattern)
+            add(f"pump {f.name} minimum setting", "setting", ca.fmin(model.u[j], f.min_on - model.u[j]), None, 0.0,
+                f.unit, factor_to(f.unit), False, f"feeds.{f.name}.min_on")
     v = p.vessel
     add("working volume", "volume", model.x[model.index("V")], None, v.working_volume, v.unit,
         factor_to(v.unit), False, "vessel.working_volume")
@@ -267,7 +273,7 @@ def _local_minima(slack, piece) -> np.ndarray:
 def _between_samples(traj, f, i, lim, values):
     """Extra (times, values) of limit ``i`` found by re-integrating around the
     samples where its slack has a local minimum."""
-    if lim.kind == "pump" or traj.piece is None or traj._simulator is None:
+    if lim.kind in ("pump", "setting") or traj.piece is None or traj._simulator is None:
         return np.zeros(0), np.zeros(0)
     slack, _ = lim.slack(values)
     minima = _local_minima(slack, traj.piece)

@@ -117,7 +117,10 @@ class OptimizeResult:
         Wall time of the whole job.
     record : dict
         Provenance and how the answer was found: settings, the final grid, the
-        grid's estimated gap, distinct local optima met, back-offs.
+        grid's estimated gap, distinct local optima met, back-offs; for a scenario
+        solve, each scenario's objective and verification ('scenarios').
+    nominal : OptimizeResult or None
+        For a scenario solve: the nominal problem's own optimum, for comparison.
     """
 
     status: str
@@ -136,6 +139,7 @@ class OptimizeResult:
     points: dict = field(repr=False, default_factory=dict)
     seconds: float = 0.0
     record: dict = field(default_factory=dict)
+    nominal: "OptimizeResult | None" = field(default=None, repr=False)
 
     @property
     def exit_code(self) -> int:
@@ -203,13 +207,43 @@ class _Answer:
     verification: Verification | None = None
     backoff: dict = field(default_factory=dict)
     label: str = ""
+    pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
+
+
+@dataclass(frozen=True)
+class ScenarioSet:
+    """The scenarios an optimisation carries (the nominal first).
+
+    constants : (n_constants, S) the model's constant vector per scenario
+    x0 : (nx, S) initial states per scenario, the full model's layout
+    labels : tuple of S names
+    combine : 'mean', 'worst' or 'mean_std' (objective over scenarios)
+    risk : k of mean - k*std
+    weights : (S,) summing to 1, or None for equal weights
+    """
+
+    constants: np.ndarray
+    x0: np.ndarray
+    labels: tuple
+    combine: str = "mean"
+    risk: float = 0.0
+    weights: tuple | None = None
+
+    @property
+    def w(self) -> np.ndarray:
+        return np.full(self.size, 1.0 / self.size) if self.weights is None else np.asarray(self.weights, float)
+
+    @property
+    def size(self) -> int:
+        return self.constants.shape[1]
 
 
 class _Job:
     """Everything the stages of one optimize run share."""
 
-    def __init__(self, problem: Problem, on_progress, deadline):
+    def __init__(self, problem: Problem, on_progress, deadline, scenarios: ScenarioSet | None = None):
         self.problem = problem
+        self.scenarios = scenarios
         self.settings = problem.settings
         self.full, self.lean, self.limits = models(problem)
         self.full_limits = build_limits(self.full)
@@ -223,8 +257,13 @@ class _Job:
         self.better = (lambda a, b: a > b) if problem.objective.sense == "maximize" else (lambda a, b: a < b)
         self.sense = -1.0 if problem.objective.sense == "maximize" else 1.0
         self.j_scale = None
+        # pumps that are off or at least a minimum: the search works on the relaxed
+        # problem, and only the final stage holds (and verifies) the minimum settings
+        self.relaxed_pumps = any(f.min_on > f.min_rate for f in problem.feeds)
 
-    def data(self, scaling: Scaling, backoff=None) -> NLPData:
+    def data(self, scaling: Scaling, backoff=None, pump=None) -> NLPData:
+        """The numbers of a solve; ``pump`` = (lower, upper), each (nu, M) L/h, bounds
+        the pumps step by step (an on/off pattern fixed)."""
         p, lean = self.problem, self.lean
         self.j_scale = self.j_scale or scaling.objective
         lower, upper, scale = {}, {}, {}
@@ -234,15 +273,34 @@ class _Job:
             lower[lim.name] = None if lo is None else lo + b
             upper[lim.name] = None if hi is None else hi - b
             scale[lim.name] = lim.scale()
+        sc = self.scenarios
+        if sc is None:
+            constants, x0, weights, risk = lean.p0[:, None], lean.x0[:, None], np.ones(1), 0.0
+        else:
+            keep = [self.full.index(n) for n in lean.state_names]
+            constants, x0 = sc.constants, sc.x0[keep, :]
+            weights, risk = sc.w, sc.risk
         return NLPData(
-            constants=lean.p0[:, None], x0=lean.x0[:, None], end_time=self.fixed, end_bounds=self.t_bounds,
-            pump_min=np.array([f.min_rate for f in p.feeds]), pump_max=np.array([f.max_rate for f in p.feeds]),
+            constants=constants, x0=x0, end_time=self.fixed, end_bounds=self.t_bounds,
+            pump_min=np.array([f.min_rate for f in p.feeds]) if pump is None else pump[0],
+            pump_max=np.array([f.max_rate for f in p.feeds]) if pump is None else pump[1],
             lower=lower, upper=upper, scale=scale, x_scale=scaling.x, t_scale=scaling.t,
-            j_scale=scaling.objective, weights=np.ones(1), smoothing=self.settings.smoothing,
+            j_scale=scaling.objective, weights=weights, smoothing=self.settings.smoothing, risk=risk,
+            pump_scale=np.array([f.max_rate for f in p.feeds]),
         )
 
     def nlp(self, grid: Grid):
-        return get_nlp(self.problem, self.lean, self.limits, grid, self.free, smoothing=self.settings.smoothing > 0)
+        sc = self.scenarios
+        return get_nlp(self.problem, self.lean, self.limits, grid, self.free,
+                       scenarios=1 if sc is None else sc.size, combine="mean" if sc is None else sc.combine,
+                       smoothing=self.settings.smoothing > 0)
+
+    def scenario_inputs(self):
+        """(x0 of the full model, constants) per scenario: [(x0, p), ...]."""
+        sc = self.scenarios
+        if sc is None:
+            return [(self.full.x0, self.full.p0)]
+        return [(sc.x0[:, s], sc.constants[:, s]) for s in range(sc.size)]
 
     def report(self, label, iteration, f, infeasibility=None):
         """Progress of a running solve: ``f`` is the NLP's scaled objective, shown as
@@ -255,20 +313,115 @@ class _Job:
             self.progress(text, None, None)
 
     def pack_from_schedule(self, nlp, data, steps_u, T, traj=None):
-        """NLP vector from pump steps, with the states of their simulation."""
-        if traj is None:
-            M = steps_u.shape[0]
-            sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
-            traj = self.simulator.run(sched, T, min_points=max(400, 4 * M))
-        return nlp.pack(data, steps_u, T, traj.t, states_for(self.lean, self.full, traj.x))
+        """NLP vector from pump steps, with the states of their simulation in every
+        scenario (``traj``: the nominal's, when already simulated)."""
+        M = steps_u.shape[0]
+        sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
+        times, states = [], []
+        for s, (x0, p) in enumerate(self.scenario_inputs()):
+            tr = traj if (traj is not None and s == 0) else self.simulator.run(
+                sched, T, min_points=max(400, 4 * M), x0=x0, p=p)
+            times.append(tr.t)
+            states.append(states_for(self.lean, self.full, tr.x))
+        return nlp.pack(data, steps_u, T, times, states)
 
     def verify(self, nlp, data, start: Start) -> Verification:
+        """Re-simulate the answer's schedule (as schedule.csv will hold it: rounded,
+        exact zeros) in every scenario; verified when every scenario is. Returns the
+        nominal scenario's Verification, its message covering all of them; the
+        others are kept in ``self.scenario_checks``."""
         un = nlp.unpack(start.w, data)
-        # verify the schedule exactly as schedule.csv will hold it: rounded, exact zeros
         schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
                                   self.problem.feeds, end_time=un.T)
-        return verify(self.full, self.full_limits, schedule, un.T, start.objective,
-                      self.settings.verify_tolerance, self.simulator)
+        tol = self.settings.verify_tolerance
+        ignore = ("setting",) if self.relaxed_pumps else ()
+        if self.scenarios is None:
+            return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator,
+                          ignore=ignore)
+        J_nlp = nlp.scenario_objectives(start.w, data)
+        checks = [verify(self.full, self.full_limits, schedule, un.T, float(J_nlp[s]), tol, self.simulator,
+                         x0=x0, p=p, ignore=ignore) for s, (x0, p) in enumerate(self.scenario_inputs())]
+        self.scenario_checks = checks
+        bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
+        nominal = checks[0]
+        if not bad:
+            message = f"every one of {len(checks)} scenarios verified; nominal: {nominal.message}"
+        else:
+            first = next(c for c in checks if not c.verified)
+            message = f"not verified in scenario(s) {', '.join(bad)}: {first.message}"
+        from dataclasses import replace as _replace
+
+        worst = max(checks, key=lambda c: c.worst_violation)
+        return _replace(nominal, verified=not bad, message=message, objective_nlp=start.objective,
+                        worst_violation=worst.worst_violation, worst_limit=worst.worst_limit,
+                        limits=_worst_reports([c.limits for c in checks]))
+
+
+def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
+    """Scenarios that are the same problem carry nothing new (and would make the NLP's
+    constraints degenerate): keep one of each (all the same: the nominal problem)."""
+    if sc is None:
+        return None
+    first, weight = {}, {}
+    for s, w in zip(range(sc.size), sc.w):
+        key = (tuple(sc.constants[:, s]), tuple(sc.x0[:, s]))
+        first.setdefault(key, s)
+        weight[key] = weight.get(key, 0.0) + w  # a repeated draw keeps its share of the mean
+    if len(first) == 1:
+        return None
+    if len(first) == sc.size:
+        return sc
+    keep = list(first.values())
+    return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep],
+                   labels=tuple(sc.labels[s] for s in keep), weights=tuple(weight[k] for k in first))
+
+
+def _seed_guesses(job, seeds) -> list:
+    """Known good feeds as starts: each schedule averaged onto the base pump grid and
+    simulated like any candidate feed."""
+    from .solve import Guess
+
+    out = []
+    M = job.settings.pump_steps
+    for label, schedule, T in seeds:
+        edges = np.linspace(0.0, T, M + 1)
+        segs = schedule.segments(job.full.feed_names, T)
+        steps = np.zeros((M, job.full.nu))
+        for k in range(M):
+            a, b = edges[k], edges[k + 1]
+            for seg in segs:
+                lo, hi = max(a, seg.start), min(b, seg.end)
+                if hi > lo:
+                    tt = np.linspace(lo, hi, 9)
+                    steps[k] += np.trapezoid(seg.rates(tt), tt, axis=0) / (b - a)
+        sched = piecewise_constant(job.full.feed_names, edges[:-1], steps)
+        try:
+            traj = job.simulator.run(sched, T, min_points=max(400, 4 * M))
+        except Exception:  # noqa: BLE001 - a seed the integrator cannot follow is left out
+            continue
+        J = job.full.end_value(traj.final, T, traj.u[-1])
+        out.append(Guess(label, steps, T, traj.t, traj.x, float(J), traj))
+    return out
+
+
+def combine(values, sc: ScenarioSet, maximize: bool = True) -> float:
+    """The scenarios' objectives made one, as the NLP makes them (equal weights): the
+    mean, the worst, or the mean less k standard deviations (plus, when minimising)."""
+    values = np.asarray(values, dtype=float)
+    if sc.combine == "worst":
+        return float(values.min() if maximize else values.max())
+    w = sc.w
+    mean = float(w @ values)
+    if sc.combine == "mean_std":
+        std = float(np.sqrt(w @ (values - mean) ** 2))
+        return mean - sc.risk * std if maximize else mean + sc.risk * std
+    return mean
+
+
+def _worst_reports(per_scenario) -> tuple:
+    """Per limit, the report of the scenario where it comes closest to (or furthest
+    past) its bound."""
+    return tuple(min(reps, key=lambda r: r.min_slack) for reps in zip(*per_scenario))
 
 
 def design_bounds(lim, margin: float) -> tuple:
@@ -283,7 +436,7 @@ def design_bounds(lim, margin: float) -> tuple:
 
 
 def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
-             set: dict | None = None) -> OptimizeResult:
+             set: dict | None = None, scenarios: ScenarioSet | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -299,6 +452,9 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         Values of the problem to change first, by dotted path as in sweep files:
         ``{"parameters.mu_max": "0.5 1/h", "solver.starts": 2}``. (The name
         shadows the builtin ``set`` inside this function.)
+    scenarios : ScenarioSet, optional
+        Optimise one shared pump profile over these scenarios (every limit held in
+        each); default: the problem's ``uncertainty`` section, if it has one.
 
     Returns
     -------
@@ -318,12 +474,25 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
                              "(e.g. objective: {maximize: product_mass, product: P})")
     limit = time_limit if time_limit is not None else problem.settings.time_limit
     deadline = None if limit is None else time.monotonic() + limit
+    scenarios = merge_identical(scenarios)
     with interrupt_guard():
-        return _optimize(problem, workers, on_progress, deadline, t_start)
+        if scenarios is None:
+            return _optimize(problem, workers, on_progress, deadline, t_start)
+        # one pump profile over the scenarios, started (among others) from the
+        # nominal optimum, which is also reported beside it
+        say = on_progress or (lambda *a: None)
+        say("the nominal problem", None, None)
+        nominal = _optimize(problem, workers, on_progress, deadline, t_start)
+        say(f"one feed profile for {scenarios.size} scenarios", None, None)
+        seeds = [] if nominal.schedule is None else [("the nominal optimum", nominal.schedule, nominal.end_time)]
+        robust = _optimize(problem, workers, on_progress, deadline, t_start, scenarios, seeds)
+        return replace(robust, nominal=nominal)
 
 
-def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResult:
-    job = _Job(problem, on_progress, deadline)
+def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, seeds=()) -> OptimizeResult:
+    """The job; ``seeds`` are (label, schedule, end time) of known good feeds tried as
+    starts before the candidate feeds (e.g. the nominal optimum, for a scenario solve)."""
+    job = _Job(problem, on_progress, deadline, merge_identical(scenarios))
     s = job.settings
     record = {"problem_file": problem.source, "problem_digest": problem_digest(problem),
               "settings": dict(vars(s), elements=s.elements), **stamp()}
@@ -341,7 +510,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
         return result(st.INFEASIBLE, f"before solving: {blocked}")
 
     job.progress("simulating initial feeds", 0, s.starts)
-    guesses = make_guesses(problem, job.full, s.starts)
+    guesses = _seed_guesses(job, seeds) + make_guesses(problem, job.full, s.starts)
     if not guesses:
         return result(st.FAILED, "the integrator could not follow any of the initial feeds")
     diagnosis = _always_broken(job, guesses)
@@ -391,6 +560,10 @@ def _optimize(problem, workers, on_progress, deadline, t_start) -> OptimizeResul
     # 4: a pump grid fine enough
     if best is not None and s.refine_grid and not _stop_now(job):
         best = _refine_grid(job, best, scaling, record)
+
+    # 5: pumps as they are: off, or at least their minimum setting
+    if best is not None and any(f.min_on > f.min_rate for f in problem.feeds) and not _stop_now(job):
+        best = _pump_minimum(job, best, scaling, record)
 
     chosen = best or first_unverified
     return _final(job, result, chosen, summaries, spread, record, diagnosis)
@@ -552,7 +725,7 @@ def _excess(job, ver) -> dict:
     out = {}
     margin = job.problem.vessel.margin
     for lim, rep in zip(job.full_limits, ver.limits):
-        if lim.kind == "pump":
+        if lim.kind in ("pump", "setting"):
             continue
         slack = rep.min_slack / lim.factor  # to the limit itself, internal units
         bound = lim.upper if rep.side == "max" else lim.lower
@@ -580,14 +753,14 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
             trial[name] = trial.get(name, 0.0) + 1.5 * amount
         job.progress(f"keeping clear of {', '.join(excess)} between collocation points (round {round_})",
                      None, None)
-        data = job.data(scaling, trial)
+        data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
                     deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             break
         st_.iterations += ans.start.iterations
-        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label)
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump)
     return ans
 
 
@@ -641,6 +814,58 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
     return best
 
 
+def _pump_minimum(job, best: _Answer, scaling, record) -> _Answer:
+    """A pump that is either off or runs at least ``min_on`` makes the problem
+    combinatorial. Solved honestly in two steps: the relaxed answer (any rate in the
+    range) fixes the on/off pattern (a step is on where the relaxed rate reaches half
+    the minimum), then the problem is solved again with each step held off or at
+    least at the minimum, and verified. Both objectives are recorded."""
+    s = job.settings
+    un = best.nlp.unpack(best.start.w, best.data)
+    u = un.u_steps.T  # (nu, M)
+    lo, hi = np.zeros_like(u), np.zeros_like(u)
+    switched = {}
+    for j, f in enumerate(job.problem.feeds):
+        if f.min_on > f.min_rate:
+            on = u[j] >= 0.5 * f.min_on
+            lo[j] = np.where(on, f.min_on, f.min_rate)
+            hi[j] = np.where(on, f.max_rate, f.min_rate)
+            switched[f.name] = {"steps_on": int(on.sum()), "steps_off": int((~on).sum()),
+                                "steps_raised_to_minimum": int((on & (u[j] < f.min_on)).sum())}
+        else:
+            lo[j], hi[j] = f.min_rate, f.max_rate
+    already = all(np.all((u[j] <= 1e-12 * f.max_rate) | (u[j] >= f.min_on * (1 - 1e-9)))
+                  for j, f in enumerate(job.problem.feeds) if f.min_on > f.min_rate)
+    if already:
+        job.relaxed_pumps = False
+        best = _verified(job, best, scaling)
+        record["pump_minimum"] = {"note": "the relaxed answer already keeps every pump off or at its minimum",
+                                  "feeds": switched}
+        return best
+    job.relaxed_pumps = False
+    job.progress("fixing the pumps' on/off pattern and solving again", None, None)
+    pump = (lo, hi)
+    data = job.data(scaling, best.backoff, pump)
+    lbx, ubx, _, _ = best.nlp.bounds(data)
+    w0 = np.clip(best.start.w, lbx, ubx)
+    st_ = solve(best.nlp, data, w0, best.label + ", pumps off or at their minimum", profile="near",
+                tolerance=s.tolerance, max_iter=s.max_iter, deadline=job.deadline, report=job.report)
+    relaxed = best.start.objective * job.f_obj
+    if st_.status == "converged" and st_.objective is not None:
+        ans = _verified(job, _Answer(st_, best.nlp, data, label=best.label, backoff=dict(best.backoff), pump=pump),
+                        scaling)
+        record["pump_minimum"] = {"relaxed_objective": relaxed, "objective": st_.objective * job.f_obj,
+                                  "feeds": switched, "note": "on/off pattern of the relaxed answer fixed, then "
+                                  "solved again with each step off or at least at the pump's minimum"}
+        return ans
+    record["pump_minimum"] = {"relaxed_objective": relaxed, "feeds": switched,
+                              "note": f"solving with the on/off pattern fixed ended {st_.status}"}
+    bad = replace(best.verification, verified=False,
+                  message=f"the answer runs a pump below its minimum setting (min_on), and solving again with "
+                          f"the on/off pattern fixed ended {st_.status}")
+    return _Answer(best.start, best.nlp, best.data, bad, best.backoff, best.label)
+
+
 # ---------------------------------------------------------------------- the result
 
 
@@ -650,6 +875,11 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     if ans is None:
         return result(st.FAILED, "no answer to verify", starts=summaries, spread=spread)
     ver, best, nlp, data = ans.verification, ans.start, ans.nlp, ans.data
+    if job.relaxed_pumps and ver.verified:  # stopped before the pumps' minimum settings were held
+        broken = [r.name for r in ver.limits if r.kind == "setting" and r.violated]
+        if broken:
+            ver = replace(ver, verified=False, message=f"{ver.message}; but '{broken[0]}' is broken: the search "
+                          "stopped before the pumps' minimum settings were held")
     un = nlp.unpack(best.w, data)
     record["grid"] = {"pump_steps": nlp.grid.pump_steps, "elements": nlp.grid.elements, "degree": nlp.grid.degree}
     margin = job.problem.vessel.margin
@@ -687,6 +917,11 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
     if best.ipopt_status != "Solve_Succeeded":
         kept += f"; IPOPT: {best.ipopt_status.replace('_', ' ').lower()}"
     kept += kept_margin
+    pm = record.get("pump_minimum", {})
+    if "objective" in pm:
+        kept += (f"; pumps off or at least their minimum setting: the relaxed answer's on/off pattern fixed and "
+                 f"solved again ({pm['relaxed_objective']:.6g} relaxed, {pm['objective']:.6g} {job.unit} as "
+                 "the pumps can run)")
     gap = record.get("grid_gap_relative")
     if gap is not None:
         kept += f"; pump grid {nlp.grid.pump_steps} steps (last refinement changed the objective by {gap:.2%})"
@@ -701,9 +936,22 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
         message = (f"{ver.message}; refine the grid "
                    "(solver.elements_per_step, degree)")
     points = _full_points(job, un)
+    objective_sim = None if ver.objective_sim is None else ver.objective_sim * job.f_obj
+    if job.scenarios is not None and ver.trajectory is not None:
+        sc = job.scenarios
+        sims = [c.objective_sim for c in job.scenario_checks]
+        nlps = nlp.scenario_objectives(best.w, data)
+        objective_sim = None if None in sims else combine(np.array(sims), sc, job.sense < 0) * job.f_obj
+        record["scenarios"] = {
+            "count": sc.size, "objective_over_scenarios": sc.combine, "k": sc.risk,
+            "labels": list(sc.labels),
+            "objective_nlp": [float(v) * job.f_obj for v in nlps],
+            "objective_resimulated": [None if v is None else float(v) * job.f_obj for v in sims],
+            "verified": [bool(c.verified) for c in job.scenario_checks],
+        }
     return result(
         status, message, objective_nlp=best.objective * job.f_obj,
-        objective_sim=None if ver.objective_sim is None else ver.objective_sim * job.f_obj,
+        objective_sim=objective_sim,
         end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
         outcome=outcome, points=points,
     )
@@ -797,7 +1045,7 @@ def _blocked_at_start(job) -> str:
     """A path limit that no pump setting can meet at t = 0, described; '' if none."""
     feeds = job.problem.feeds
     corners = list(itertools.product(*[(f.min_rate, f.max_rate) for f in feeds]))[:64]
-    path = [l for l in job.full_limits if not l.at_end and l.kind != "pump"]
+    path = [l for l in job.full_limits if not l.at_end and l.kind not in ("pump", "setting")]
     if not path:
         return ""
     g = limit_function(job.full, path)
@@ -833,7 +1081,7 @@ def _always_broken(job, guesses) -> str:
     broken = None
     for traj in trials:
         reports, _ = judge(job.full, job.full_limits, traj)
-        names = {r.name: r for r in reports if r.violated and r.kind != "pump"}
+        names = {r.name: r for r in reports if r.violated and r.kind not in ("pump", "setting")}
         if broken is None:
             broken = {n: [r] for n, r in names.items()}
         else:

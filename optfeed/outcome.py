@@ -117,7 +117,8 @@ def outcome_of(model: Model, traj: Trajectory, tf: float) -> Outcome:
         finals.append(Figure("product mass", float(xf[model.index(s.name)]) * V * (factor_to(unit) if unit else 1.0), unit))
     objective = internal = None
     if obj is not None:
-        internal = float(model.end_value(np.asarray(xf), tf, traj.u[-1]))
+        # with the run's own constants and initial state (a scenario's, not always the file's)
+        internal = float(model.end_value(np.asarray(xf), tf, traj.u[-1], p=traj.constants, x0=traj.x[0]))
         label, unit = objective_label(model)
         objective = Figure(label, internal * (factor_to(unit) if unit else 1.0), unit)
     return Outcome(tuple(finals), objective, internal)

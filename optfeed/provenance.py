@@ -12,11 +12,18 @@ from . import __version__
 from .expr import Expr
 
 
+# where a problem was read from, not what it is
+_NOT_DIGESTED = ("data", "source", "warnings", "covariance_file")
+
+
 def _plain(obj):
     if isinstance(obj, Expr):
         return obj.text
     if dataclasses.is_dataclass(obj):
-        return {f.name: _plain(getattr(obj, f.name)) for f in dataclasses.fields(obj) if f.name not in ("data", "source", "warnings")}
+        return {f.name: _plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)
+                if f.name not in _NOT_DIGESTED
+                # a problem without an uncertainty section keeps the digest it had before there was one
+                and not (f.name == "uncertainty" and getattr(obj, f.name) is None)}
     if isinstance(obj, dict):
         return {str(k): _plain(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):

@@ -35,6 +35,10 @@ def result_repr(r) -> str:
         parts.append(f"active={active!r}")
     if broken:
         parts.append(f"broken={broken!r}")
+    mc = getattr(r, "uncertainty", None)
+    if mc is not None and hasattr(mc, "any_limit"):  # a Monte Carlo result beside the nominal verdict
+        parts.append(f"monte_carlo='{mc.any_limit.broken} of {mc.judged} samples break a limit"
+                     + (f", {mc.failed} failed'" if mc.failed else "'"))
     if getattr(r, "starts", None):
         parts.append(f"starts={len(r.starts)}")
     parts.append(f"message={_short(r.message)!r}")

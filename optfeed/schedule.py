@@ -235,6 +235,7 @@ def round_schedule(schedule: Schedule, feeds, end_time: float | None = None, res
         top, low = feed.max_rate * f_out, feed.min_rate * f_out
         step = 10.0 ** math.floor(math.log10(top * resolution))
         exponent = round(math.log10(step))
+        own = getattr(feed, "step", 0.0) * f_out  # the pump's own setting step, where it has one
         carry = 0.0  # volume (display unit x h) not yet fed because of rounding
         rates = []
         for i, rate in enumerate(rows.rates):
@@ -247,8 +248,12 @@ def round_schedule(schedule: Schedule, feeds, end_time: float | None = None, res
                 carry = 0.0
             else:
                 target = shown + (carry / length if length else 0.0)
-                n = round(target / step)
-                text = str(Decimal(int(n)).scaleb(exponent))
+                if own:
+                    n = round(target / own)
+                    text = repr(float(Decimal(repr(own)) * int(n)))
+                else:
+                    n = round(target / step)
+                    text = str(Decimal(int(n)).scaleb(exponent))
                 value = float(text)
                 if value > top or value < low:  # never outside the pump's range
                     text = repr(min(max(value, low), top))

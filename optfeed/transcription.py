@@ -79,8 +79,8 @@ class NLPData:
     x0: np.ndarray  # (nx, S)
     end_time: float | None  # fixed end time, h (None if free)
     end_bounds: tuple  # (min, max) h
-    pump_min: np.ndarray  # (nu,) L/h
-    pump_max: np.ndarray  # (nu,) L/h
+    pump_min: np.ndarray  # (nu,) L/h, or (nu, M) step by step
+    pump_max: np.ndarray  # (nu,) L/h, or (nu, M)
     lower: dict  # limit name -> float or None
     upper: dict
     scale: dict  # limit name -> float
@@ -90,6 +90,7 @@ class NLPData:
     weights: np.ndarray  # (S,), sum 1
     smoothing: float = 0.0
     risk: float = 0.0  # k of mean - k*std
+    pump_scale: np.ndarray | None = None  # (nu,) magnitude of the pump variables (default: pump_max)
 
 
 @dataclass
@@ -143,7 +144,7 @@ class FeedNLP:
                  combine: str = "mean", smoothing: bool = False):
         if combine not in COMBINE:
             raise ValueError(f"combine must be one of {COMBINE}")
-        self.model, self.limits, self.grid = model, list(limits), grid
+        self.model, self.limits, self.grid = model, [l for l in limits if l.kind != "setting"], grid
         self.free_time, self.S, self.combine = free_time, int(scenarios), combine
         self.has_smoothing = smoothing
         self.sense = -1.0 if (model.problem.objective is None or model.problem.objective.sense == "maximize") else 1.0
@@ -164,7 +165,7 @@ class FeedNLP:
         us = P.add("u_scale", nu)
         js = P.add("j_scale")
         ws = P.add("weights", S)
-        path = [l for l in self.limits if not l.at_end and l.kind != "pump"]
+        path = [l for l in self.limits if not l.at_end and l.kind not in ("pump", "setting")]
         rows_lim = [l for l in path if l.state is None]
         self.bound_limits = [l for l in path if l.state is not None]
         ends = [l for l in self.limits if l.at_end]
@@ -256,7 +257,8 @@ class FeedNLP:
             mean = ca.dot(ws, Js)
             if self.combine == "mean_std":
                 var = ca.dot(ws, (Js - mean) ** 2)
-                J_comb = mean - risk * ca.sqrt(var + (1e-9 * js) ** 2)
+                # risk-averse in either sense: less k std when maximising, plus when minimising
+                J_comb = mean + self.sense * risk * ca.sqrt(var + (1e-9 * js) ** 2)
             else:
                 J_comb = mean
             obj = self.sense * J_comb / js
@@ -279,7 +281,7 @@ class FeedNLP:
         P.put(v, "constants", data.constants)
         P.put(v, "x0", data.x0)
         P.put(v, "x_scale", data.x_scale)
-        P.put(v, "u_scale", np.maximum(data.pump_max, 1e-12))
+        P.put(v, "u_scale", _pump_scale(data))
         P.put(v, "j_scale", data.j_scale)
         P.put(v, "weights", data.weights)
         P.put(v, "g_scale", [data.scale[l.name] for l in self.row_limits] or [1.0])
@@ -298,9 +300,9 @@ class FeedNLP:
         m, W = self.model, self.W
         lbx = np.full(self.n_w, -np.inf)
         ubx = np.full(self.n_w, np.inf)
-        us = np.maximum(data.pump_max, 1e-12)
-        W.put(lbx, "u", (data.pump_min / us)[:, None])
-        W.put(ubx, "u", (data.pump_max / us)[:, None])
+        us = _pump_scale(data)
+        W.put(lbx, "u", _per_step(data.pump_min) / us[:, None])
+        W.put(ubx, "u", _per_step(data.pump_max) / us[:, None])
         if self.free_time:
             W.put(lbx, "T", data.end_bounds[0] / data.t_scale)
             W.put(ubx, "T", data.end_bounds[1] / data.t_scale)
@@ -342,7 +344,7 @@ class FeedNLP:
         (n, nx) arrays, or one array used for every scenario)."""
         W, m = self.W, self.model
         w = W.zeros()
-        us = np.maximum(data.pump_max, 1e-12)
+        us = _pump_scale(data)
         W.put(w, "u", (np.asarray(steps_u, dtype=float) / us[None, :]).T)
         if self.free_time:
             W.put(w, "T", T / data.t_scale)
@@ -366,9 +368,9 @@ class FeedNLP:
         rates are clipped into their ranges and a free end time into its bounds
         exactly (IPOPT may relax bounds by ~1e-8): an answer never leaves them."""
         W, m, g_ = self.W, self.model, self.grid
-        us = np.maximum(data.pump_max, 1e-12)
+        us = _pump_scale(data)
         u = W.get(w, "u") * us[:, None]
-        u = np.clip(u, data.pump_min[:, None], data.pump_max[:, None])
+        u = np.clip(u, _per_step(data.pump_min), _per_step(data.pump_max))
         if self.free_time:
             T = float(np.clip(W.get(w, "T")[0, 0] * data.t_scale, *data.end_bounds))
         else:
@@ -491,13 +493,27 @@ class FeedNLP:
                     ubx[idx], data.upper[lim.name] / data.x_scale[lim.state])
                 lam = np.where(lam < 0, np.where(own_lo, lam, 0.0), np.where(own_hi, lam, 0.0))
                 add(lim.name, lam, data.x_scale[lim.state])
-        us = np.maximum(data.pump_max, 1e-12)
+        us = _pump_scale(data)
         idx_u = self.W.indices("u")
         for j, fd in enumerate(self.model.problem.feeds):
             add(f"pump {fd.name}", lam_x[idx_u[j]], us[j])
         if self.free_time:
             add("end time", lam_x[self.W.indices("T").ravel()], data.t_scale)
         return {n: (_gain(self.sense, a), _gain(self.sense, b)) for n, (a, b) in sums.items()}
+
+
+def _pump_scale(data: NLPData) -> np.ndarray:
+    """(nu,) magnitude of each pump's variables: its largest allowed rate."""
+    if data.pump_scale is not None:
+        return np.maximum(np.asarray(data.pump_scale, dtype=float), 1e-12)
+    top = np.asarray(data.pump_max, dtype=float)
+    return np.maximum(top.max(axis=1) if top.ndim == 2 else top, 1e-12)
+
+
+def _per_step(bound) -> np.ndarray:
+    """A pump bound as (nu, 1) for every step alike, or (nu, M) step by step."""
+    bound = np.asarray(bound, dtype=float)
+    return bound[:, None] if bound.ndim == 1 else bound
 
 
 def _gain(sense: float, dJ: float) -> float:

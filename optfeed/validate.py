@@ -76,6 +76,8 @@ def validate(problem, schedule=None, end_time: float | None = None, set: dict | 
     elif schedule is not None:
         schedule = load_schedule(schedule, model.feed_names, tf)
     what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
+    if problem.uncertainty is not None:
+        what += f", {len(problem.uncertainty.values)} uncertain value(s)"
     message = f"{problem.source or problem.name}: valid ({what})"
     if schedule is not None:
         message += f"; {schedule.source or 'schedule'}: valid"

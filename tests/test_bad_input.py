@@ -46,6 +46,7 @@ class Case:
     key : key path (or CSV column) the report must name, or None if there is none
     message : regex searched for in the text after ``file:line: key: ``
     xfail : reason, for a case the code does not yet report clearly
+    reported : the file the report must name instead (a file the case names, relative to the corpus)
     """
 
     file: str
@@ -53,6 +54,7 @@ class Case:
     key: str | None
     message: str
     xfail: str | None = None
+    reported: str | None = None
 
     @property
     def is_schedule(self) -> bool:
@@ -156,6 +158,38 @@ CASES = [
          r"^growth 1000 1/h on a rate of 0 keeps the pump off \(an exponential of zero stays zero\)"),
     Case("schedule_growth_overflow.csv", 5, "glucose",
          r"^rate 0\.05 L/h growing at 150 1/h passes any finite number before 10 h"),
+    # ---- the uncertainty section (covariance files in bad_input/covariance/)
+    Case("problem_uncertain_unknown_parameter.yaml", 27, "uncertainty.parameters.mu_mx",
+         r"^'mu_mx' is not a parameter of this problem; did you mean 'mu_max'"),
+    Case("problem_uncertain_negative_sd.yaml", 27, "uncertainty.parameters.mu_max.sd",
+         r"^standard deviation '-0\.04 1/h' is negative"),
+    Case("problem_uncertain_lognormal_zero.yaml", 28, "uncertainty.parameters.k_d",
+         r"^a lognormal distribution holds positive values only, but the value in the file is 0 1/h"),
+    Case("problem_uncertain_bounds.yaml", 27, "uncertainty.parameters.mu_max",
+         r"^min '0\.5 1/h' is above max '0\.3 1/h'"),
+    Case("problem_uncertain_unit.yaml", 27, "uncertainty.parameters.mu_max.sd",
+         r"^'0\.04 g/L' has dimension \[mass\] / \[length\] \*\* 3 .*, but the value is written in '1/h'"),
+    Case("problem_uncertain_distribution.yaml", 27, "uncertainty.parameters.mu_max.distribution",
+         r"^Input should be 'normal', 'lognormal' or 'uniform', got 'gauss'"),
+    Case("problem_uncertain_k.yaml", 28, "uncertainty.scenarios.k",
+         r"^k is used only with objective: mean_std"),
+    Case("problem_uncertain_path.yaml", 26, "uncertainty.covariance",
+         r"^'\.\./\.\./outside\.csv' leads outside .*; a covariance file named in problem_uncertain_path\.yaml "
+         r"must lie in its folder or below it"),
+    Case("problem_uncertain_cov_missing.yaml", 26, "uncertainty.covariance",
+         r"^covariance/no_such_file\.csv: file not found"),
+    Case("problem_uncertain_cov_not_pd.yaml", 26, "uncertainty.covariance",
+         r"^the covariance matrix in not_positive_definite\.csv is not positive definite \(smallest eigenvalue "
+         r"of its correlation matrix -0\.8\)"),
+    Case("problem_uncertain_cov_asymmetric.yaml", 4, "mu_max [1/h]",
+         r"^the entry for \(K_s, mu_max\) is 0\.0003 but the entry for \(mu_max, K_s\) is 0\.0001; a covariance "
+         r"matrix is symmetric", reported="covariance/asymmetric.csv"),
+    Case("problem_uncertain_cov_name.yaml", 2, "mu_mx [1/h]",
+         r"^'mu_mx' is not a parameter, initial value .* of the problem; did you mean 'mu_max'",
+         reported="covariance/unknown_name.csv"),
+    Case("problem_uncertain_cov_unit.yaml", 2, "mu_max [g/L]",
+         r"^unit 'g/L' has dimension \[mass\] / \[length\] \*\* 3 .*, but mu_max is written in '1/h'",
+         reported="covariance/wrong_unit.csv"),
 ]
 
 
@@ -288,8 +322,9 @@ def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path):
 
     (v_code, v_out, v_err), (c_code, c_out, c_err) = _run_all([validate, check], cwd=tmp_path)
 
-    _assert_clean_refusal("validate", v_code, v_out, v_err, path, case)
-    _assert_clean_refusal("check", c_code, c_out, c_err, path, case)
+    named = CORPUS / case.reported if case.reported else path
+    _assert_clean_refusal("validate", v_code, v_out, v_err, named, case)
+    _assert_clean_refusal("check", c_code, c_out, c_err, named, case)
     assert not results.exists() or not any(results.iterdir()), f"files written: {sorted(_files_under(results))}"
     assert _files_under(tmp_path) == before, f"new files: {sorted(_files_under(tmp_path) - before)}"
 

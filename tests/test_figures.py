@@ -179,3 +179,23 @@ def test_importing_the_command_line_does_not_import_matplotlib_or_pandas():
     modules = {line.split("|")[-1].strip().split(".")[0] for line in proc.stderr.splitlines() if "|" in line}
     assert "optfeed" in modules
     assert "matplotlib" not in modules and "pandas" not in modules
+
+
+def test_fan_draws_the_percentiles_the_limit_and_a_reference():
+    """The fan of a Monte Carlo result: the shaded band spans the result's 5th to 95th
+    percentiles, the bound is the problem file's (the 3 g/L substrate ceiling of
+    tests/uncertain/monod_small.yaml), and a second fan is drawn for comparison."""
+    from optfeed.montecarlo import monte_carlo
+
+    mc = monte_carlo(ROOT / "tests" / "uncertain" / "monod_small.yaml",
+                     ROOT / "tests" / "uncertain" / "monod_small_plan.csv", samples=8, workers=1)
+    d = F.fan_drawing(mc.bands, "fan", reference=mc.bands, reference_label="other plan")
+    ax = axes_titled(d.figure, "substrate ceiling")
+    band = next(b for b in mc.bands if b.name == "substrate ceiling")
+    poly = ax.collections[0].get_paths()[0].vertices
+    assert poly[:, 1].max() == pytest.approx(np.nanmax(band.p95)) and poly[:, 1].min() == pytest.approx(
+        np.nanmin(band.p5))
+    labels = ax.get_legend_handles_labels()[1]
+    assert "5-95 % of the other plan" in labels and "nominal run" in labels and "maximum 3 g/L" in labels
+    assert len(d.figure.axes) == len(mc.bands) == 2  # the pump is not drawn
+    F.close([d])

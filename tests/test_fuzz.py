@@ -41,13 +41,18 @@ OK_PROBLEM = ROOT / "tests" / "bad_input" / "ok_problem.yaml"
 # the shipped problems have no solver section: one variant spells out every setting
 SOLVER = ("solver:\n  pump_interval: 30 min\n  elements_per_step: 4\n  degree: 3\n  starts: 4\n  smoothing: 0\n"
           "  max_iter: 3000\n  tolerance: 1.0e-8\n  verify_tolerance: 2.0e-3\n")
-PAIRS = [  # (problem file name, its text, schedule)
-    ("fast_microbe.yaml", (CONFIGS / "fast_microbe.yaml").read_bytes(), CONFIGS / "fast_microbe_plan.csv"),
+PAIRS = [  # (problem file name, its text, schedule, files beside it, more arguments of check)
+    ("fast_microbe.yaml", (CONFIGS / "fast_microbe.yaml").read_bytes(), CONFIGS / "fast_microbe_plan.csv", (), ()),
     ("inhibited_product.yaml", (CONFIGS / "inhibited_product.yaml").read_bytes(),
-     CONFIGS / "inhibited_product_plan.yaml"),
-    ("animal_cell.yaml", (CONFIGS / "animal_cell.yaml").read_bytes(), CONFIGS / "animal_cell_plan.csv"),
-    ("ok_problem.yaml", OK_PROBLEM.read_bytes(), ROOT / "tests" / "bad_input" / "ok_schedule.csv"),
-    ("solver_problem.yaml", OK_PROBLEM.read_bytes() + SOLVER.encode(), ROOT / "tests" / "bad_input" / "ok_schedule.csv"),
+     CONFIGS / "inhibited_product_plan.yaml", (), ()),
+    ("animal_cell.yaml", (CONFIGS / "animal_cell.yaml").read_bytes(), CONFIGS / "animal_cell_plan.csv", (), ()),
+    ("ok_problem.yaml", OK_PROBLEM.read_bytes(), ROOT / "tests" / "bad_input" / "ok_schedule.csv", (), ()),
+    ("solver_problem.yaml", OK_PROBLEM.read_bytes() + SOLVER.encode(), ROOT / "tests" / "bad_input" / "ok_schedule.csv",
+     (), ()),
+    # the uncertainty section and its covariance file, judged over a small Monte Carlo sample
+    ("inhibited_product_uncertain.yaml", (CONFIGS / "inhibited_product_uncertain.yaml").read_bytes(),
+     CONFIGS / "inhibited_product_push_plan.yaml", (CONFIGS / "inhibited_product_covariance.csv",),
+     ("--uncertainty", "--samples", "3", "--workers", "1")),
 ]
 SWEEPS = [CONFIGS / "sweep_otr.yaml", CONFIGS / "sweep_check.yaml"]
 
@@ -140,9 +145,10 @@ def _judge(label, code, out, err):
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
 @given(data=st.data())
 def test_validate_and_check_on_mutated_files(data):
-    name, problem, schedule = data.draw(st.sampled_from(PAIRS), label="files")
-    which = data.draw(st.sampled_from(["problem", "schedule"]), label="mutated")
-    text = data.draw(mutated(problem if which == "problem" else schedule.read_bytes()), label="text")
+    name, problem, schedule, beside, more = data.draw(st.sampled_from(PAIRS), label="files")
+    which = data.draw(st.sampled_from(["problem", "schedule"] + ["beside"] * bool(beside)), label="mutated")
+    original = {"problem": problem, "schedule": schedule.read_bytes()}.get(which) or beside[0].read_bytes()
+    text = data.draw(mutated(original), label="text")
     with tempfile.TemporaryDirectory(prefix="optfeed-fuzz-") as tmp:
         work = Path(tmp)
         inputs = work / "inputs"
@@ -150,14 +156,16 @@ def test_validate_and_check_on_mutated_files(data):
         p, s = inputs / name, inputs / schedule.name
         p.write_bytes(problem)
         shutil.copy(schedule, s)
-        (p if which == "problem" else s).write_bytes(text)
+        for f in beside:
+            shutil.copy(f, inputs / f.name)
+        {"problem": p, "schedule": s}.get(which, inputs / beside[0].name if beside else p).write_bytes(text)
         results = work / "results"
         before = _files(work)
         old = os.getcwd()
         os.chdir(work)  # anything written to the working folder would show up below
         try:
             v = _run(["validate", str(p), "--schedule", str(s)])
-            c = _run(["check", str(p), "--schedule", str(s), "--results", str(results), "--no-figures"])
+            c = _run(["check", str(p), "--schedule", str(s), "--results", str(results), "--no-figures", *more])
         finally:
             os.chdir(old)
         event(f"check exit {c[0]}")

@@ -154,3 +154,30 @@ def test_ctrl_c_stops_a_running_optimize_within_seconds_and_writes_nothing(tmp_p
     assert "interrupted" in err
     assert waited < 10  # generous for a loaded machine: it stops after the current iteration
     assert not out.exists() and not any(p.name.startswith(".run") for p in tmp_path.iterdir())
+
+
+def test_pumps_run_off_or_at_least_their_minimum_on_their_own_step(tmp_path):
+    # a pump that is off or runs at least 20 mL/h, settable in 0.5 mL/h steps: every
+    # written rate is 0 or at least 20 and a whole number of steps, and check passes
+    # the file as written; holding the pumps to what they can do costs objective, it
+    # never gains any (a restriction of the relaxed problem)
+    r = optfeed.optimize(DEMO, set={"feeds.concentrate.min_on": "20 mL/h", "feeds.concentrate.step": "0.5 mL/h"})
+    assert r.status == "optimal, verified", r.message
+    rates_ml = np.array(r.schedule.feeds["concentrate"].rates) * 1000.0
+    assert np.all((rates_ml == 0) | (rates_ml >= 20.0 - 1e-9))
+    np.testing.assert_allclose(rates_ml / 0.5, np.round(rates_ml / 0.5), atol=1e-9)
+    pm = r.record["pump_minimum"]
+    assert pm["objective"] <= pm["relaxed_objective"] * (1 + 1e-9)
+    out = write_optimize_run(r, tmp_path / "run", figures=False)
+    c = optfeed.check(DEMO, out / "schedule.csv", set={"feeds.concentrate.min_on": "20 mL/h"})
+    assert c.status == "within limits", c.message
+
+
+def test_check_names_a_rate_below_the_pumps_minimum_setting(write):
+    # 5 mL/h from 10 h on a pump that is off or runs at least 20 mL/h: broken at 10 h
+    # by 5 mL/h (how far the rate lies inside the band the pump cannot run in)
+    sched = write("mo.csv", "time [h],concentrate [mL/h]\n0,0\n10,5\n20,40\n")
+    r = optfeed.check(DEMO, sched, set={"feeds.concentrate.min_on": "20 mL/h"})
+    rep = next(x for x in r.limits if x.name == "pump concentrate minimum setting")
+    assert rep.first_violation == pytest.approx(10.0)
+    assert rep.worst_violation == pytest.approx(5.0) and rep.unit == "mL/h"

@@ -22,6 +22,7 @@ from ..errors import InputError, Issue
 from ..paths import SAFE_NAME, safe_folder_name
 from ..units import describe, parse_quantity, to_internal, written_unit
 from . import schema
+from .uncertain import check_uncertainty
 from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
 
@@ -262,11 +263,13 @@ class _Builder:
         horizon = self._horizon()
         objective = self._objective(end_env)
         settings = self._settings(horizon)
+        uncertainty = check_uncertainty(r, self.source, self.lines, self.fail, self.issues)
 
         if not self.issues:
             self._dry_build(parameters, species, rates, vessel, bounds, objective)
         if self.issues:
-            raise InputError(sorted(self.issues, key=lambda i: i.line or 0))  # in file order
+            # in file order (the problem file's first, then a file it names)
+            raise InputError(sorted(self.issues, key=lambda i: (i.file != self.source, i.line or 0)))
         return Problem(
             name=safe_folder_name(r.name or Path(self.source).stem),
             description=r.description.strip(),
@@ -281,6 +284,7 @@ class _Builder:
             horizon=horizon,
             objective=objective,
             settings=settings,
+            uncertainty=uncertainty,
             data=self.data,
         )
 
@@ -397,7 +401,20 @@ class _Builder:
                 if lo[0] > hi[0]:
                     self.fail(("feeds", name, "min_rate"),
                               f"minimum pump rate {fd.min_rate!r} is above the maximum {fd.max_rate!r}")
-                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description))
+                extra = {}
+                for key, word in (("min_on", "minimum setting when on"), ("step", "setting step")):
+                    value = getattr(fd, key)
+                    if value is None:
+                        continue
+                    got = self.quantity(value, "flow", ("feeds", name, key))
+                    if not got:
+                        continue
+                    if not 0 < got[0] <= hi[0]:
+                        self.fail(("feeds", name, key), f"the pump's {word} must be above zero and at most its "
+                                                        f"maximum {fd.max_rate!r}, got {value!r}")
+                        continue
+                    extra[key] = got[0]
+                out.append(Feed(name, comp, lo[0], hi[0], hi[1], fd.description, **extra))
         return out
 
     def _vessel(self, env):

@@ -11,7 +11,7 @@ from typing import Annotated, Literal, Optional, Union
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, StrictBool
 
-from .spec import Settings
+from .spec import Settings, Uncertainty
 
 
 def _no_yes_no(value):
@@ -42,6 +42,8 @@ class FeedIn(_Strict):
     composition: dict[str, Scalar] = Field(default_factory=dict)
     max_rate: Scalar
     min_rate: Scalar = 0.0
+    min_on: Optional[Scalar] = None  # the pump is off, or runs at least this fast
+    step: Optional[Scalar] = None  # the smallest change the pump can make
     description: Text = ""
 
 
@@ -94,6 +96,7 @@ class ObjectiveIn(_Strict):
 
 
 _DEFAULT = Settings()  # the defaults live in one place: spec.Settings
+_UNCERTAIN = Uncertainty()  # and spec.Uncertainty
 
 
 class SolverIn(_Strict):
@@ -112,6 +115,38 @@ class SolverIn(_Strict):
     time_limit: Optional[Scalar] = None
 
 
+class SpreadIn(_Strict):
+    """One uncertain value: its distribution around the value the file gives."""
+
+    distribution: Literal["normal", "lognormal", "uniform"]
+    sd: Optional[Scalar] = None
+    relative_sd: Optional[Scalar] = None
+    min: Optional[Scalar] = None
+    max: Optional[Scalar] = None
+
+
+class ScenariosIn(_Strict):
+    count: Count = _UNCERTAIN.scenarios
+    seed: Count = _UNCERTAIN.scenario_seed
+    method: Literal["latin_hypercube", "sobol"] = _UNCERTAIN.method
+    objective: Literal["mean", "worst", "mean_std"] = _UNCERTAIN.combine
+    k: Optional[Number] = None
+
+
+class MonteCarloIn(_Strict):
+    samples: Count = _UNCERTAIN.samples
+    seed: Count = _UNCERTAIN.sample_seed
+
+
+class UncertaintyIn(_Strict):
+    parameters: dict[str, SpreadIn] = Field(default_factory=dict)
+    initial: dict[str, SpreadIn] = Field(default_factory=dict)
+    feeds: dict[str, dict[str, SpreadIn]] = Field(default_factory=dict)
+    covariance: Optional[Text] = None
+    scenarios: ScenariosIn = Field(default_factory=ScenariosIn)
+    monte_carlo: MonteCarloIn = Field(default_factory=MonteCarloIn)
+
+
 class ProblemIn(_Strict):
     name: Text = ""
     description: Text = ""
@@ -127,3 +162,4 @@ class ProblemIn(_Strict):
     horizon: HorizonIn
     objective: Optional[ObjectiveIn] = None
     solver: SolverIn = Field(default_factory=SolverIn)
+    uncertainty: Optional[UncertaintyIn] = None

@@ -57,6 +57,12 @@ class Feed:
         Species name -> concentration in the feed, internal units.
     min_rate, max_rate : float
         Pump limits, L/h.
+    min_on : float
+        L/h; when above zero the pump is either off or runs at least this fast
+        (optimize fixes the relaxed answer's on/off pattern and solves again).
+    step : float
+        L/h; the smallest change of setting the pump can make (0: any), to which
+        the written schedule is rounded and then verified.
     unit : str
         The unit the user wrote for ``max_rate`` (for reports).
     """
@@ -67,6 +73,8 @@ class Feed:
     max_rate: float
     unit: str
     description: str = ""
+    min_on: float = 0.0
+    step: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -241,6 +249,94 @@ class Settings:
 
 
 @dataclass(frozen=True)
+class Uncertain:
+    """One uncertain value of the problem and its distribution.
+
+    Attributes
+    ----------
+    name : str
+        Its name in the ``uncertainty`` section and in a covariance file:
+        ``mu_max`` (a parameter), ``initial.X`` (an initial value; ``initial.V``
+        the initial volume) or ``feeds.concentrate.S`` (a feed composition).
+    target : str
+        'constant' (an entry of ``Model.p``) or 'initial' (an entry of ``Model.x0``).
+    ref : str
+        The constant's name in ``Model.constant_names`` (``mu_max``,
+        ``concentrate.S``) or the state's name (``X``, ``V``).
+    distribution : str
+        'normal', 'lognormal', 'uniform' or 'multivariate normal' (from the
+        covariance file).
+    nominal : float
+        The value the problem file gives, internal units: the mean of a normal or
+        lognormal distribution, a value within a uniform one.
+    sd : float
+        Standard deviation, internal units (for 'uniform': (max - min) / sqrt(12)).
+    lower, upper : float or None
+        Bounds of a uniform distribution, internal units.
+    unit : str
+        The unit the value is written in (for reports; '' for internal units).
+    key : str
+        Where it is written (``uncertainty.parameters.mu_max``).
+    """
+
+    name: str
+    target: str
+    ref: str
+    distribution: str
+    nominal: float
+    sd: float
+    lower: float | None
+    upper: float | None
+    unit: str
+    key: str
+
+
+@dataclass(frozen=True)
+class Uncertainty:
+    """The ``uncertainty`` section of a problem file, checked.
+
+    Attributes
+    ----------
+    values : tuple of Uncertain
+        Each uncertain value; those of the covariance file last, in its order.
+    covariance : tuple of tuple of float or None
+        The covariance matrix of the values with distribution 'multivariate
+        normal' (in their order), internal units; symmetric positive definite.
+    covariance_file : str
+        The file it was read from ('' if none).
+    scenarios : int
+        Scenarios the optimizer carries, the nominal one among them.
+    scenario_seed : int
+    method : str
+        'latin_hypercube' or 'sobol': how the scenarios' points are spread.
+    combine : str
+        The objective over the scenarios: 'mean', 'worst' or 'mean_std' (the mean
+        less ``k`` standard deviations for a maximised objective, plus for a
+        minimised one).
+    k : float
+        For 'mean_std'.
+    samples : int
+        Monte Carlo samples that verify a schedule (independent random draws).
+    sample_seed : int
+    """
+
+    values: tuple = ()
+    covariance: tuple | None = None
+    covariance_file: str = ""
+    scenarios: int = 8
+    scenario_seed: int = 1
+    method: str = "latin_hypercube"
+    combine: str = "mean"
+    k: float = 1.0
+    samples: int = 200
+    sample_seed: int = 1
+
+    @property
+    def names(self) -> list[str]:
+        return [v.name for v in self.values]
+
+
+@dataclass(frozen=True)
 class Problem:
     """A checked fed-batch problem. Build it with :func:`optfeed.load_problem`."""
 
@@ -257,6 +353,7 @@ class Problem:
     horizon: Horizon
     objective: Objective | None
     settings: Settings = field(default_factory=Settings)
+    uncertainty: Uncertainty | None = None  # None: no uncertainty section
     data: dict = field(repr=False, default_factory=dict)
     warnings: tuple = field(repr=False, default=())  # of optfeed.errors.Issue: units that look wrong
 
@@ -278,6 +375,9 @@ class Problem:
         goal = "no objective" if o is None else f"{o.sense} {o.quantity}" + (f" of {o.product}" if o.product else "")
         parts = [f"species {', '.join(self.species_names)}", f"feeds {', '.join(self.feed_names)}",
                  f"{len(self.bounds)} extra limit(s)", run, goal]
+        if self.uncertainty is not None:
+            u = self.uncertainty
+            parts.append(f"{len(u.values)} uncertain value(s), {u.scenarios} scenario(s)")
         if self.warnings:
             parts.append(f"{len(self.warnings)} unit warning(s)")
         return f"Problem({self.name!r} from {self.source!r}: {'; '.join(parts)})"

@@ -430,6 +430,74 @@ def _num(v) -> str:
     return "0" if v == 0 else f"{v:.4g}"
 
 
+# ------------------------------------------------------------------ over uncertain values
+
+FAN = "#4f7ea8"  # the P5-P95 band of the samples (a lighter shade of INK's family)
+FAN_REFERENCE = "#d9822b"  # a second fan drawn for comparison (outline only)
+
+
+def fan_drawing(bands, title: str = "", name: str = "figure-fan", reference=None,
+                label: str = "samples", reference_label: str = "reference") -> Drawing:
+    """Each limited quantity over a Monte Carlo sample: the band between the 5th and
+    95th percentiles of the samples at each time, their median, the nominal run, and
+    the limit.
+
+    Parameters
+    ----------
+    bands : sequence of optfeed.montecarlo.Band
+        One panel each, in order.
+    title : str
+        Put above the figure.
+    name : str
+        The drawing's file stem.
+    reference : sequence of Band, optional
+        Another sample's bands with the same names (another schedule, say), drawn
+        as an outlined band for comparison.
+    label, reference_label : str
+        What the two fans are, for the legends.
+    """
+    bands = list(bands)
+    ref = {b.name: b for b in reference or ()}
+    with _rc():
+        n = max(1, len(bands))
+        ncol = 2 if n > 1 else 1
+        nrow = math.ceil(n / ncol)
+        fig, axes = _figure(nrow, ncol)
+        for ax, b in zip(axes, bands):
+            ax.fill_between(b.t, b.p5, b.p95, color=FAN, alpha=0.28, lw=0, zorder=1,
+                            label=f"5-95 % of the {label}")
+            ax.plot(b.t, b.p50, color=FAN, lw=1.0, ls=(0, (4, 2)), zorder=2, label=f"median of the {label}")
+            broken = () if b.broken is None else b.broken
+            for k, y in enumerate(broken):
+                ax.plot(b.t, y, color=LIMIT, lw=0.6, alpha=0.45, zorder=2,
+                        label=f"{label} that break it" if k == 0 else None)
+            if b.name in ref:
+                r = ref[b.name]
+                for k, y in enumerate((r.p5, r.p95)):
+                    ax.plot(r.t, y, color=FAN_REFERENCE, lw=1.0, zorder=2,
+                            label=f"5-95 % of the {reference_label}" if k == 0 else None)
+            if np.any(np.isfinite(b.nominal)):
+                ax.plot(b.t, b.nominal, color=INK, lw=1.5, zorder=3, label="nominal run")
+            for bound, word in ((b.upper, "maximum"), (b.lower, "minimum")):
+                if bound is None:
+                    continue
+                text = f"{word} {_num(bound)} {b.unit}".strip()
+                if b.at_end:
+                    ax.plot([b.t[-1]], [bound], marker="_", ms=18, mew=2, color=LIMIT, zorder=4,
+                            label=f"end {text}")
+                else:
+                    ax.axhline(bound, color=LIMIT, ls="--", lw=1.1, zorder=2, label=text)
+            what = _LIMIT_TITLES.get(b.kind, b.name + (" (bound at the end)" if b.at_end else ""))
+            ax.set_title(what)
+            ax.set_ylabel(b.unit or "-")
+            ax.legend(loc="best")
+        t = bands[0].t if bands else np.array([0.0, 1.0])
+        _finish(fig, axes, n, ncol, title, t)
+    return Drawing(name, f"Each limited quantity over the {label}: shaded, where 90 % of the {label} lie at each "
+                   "time (5th to 95th percentile); dashed, their median; solid, the nominal run; red dashed, the "
+                   f"limit; thin red lines, {label} that break it (the first twenty).", fig)
+
+
 # ------------------------------------------------------------------ sweeps
 
 

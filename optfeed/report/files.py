@@ -117,7 +117,61 @@ def outcome_dict(outcome) -> dict:
     return d
 
 
+def uncertainty_summary(mc, problem) -> dict:
+    """The Monte Carlo part of summary.json (a :class:`~optfeed.montecarlo.MonteCarloResult`)."""
+    from ..units import factor_to
+
+    def risk(r):
+        return {"name": r.name, "kind": r.kind, "unit": unit_words(r.unit) if r.kind != "any" else "",
+                "broken": r.broken, "judged": r.judged, "probability": r.probability,
+                "interval_95": None if r.low is None else [r.low, r.high], "nominal_broken": r.nominal_broken,
+                "smallest_margin_p5": r.margin_p5, "smallest_margin_p50": r.margin_p50}
+
+    values = []
+    for v, text in zip(problem.uncertainty.values, mc.distributions):
+        f = factor_to(v.unit) if v.unit else 1.0
+        values.append({"name": v.name, "distribution": v.distribution, "described": text,
+                       "nominal": v.nominal * f, "sd": v.sd * f,
+                       "min": None if v.lower is None else v.lower * f,
+                       "max": None if v.upper is None else v.upper * f,
+                       "unit": v.unit or "internal units", "key": v.key})
+    u = problem.uncertainty
+    return {
+        "note": "Monte Carlo over the uncertain values; the status above is the nominal run's",
+        "samples": mc.samples, "seed": mc.seed, "method": "independent random draws",
+        "judged": mc.judged, "simulation_failed": mc.failed, "simulation_failed_interval_95": list(mc.failed_interval),
+        "not_run_time_limit": mc.not_run,
+        "limits": [risk(r) for r in mc.limits], "any_limit": risk(mc.any_limit),
+        "objective": None if mc.objective is None else {**mc.objective, "label": mc.objective_label,
+                                                        "unit": mc.objective_unit},
+        "values": values, "covariance_file": u.covariance_file or None,
+        "seconds": mc.seconds, "workers": mc.workers, "samples_per_second": mc.samples_per_second,
+        "per_sample": "montecarlo.csv",
+    }
+
+
+def montecarlo_rows(mc):
+    """Header and rows of montecarlo.csv: each sample's values, status, objective and
+    each limit's smallest margin (units in the header)."""
+    header = ["sample"] + [f"{n} [{u or 'internal units'}]" for n, u in zip(mc.names, mc.units)] + ["status"]
+    if mc.objective_label:
+        header.append(f"objective [{mc.objective_unit or 'internal units'}]")
+    header += [f"smallest margin: {r.name} [{unit_words(r.unit)}]" for r in mc.limits]
+    header += ["limits broken", "message"]
+    rows = []
+    for r in mc.runs:
+        row = [r.index + 1, *r.values, r.status]
+        if mc.objective_label:
+            row.append("" if r.objective is None else r.objective)
+        row += list(r.margins) if r.margins is not None else [""] * len(mc.limits)
+        row += ["; ".join(r.broken), r.message]
+        rows.append(row)
+    return header, rows
+
+
 def check_summary(result) -> dict:
+    extra = {} if result.uncertainty is None else {"uncertainty": uncertainty_summary(result.uncertainty,
+                                                                                      result.problem)}
     return {
         "job": "check",
         "status": result.status,
@@ -127,6 +181,7 @@ def check_summary(result) -> dict:
         "end_time_h": result.end_time,
         "limits": [limit_dict(r) for r in result.limits],
         **outcome_dict(result.outcome),
+        **extra,
         "warnings": [str(w) for w in result.problem.warnings],
         "record": result.record,
         "caution": CAUTION,
@@ -139,11 +194,12 @@ def write_check_run(result, target, figures: bool = True) -> Path:
     Files: summary.json, report.txt, limits.csv, schedule.csv (the schedule
     checked), report.html, trajectory.csv and the
     figures figure-limits.png, figure-culture.png, figure-feeds.png (if the
-    simulation reached the end and ``figures``).
+    simulation reached the end and ``figures``); with a Monte Carlo result also
+    montecarlo.csv (one row per sample) and figure-fan.png.
     """
     from ..model import build_model
     from ..schedule import schedule_csv_text
-    from .figures import run_drawings
+    from .figures import fan_drawing, run_drawings
     from .html import check_page, write_report
 
     with RunFolder(target) as tmp:
@@ -159,11 +215,18 @@ def write_check_run(result, target, figures: bool = True) -> Path:
             model = build_model(result.problem)
             header, rows = trajectory_table(model, result.trajectory, unique=True)
             write_csv(tmp / "trajectory.csv", header, rows)
+        mc = result.uncertainty
+        if mc is not None:
+            write_csv(tmp / "montecarlo.csv", *montecarlo_rows(mc))
         # the shareable report and its figures (optfeed/report/html.py, figures.py)
         draw = None
+        title = f"{result.problem.name}: check - {result.status}"
         if figures and result.trajectory is not None:
-            draw = lambda: run_drawings(model, result.trajectory,  # noqa: E731
-                                        title=f"{result.problem.name}: check - {result.status}")
+            draw = lambda: run_drawings(model, result.trajectory, title=title) + (  # noqa: E731
+                [fan_drawing(mc.bands, f"{result.problem.name}: check over {mc.samples} samples")]
+                if mc is not None and mc.bands else [])
+        elif figures and mc is not None and mc.bands:
+            draw = lambda: [fan_drawing(mc.bands, f"{result.problem.name}: check over {mc.samples} samples")]  # noqa: E731
         write_report(tmp, lambda d, s, note: check_page(result, d, s, note), draw,
                      "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)

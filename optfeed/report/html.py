@@ -255,6 +255,68 @@ def _plain(v) -> str:
     return str(v)
 
 
+def uncertainty_section(mc, uncertain=(), title: str = "Over the uncertain values (Monte Carlo)",
+                        what: str = "the schedule") -> Section:
+    """How often each limit is broken over a Monte Carlo sample (an
+    :class:`~optfeed.montecarlo.MonteCarloResult`), with 95 % Wilson intervals; the
+    objective's spread; the uncertain values (``uncertain``: the problem's
+    ``uncertainty.values``) and their distributions. The page's status stays the
+    nominal run's; this section says so."""
+    from ..units import factor_to
+    from .text import percent
+
+    def interval(r):
+        return "-" if r.low is None else f"{percent(r.low)} \u2013 {percent(r.high)}"
+
+    def nominal(r):
+        return "-" if r.nominal_broken is None else ("broken" if r.nominal_broken else "within")
+
+    rows, broken = [], []
+    shown = [r for r in mc.limits if r.kind != "pump"] + [mc.any_limit]
+    for r in shown:
+        margin = "-" if r.margin_p5 is None else (f"{fmt(r.margin_p5)} / {fmt(r.margin_p50)} {r.unit}").strip()
+        rows.append([r.name, f"{r.broken} of {r.judged}", percent(r.probability), interval(r), nominal(r), margin])
+        broken.append(bool(r.broken))
+    lo, hi = mc.failed_interval
+    tried = mc.judged + mc.failed
+    rows.append(["simulation failed", f"{mc.failed} of {tried}", percent(mc.failed / tried if tried else None),
+                 f"{percent(lo)} \u2013 {percent(hi)}", "failed" if mc.nominal_status == "simulation failed" else "-",
+                 "-"])
+    broken.append(bool(mc.failed))
+    body = [f"<p>{esc(what[:1].upper() + what[1:])} was simulated for {mc.samples} independent random samples of the "
+            f"uncertain values (seed {mc.seed}) and each run judged as the nominal one is. The status at the top "
+            "is the nominal run's; here is how often each limit is broken over the samples.</p>"]
+    if mc.not_run:
+        body.append(f"<p><b>{mc.not_run} of the {mc.samples} samples were not simulated: the time limit came first."
+                    "</b> They are left out of every fraction below.</p>")
+    body.append(table(["limit", "broken in", "probability", "95 % interval", "nominal run",
+                       "smallest margin: 5th percentile / median"], rows,
+                      row_class=lambda k: "broken" if broken[k] else ""))
+    body.append("<p class=note>Probability: the fraction of the samples simulated to the end that break the limit; "
+                "95 % interval: the Wilson score interval of that fraction (Wilson, 1927). The pumps follow the "
+                "schedule in every sample and are not listed.</p>")
+    if mc.objective is not None:
+        o, unit = mc.objective, mc.objective_unit
+        body.append(table(["", "mean", "5th percentile", "median", "95th percentile", "nominal run"],
+                          [[f"{mc.objective_label} ({unit})" if unit else mc.objective_label, o["mean"], o["p5"],
+                            o["p50"], o["p95"], o["nominal"]]], caption="The objective over the samples."))
+    if uncertain:
+        vrows = []
+        for v, text in zip(uncertain, mc.distributions):
+            f = factor_to(v.unit) if v.unit else 1.0
+            vrows.append([v.name, f"{fmt(v.nominal * f)} {v.unit}".strip(), text, v.key])
+        body.append(table(["uncertain value", "in the problem file", "distribution", "where"], vrows,
+                          caption="The uncertain values (a normal or lognormal value has the file's value as its "
+                                  "mean)."))
+    body.append(f"<p class=note>{mc.samples} samples in {esc(fmt(mc.seconds, 3))} s on {mc.workers} process(es) "
+                f"({esc(fmt(mc.samples_per_second, 3))} samples/s); every sample in montecarlo.csv.</p>")
+    failed = [r for r in mc.runs if r.status == "simulation failed"][:5]
+    if failed:
+        body.append("<ul class=cases>" + "".join(f"<li>sample {r.index + 1}: {esc(r.message)}</li>" for r in failed)
+                    + "</ul>")
+    return Section("uncertainty", title, "".join(body))
+
+
 def outcome_section(outcome, title: str = "At the end of the run") -> Section:
     if outcome is None:
         return Section("outcome", title, "<p>No values: there is no simulated run to its end.</p>")
@@ -275,6 +337,8 @@ def check_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
                                 f'<p class="figure-big">{esc(fmt(o.value, 6))} {esc(o.unit)}</p>'
                                 f"<p>{esc(o.label)}, over a run of {esc(fmt(result.end_time))} h.</p>"))
     sections.append(limits_section(result.limits))
+    if result.uncertainty is not None:
+        sections.append(uncertainty_section(result.uncertainty, result.problem.uncertainty.values))
     sections.append(figures_section(drawings, svgs, figure_note))
     sections.append(outcome_section(result.outcome))
     sections.append(schedule_section(result.schedule, result.problem, "The schedule checked"))

@@ -80,6 +80,62 @@ def warning_lines(problem) -> list[str]:
     return ["Warnings (the file is valid, but these units look wrong):"] + [f"  {w}" for w in problem.warnings] + [""]
 
 
+def percent(p) -> str:
+    """A probability for people: '18.7 %', '0 %', '-' for none."""
+    if p is None:
+        return "-"
+    if p == 0 or p == 1:
+        return f"{100 * p:.0f} %"
+    return f"{100 * p:.3g} %" if 100 * p < 0.1 else f"{100 * p:.1f} %"
+
+
+def risk_row(r) -> tuple:
+    """(limit, 'k of n', probability, 95 % interval, nominal run) of a LimitRisk."""
+    nominal = "-" if r.nominal_broken is None else ("broken" if r.nominal_broken else "within")
+    interval = "-" if r.low is None else f"{percent(r.low)} .. {percent(r.high)}"
+    return (r.name, f"{r.broken} of {r.judged}", percent(r.probability), interval, nominal)
+
+
+def uncertainty_lines(mc, problem) -> list[str]:
+    """The Monte Carlo block of a text report (a :class:`~optfeed.montecarlo.MonteCarloResult`)."""
+    late = f", {mc.not_run} not run (the time limit came first)" if mc.not_run else ""
+    lines = [f"Over the uncertain values (Monte Carlo: {mc.samples} independent samples, seed {mc.seed}; "
+             f"{mc.judged} simulated to the end, {mc.failed} failed{late}):",
+             "  The status above is the nominal run's. Here: the fraction of samples that break each limit,",
+             "  with its 95 % Wilson interval (the pumps follow the schedule in every sample)."]
+    rows = [("limit", "broken in", "probability", "95 % interval", "nominal run")]
+    rows += [risk_row(r) for r in mc.limits if r.kind != "pump"] + [risk_row(mc.any_limit)]
+    lo, hi = mc.failed_interval
+    tried = mc.judged + mc.failed
+    rows.append(("simulation failed", f"{mc.failed} of {tried}", percent(mc.failed / tried if tried else None),
+                 f"{percent(lo)} .. {percent(hi)}", "failed" if mc.nominal_status == "simulation failed" else "-"))
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    for k, row in enumerate(rows):
+        lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
+        if k == 0:
+            lines.append("  " + "  ".join("-" * w for w in widths))
+    margins = [r for r in mc.limits if r.margin_p5 is not None and r.kind != "pump"]
+    if margins:
+        lines.append("  Smallest margin over the run (5th percentile / median of the samples; negative: broken):")
+        for r in margins:
+            lines.append(f"    {r.name:<24} {fmt(tidy(r.margin_p5, r))} / "
+                         f"{fmt(tidy(r.margin_p50, r))} {unit_words(r.unit)}")
+    if mc.objective is not None:
+        o, unit = mc.objective, unit_words(mc.objective_unit)
+        lines.append(f"  Objective ({mc.objective_label}): mean {fmt(o['mean'], 6)}, P5 {fmt(o['p5'], 6)}, "
+                     f"median {fmt(o['p50'], 6)}, P95 {fmt(o['p95'], 6)} {unit} (nominal {fmt(o['nominal'], 6)})")
+    lines.append("  Uncertain values (around the value in the problem file):")
+    for v, text in zip(problem.uncertainty.values, mc.distributions):
+        lines.append(f"    {v.name:<24} {text}")
+    rate = mc.samples_per_second
+    lines.append(f"  {mc.samples} samples in {mc.seconds:.1f} s on {mc.workers} process(es) "
+                 f"({rate:.3g} samples/s).")
+    failed = [r for r in mc.runs if r.status == "simulation failed"][:3]
+    for r in failed:
+        lines.append(f"  sample {r.index + 1} failed: {r.message}")
+    return lines + [""]
+
+
 def check_text(result) -> str:
     """The text report of a :class:`~optfeed.check.CheckResult`."""
     p = result.problem
@@ -97,6 +153,8 @@ def check_text(result) -> str:
     else:
         lines += ["Limits:"] + limits_table(result.limits) + [""]
         lines += ["At the end of the run:"] + outcome_lines(result.outcome) + [""]
+    if result.uncertainty is not None:
+        lines += uncertainty_lines(result.uncertainty, p)
     lines.append(CAUTION)
     return "\n".join(lines) + "\n"
 

@@ -81,7 +81,7 @@ _OWN_FILES = (STORE_NAME, LOCK_NAME, "summary.csv", "summary.txt", ".summary.csv
 
 def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None = None,
               on_event=None, retry: bool = False, allow_symlink: bool = False,
-              no_worker_timeout: float = NO_WORKER_TIMEOUT) -> SweepResult:
+              no_worker_timeout: float = NO_WORKER_TIMEOUT, fresh_process_per_case: bool = False) -> SweepResult:
     """Run every case of ``sweep`` (a Sweep or a sweep file) not already finished in
     ``folder``'s store.
 
@@ -108,6 +108,10 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
     no_worker_timeout : float
         Seconds a Dask sweep waits without any worker, or without its scheduler,
         before it records the remaining cases as not run and ends.
+    fresh_process_per_case : bool
+        Run every case in a new process (default: case processes run case after
+        case and keep their built solvers, which a sweep of variants of one problem
+        reuses). For comparisons and for cases that must not share a process.
 
     Raises
     ------
@@ -121,7 +125,7 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
     folder = Path(folder)
     check_sweep_folder(folder, allow_symlink)
     executor = DaskExecutor(scheduler, no_worker_timeout) if scheduler else \
-        LocalExecutor(workers or default_workers())
+        LocalExecutor(workers or default_workers(), fresh_process=fresh_process_per_case)
     executor.connect()  # a cluster that cannot be reached is found before anything is written
     stop = {"flag": False, "why": ""}
     store = lock = None
@@ -140,7 +144,8 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         todo = [c for c in sweep.cases if c.key not in done]
         tasks = [Task(c.key, c.data, c.source, sweep.job, sweep.schedule_text,
                       None if sweep.schedule_path is None else Path(sweep.schedule_path).name,
-                      str((folder / "cases" / c.key).resolve()), sweep.time_limit) for c in todo]
+                      str((folder / "cases" / c.key).resolve()), sweep.time_limit, fresh_process_per_case)
+                 for c in todo]
         counts = {"total": len(sweep.cases), "done": len(sweep.cases) - len(todo), "failed": 0, "running": 0}
         counts["failed"] = sum(1 for r in store.rows([c.key for c in sweep.cases]) if r["status"] in BAD)
         event = on_event or (lambda *a: None)

@@ -1,9 +1,16 @@
-"""Running one case, and running many: a local process per case, or a Dask cluster.
+"""Running one case, and running many: local case processes, or a Dask cluster.
 
-Every case runs in a process of its own where it can (locally always), so a case
-that hangs past the time limit is killed without disturbing the others, and a case
-that crashes is recorded as an error. Each case writes the same run folder that
-``optfeed optimize`` or ``optfeed check`` writes, under ``cases/<key>/``.
+Cases run in case processes, apart from the sweep (locally always; on a Dask
+worker wherever the worker may have children), so a case that hangs past the time
+limit is killed without disturbing the others, and a case that crashes is recorded
+as an error. A case process is long-lived: it runs case after case and keeps
+optfeed.solve's built solvers between them, so a sweep of many variants of one
+problem builds its solvers once per process, not once per case. A case over its
+time limit, or killed, takes its process with it and the next case gets a fresh
+one; after a case that crashed, the process is replaced too. ``fresh_process``
+(``--fresh-process-per-case``) gives every case a new process instead, as a
+baseline. Each case writes the same run folder that ``optfeed optimize`` or
+``optfeed check`` writes, under ``cases/<key>/``.
 
 Landing a case is one step: the run folder is written under ``cases/.landing/``
 together with ``outcome.json`` (the row the store records), then renamed into
@@ -25,12 +32,13 @@ import os
 import re
 import shutil
 import signal
+import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import InputError
-from ..processes import ProcessEnded, cpu_count, run_killable
+from ..processes import ProcessEnded, WorkerPool, cpu_count
 
 NOT_RUN = "not run"  # no answer, for a reason outside the case: the same command runs it again
 LANDING = ".landing"  # cases/.landing/: run folders being written, before they land
@@ -56,6 +64,7 @@ class Task:
     schedule_name: str | None
     run_dir: str
     time_limit: float  # s
+    fresh_process: bool = False  # a new case process for this case (no solvers kept from earlier cases)
 
 
 def run_case(task: Task) -> dict:
@@ -188,10 +197,13 @@ def _outcome(status: str, message: str, seconds: float) -> dict:
 
 
 def run_case_limited(task: Task) -> dict:
-    """Run a case in a child process, killed after ``task.time_limit`` seconds.
+    """Run a case in a case process of this thread, killed after ``task.time_limit``
+    seconds (on a Dask worker). The process is kept for the thread's next case (and
+    its solvers with it) unless ``task.fresh_process``.
 
     Where this process may not have children (a daemonic Dask worker), run it here
-    instead; the limit then cannot be enforced and is only recorded."""
+    instead: the solvers then stay in this process between cases; the limit cannot
+    be enforced and is only recorded."""
     if mp.current_process().daemon:
         t0 = time.perf_counter()
         try:
@@ -202,10 +214,22 @@ def run_case_limited(task: Task) -> dict:
             out["message"] += f" (took {out['seconds']:.0f} s, over the {task.time_limit:.0f} s limit)"
         return out
     box = {}
-    LocalExecutor(1).run([task], lambda t: None, lambda t, outcome: box.update(outcome=outcome), _worker_leaving())
+    if task.fresh_process:
+        pool = WorkerPool(run_case, 1, reuse=False)
+    else:  # one case process per thread: it dies with the thread that started it
+        pool = getattr(_THREAD_POOL, "pool", None) or WorkerPool(run_case, 1, reuse=True)
+        _THREAD_POOL.pool = pool
+    try:
+        run_in_pool(pool, [task], lambda t: None, lambda t, outcome: box.update(outcome=outcome), _worker_leaving())
+    finally:
+        if task.fresh_process:
+            pool.close()
     if "outcome" not in box:  # the worker is closing: the case process was killed with it
         return _outcome(NOT_RUN, "the Dask worker closed while the case ran; run the same command again", 0.0)
     return box["outcome"]
+
+
+_THREAD_POOL = threading.local()  # a Dask worker thread's case process (run_case_limited)
 
 
 def _worker_leaving():
@@ -230,11 +254,39 @@ def died_outcome(payload: str, exitcode, seconds: float) -> dict:
     return _outcome("error", payload, seconds)
 
 
-class LocalExecutor:
-    """Runs up to ``workers`` cases at once, each in its own killable process."""
+def run_in_pool(pool: WorkerPool, tasks, on_start, on_done, should_stop) -> None:
+    """Run ``tasks`` in ``pool``'s case processes: each one's outcome to
+    ``on_done(task, outcome)``; a case over its time limit is stopped ('time limit');
+    a process that ended without a word gives 'not run' or 'error' (:func:`died_outcome`)."""
+    by_key = {t.key: t for t in tasks}
 
-    def __init__(self, workers: int):
+    def done(key, kind, payload, seconds):
+        task = by_key[key]
+        if kind == "ok":
+            on_done(task, payload)
+        elif kind == "killed":
+            on_done(task, _outcome("time limit", payload, seconds))
+        elif isinstance(payload, ProcessEnded):
+            on_done(task, died_outcome(str(payload), payload.exitcode, seconds))
+        else:
+            on_done(task, _outcome("error", payload, seconds))
+
+    def over_budget(key, seconds):
+        limit = by_key[key].time_limit
+        return f"stopped after the {limit:.0f} s time limit" if seconds > limit else None
+
+    pool.run([(t.key, t) for t in tasks], done, over_budget, on_start=lambda key: on_start(by_key[key]),
+             should_stop=should_stop)
+
+
+class LocalExecutor:
+    """Runs up to ``workers`` cases at once in long-lived case processes (each keeps
+    its built solvers between cases), or with ``fresh_process`` in a new process per
+    case."""
+
+    def __init__(self, workers: int, fresh_process: bool = False):
         self.workers = max(1, int(workers))
+        self.fresh_process = bool(fresh_process)
 
     def connect(self) -> None:
         """Nothing to reach (see :meth:`DaskExecutor.connect`)."""
@@ -243,25 +295,11 @@ class LocalExecutor:
         pass
 
     def run(self, tasks, on_start, on_done, should_stop) -> None:
-        by_key = {t.key: t for t in tasks}
-
-        def done(key, kind, payload, seconds):
-            task = by_key[key]
-            if kind == "ok":
-                on_done(task, payload)
-            elif kind == "killed":
-                on_done(task, _outcome("time limit", payload, seconds))
-            elif isinstance(payload, ProcessEnded):
-                on_done(task, died_outcome(str(payload), payload.exitcode, seconds))
-            else:
-                on_done(task, _outcome("error", payload, seconds))
-
-        def over_budget(key, seconds):
-            limit = by_key[key].time_limit
-            return f"stopped after the {limit:.0f} s time limit" if seconds > limit else None
-
-        run_killable([(t.key, t) for t in tasks], run_case, self.workers, done, over_budget,
-                     on_start=lambda key: on_start(by_key[key]), should_stop=should_stop)
+        pool = WorkerPool(run_case, self.workers, reuse=not self.fresh_process)
+        try:
+            run_in_pool(pool, tasks, on_start, on_done, should_stop)
+        finally:
+            pool.close()
 
 
 _ADDRESS_RE = re.compile(r"^(?:(?:tcp|tls|ws|wss|ucx)://)?(?:\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9_.\-]+):(\d{1,5})$")

@@ -1,0 +1,272 @@
+"""Monte Carlo verification of a schedule, and ``check --uncertainty``.
+
+Outside references, named beside each check: scipy's ``solve_ivp`` on a
+hand-written right-hand side for the same samples; the closed form of the volume
+under a constant feed (V(T) = V0 + F T); the closed-form blow-up time of
+dX/dt = k X^2 (t* = 1 / (k X0)); the Wilson score interval as scipy's
+``binomtest(...).proportion_ci(method='wilson')`` computes it and as published
+(Newcombe, Statistics in Medicine 17 (1998) 857-872, table of worked examples).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.integrate import solve_ivp
+from scipy.stats import binomtest
+
+import optfeed
+from optfeed import InputError
+from optfeed.limits import REL_TOL
+from optfeed.model import build_model
+from optfeed.montecarlo import monte_carlo, wilson_interval
+from optfeed.outcome import outcome_of
+from optfeed.schedule import piecewise_constant
+from optfeed.simulate import Simulator
+
+HERE = Path(__file__).resolve().parent
+SMALL = HERE / "uncertain" / "monod_small.yaml"
+PLAN = HERE / "uncertain" / "monod_small_plan.csv"
+REPO = HERE.parent
+
+
+# ---------------------------------------------------------------- the interval
+
+
+@pytest.mark.parametrize("k, n, low, high", [
+    # Newcombe (1998), worked examples, the score (Wilson) method, to 4 decimals (from memory)
+    (81, 263, 0.2553, 0.3662), (15, 148, 0.0624, 0.1605), (0, 20, 0.0, 0.1611), (1, 29, 0.0061, 0.1718),
+])
+def test_wilson_interval(k, n, low, high):
+    got = wilson_interval(k, n)
+    assert got == pytest.approx((low, high), abs=5e-5)
+    ref = binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")  # scipy
+    assert got == pytest.approx((ref.low, ref.high), abs=1e-12)
+
+
+def test_wilson_interval_edges():
+    assert wilson_interval(0, 0) == (0.0, 1.0)
+    lo, hi = wilson_interval(50, 50)
+    assert hi == 1.0 and lo == pytest.approx(binomtest(50, 50).proportion_ci(method="wilson").low)
+
+
+# ---------------------------------------------------------------- against scipy on the same samples
+
+
+def _reference_run(mu_max, V0, K_s=0.2, Y=0.5, X0=0.5, S0=2.0, F=0.06, SF=20.0, T=8.0):
+    """max S over the run and V at the end, from solve_ivp on the balances of
+    monod_small.yaml written out by hand."""
+    def rhs(t, y):
+        X, S, V = y
+        mu = mu_max * S / (K_s + S)
+        D = F / V
+        return [mu * X - D * X, -mu / Y * X + D * (SF - S), F]
+
+    sol = solve_ivp(rhs, (0, T), [X0, S0, V0], method="DOP853", rtol=1e-11, atol=1e-12, dense_output=True)
+    assert sol.success
+    t = np.linspace(0, T, 40001)
+    S = sol.sol(t)[1]
+    k = int(np.argmax(S))  # refine the peak between grid points
+    fine = np.linspace(t[max(k - 1, 0)], t[min(k + 1, len(t) - 1)], 2001)
+    return max(S.max(), sol.sol(fine)[1].max()), sol.y[2, -1]
+
+
+def test_probability_agrees_with_scipy_on_the_same_samples():
+    r = optfeed.check(SMALL, PLAN, uncertainty=True, samples=30, seed=11, workers=2)
+    mc = r.uncertainty
+    assert r.status == "within limits"  # the nominal run
+    assert f"monte_carlo='{r.uncertainty.any_limit.broken} of 30 samples break a limit'" in repr(r)
+    assert mc.samples == 30 and mc.judged == 30 and mc.failed == 0
+    names = list(mc.names)
+    assert names == ["mu_max", "initial.V"] and mc.units == ("1/h", "L")
+    ceiling = 3.0
+    tol = REL_TOL * ceiling + 1e-9  # the check's tolerance (optfeed.limits)
+    by_name = {x.name: x for x in mc.limits}
+    ours_s = np.array(["substrate ceiling" in run.broken for run in mc.runs])
+    ours_v = np.array(["working volume" in run.broken for run in mc.runs])
+    ref_s, ref_v, borderline = [], [], []
+    for run in mc.runs:
+        mu_max, V0 = run.values
+        s_max, v_end = _reference_run(mu_max, V0)
+        ref_s.append(s_max > ceiling + tol)
+        borderline.append(abs(s_max - ceiling) < 1e-6)
+        ref_v.append(v_end > 1.5 + REL_TOL * 1.5 + 1e-9)
+        # the volume in closed form: V0 + F T
+        assert v_end == pytest.approx(V0 + 0.06 * 8, rel=1e-10)
+    ref_s, ref_v = np.array(ref_s), np.array(ref_v)
+    assert not any(borderline)
+    np.testing.assert_array_equal(ours_s, ref_s)
+    np.testing.assert_array_equal(ours_v, ref_v)
+    assert 0 < ref_s.sum() < 30 and 0 < ref_v.sum() < 30  # the sample has both outcomes
+    assert by_name["substrate ceiling"].broken == ref_s.sum()
+    assert by_name["substrate ceiling"].probability == pytest.approx(ref_s.mean())
+    assert (by_name["working volume"].low, by_name["working volume"].high) == wilson_interval(int(ref_v.sum()), 30)
+    assert mc.any_limit.broken == (ref_s | ref_v).sum()
+    # objectives: product mass X*V at the end, spread and ordered
+    o = mc.objective
+    assert o["p5"] <= o["p50"] <= o["p95"] and o["nominal"] == pytest.approx(r.outcome.objective.value)
+    # the same sample simulated in this process gives the same verdicts and objectives
+    one = monte_carlo(SMALL, PLAN, samples=30, seed=11, workers=1)
+    assert [x.status for x in one.runs] == [x.status for x in mc.runs]
+    assert [x.objective for x in one.runs] == pytest.approx([x.objective for x in mc.runs], rel=1e-12)
+    assert one.workers == 1 and mc.workers == 2
+
+
+def test_zero_variance_gives_the_nominal_verdict():
+    """With every standard deviation zero each sample is the nominal run: each limit's
+    probability is 1 where the nominal check breaks it and 0 where it does not."""
+    over = {"uncertainty.parameters.mu_max.relative_sd": 0, "limits.0.max": "2.5 g/L"}
+    over_v = dict(over, **{"uncertainty.initial.V.sd": "0 mL"})
+    r = optfeed.check(SMALL, PLAN, set=over_v, uncertainty=True, samples=6, workers=1)
+    assert r.status == "limit broken"
+    nominal = {x.name: x.violated for x in r.limits}
+    assert nominal == {"pump glucose": False, "working volume": False, "substrate ceiling": True}
+    for risk in r.uncertainty.limits:
+        assert risk.probability == (1.0 if nominal[risk.name] else 0.0)
+        assert risk.nominal_broken == nominal[risk.name]
+    assert r.uncertainty.any_limit.probability == 1.0
+    for band in r.uncertainty.bands:
+        np.testing.assert_allclose(band.p5, band.nominal, rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(band.p95, band.nominal, rtol=1e-9, atol=1e-12)
+    objectives = [run.objective for run in r.uncertainty.runs]
+    assert objectives == pytest.approx([r.outcome.objective.value] * 6, rel=1e-12)
+
+
+# ---------------------------------------------------------------- runs that cannot be simulated
+
+
+BLOWUP = """\
+# dX/dt = k X^2 blows up at t = 1/(k X0): invented, for tests only
+name: blowup
+species:
+  X: {initial: 1 g/L}
+parameters:
+  k: 0.05
+reactions:
+  X: k * X * X
+feeds:
+  water: {max_rate: 1 L/h}
+vessel: {initial_volume: 1 L, working_volume: 2 L}
+horizon: {end_time: 10 h}
+uncertainty:
+  parameters:
+    k: {distribution: uniform, min: 0.02, max: 0.2}
+"""
+
+
+def test_failed_simulations_are_counted(tmp_path):
+    path = tmp_path / "blowup.yaml"
+    path.write_text(BLOWUP)
+    plan = piecewise_constant(["water"], [0], [[0.0]])
+    mc = monte_carlo(path, plan, samples=24, seed=4, workers=2)
+    k = np.array([run.values[0] for run in mc.runs])
+    blows_up = 1.0 / (k * 1.0) < 10.0  # the closed-form blow-up time against the run length
+    clear = np.abs(1.0 / k - 10.0) > 0.2  # leave out samples within 2 % of the edge
+    failed = np.array([run.status == "simulation failed" for run in mc.runs])
+    assert 0 < blows_up.sum() < 24
+    np.testing.assert_array_equal(failed[clear], blows_up[clear])
+    assert mc.failed == failed.sum() and mc.judged == 24 - mc.failed
+    assert mc.failed_interval == wilson_interval(mc.failed, 24)
+    assert all(run.message for run in mc.runs if run.status == "simulation failed")
+    assert all(run.margins is None and run.objective is None for run in mc.runs if run.status == "simulation failed")
+    assert {x.judged for x in mc.limits} == {mc.judged}
+
+
+def test_objective_of_a_run_uses_its_own_initial_state():
+    """The yield of X on fed S: (X V at the end - X0 V0) / S fed, with the run's own X0
+    (computed here by hand from the simulated states)."""
+    p = optfeed.load_problem(SMALL, set={"objective.maximize": "yield", "objective.substrate": "S"})
+    m = build_model(p)
+    plan = piecewise_constant(["glucose"], [0], [[0.06]])
+    x0 = m.x0.copy()
+    x0[m.index("X")] = 0.8
+    traj = Simulator(m).run(plan, 8.0, x0=x0)
+    xf = traj.final
+    by_hand = (xf[m.index("X")] * xf[m.index("V")] - 0.8 * 1.0) / xf[m.index("fed_S")]
+    assert outcome_of(m, traj, 8.0).objective_internal == pytest.approx(by_hand, rel=1e-12)
+
+
+def test_time_limit_leaves_samples_out():
+    """Samples not simulated before the time limit are counted as not run and left out of
+    every fraction; the nominal verdict says 'time limit' as check does without uncertainty."""
+    r = optfeed.check(SMALL, PLAN, uncertainty=True, samples=5, workers=2, time_limit=1e-9)
+    assert r.status == "time limit"
+    mc = r.uncertainty
+    assert (mc.not_run, mc.judged, mc.failed) == (5, 0, 0)
+    assert mc.any_limit.probability is None and all(x.probability is None for x in mc.limits)
+    assert {run.status for run in mc.runs} == {"not run"}
+    assert mc.nominal_status == "not run" and mc.bands == ()
+    from optfeed.report.text import check_text
+
+    assert "5 not run (the time limit came first)" in check_text(r)
+
+
+# ---------------------------------------------------------------- inputs of the job
+
+
+def test_bad_requests():
+    with pytest.raises(InputError, match="--uncertainty needs an 'uncertainty' section") as ei:
+        optfeed.check("configs/inhibited_product.yaml", "configs/inhibited_product_plan.yaml", uncertainty=True)
+    assert ei.value.issues[0].key == "uncertainty"
+    with pytest.raises(InputError, match="--samples is used only with --uncertainty"):
+        optfeed.check(SMALL, PLAN, samples=10)
+    for kwargs, option in (({"samples": 0}, "--samples"), ({"seed": -1}, "--seed"), ({"workers": 0}, "--workers"),
+                           ({"samples": 2.5}, "--samples")):
+        with pytest.raises(InputError, match="must be a whole number") as ei:
+            monte_carlo(SMALL, PLAN, **kwargs)
+        assert ei.value.issues[0].key == option
+
+
+# ---------------------------------------------------------------- the command
+
+
+def _env():
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO)] + ([env["PYTHONPATH"]] if env.get("PYTHONPATH") else []))
+    env["MPLBACKEND"] = "Agg"
+    return env
+
+
+def _run(args, cwd):
+    return subprocess.Popen([sys.executable, "-m", "optfeed.cli", *args], cwd=cwd, env=_env(), text=True,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+
+
+def test_check_uncertainty_command(tmp_path):
+    """The run folder gains the Monte Carlo part; the status and exit code stay the nominal run's."""
+    out = tmp_path / "run"
+    good = _run(["check", str(SMALL), "--schedule", str(PLAN), "--uncertainty", "--samples", "12", "--seed", "5",
+                 "--out", str(out)], tmp_path)
+    none = _run(["check", "configs/inhibited_product.yaml", "--schedule", "configs/inhibited_product_plan.yaml",
+                 "--uncertainty", "--results", str(tmp_path / "r2")], REPO)
+    lone = _run(["check", str(SMALL), "--schedule", str(PLAN), "--seed", "3", "--results", str(tmp_path / "r3")],
+                tmp_path)
+    stdout, stderr = good.communicate(timeout=300)
+    assert good.returncode == 0, stderr  # the nominal run is within limits
+    assert "Over the uncertain values (Monte Carlo: 12 independent samples, seed 5" in stdout
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == "within limits"
+    u = summary["uncertainty"]
+    assert (u["samples"], u["seed"], u["judged"]) == (12, 5, 12)
+    risk = {x["name"]: x for x in u["limits"]}
+    assert risk["substrate ceiling"]["probability"] == risk["substrate ceiling"]["broken"] / 12
+    lo, hi = risk["substrate ceiling"]["interval_95"]
+    assert lo <= risk["substrate ceiling"]["probability"] <= hi
+    rows = (out / "montecarlo.csv").read_text().splitlines()
+    assert rows[0].startswith("sample,mu_max [1/h],initial.V [L],status,objective [g]")
+    assert len(rows) == 13
+    html = (out / "report.html").read_text()
+    assert 'id="uncertainty"' in html and "Over the uncertain values" in html and 'id="figure-fan"' in html
+    assert (out / "figure-fan.png").stat().st_size > 1000
+    for proc, words in ((none, "--uncertainty needs an 'uncertainty' section"),
+                        (lone, "--seed is used only with --uncertainty")):
+        stdout, stderr = proc.communicate(timeout=120)
+        assert proc.returncode == 2 and words in stderr and "Traceback" not in stderr
+    assert not (tmp_path / "r2").exists() and not (tmp_path / "r3").exists()
