@@ -10,16 +10,20 @@ default, a problem built in code) the file is written out again from its data, w
 the same comment block. Either way the text is read back and checked before it is
 returned: ``optfeed optimize fitted.yaml`` runs as it is.
 
-covariance.csv (the form the ``uncertainty`` section of a problem file reads)::
+covariance.csv is exactly the form the ``uncertainty`` section of a problem file
+reads (:func:`optfeed.problem.uncertain.read_covariance`)::
 
-    # comment lines
-    parameter,mu_max [1/h],K_s [g/L],mean
-    mu_max,5.3e-06,1.2e-05,0.4975
-    K_s,1.2e-05,0.000216,0.1864
+    # comment lines, among them the estimates: mu_max = 0.4975 1/h, K_s = 0.1864 g/L
+    parameter,mu_max [1/h],K_s [g/L]
+    mu_max [1/h],5.3e-06,1.2e-05
+    K_s [g/L],1.2e-05,0.000216
 
-The first column names each parameter; the header names the same parameters with
-their units; the entry in row i, column j is in unit_i * unit_j; the last column,
-``mean``, is each estimate in its row's unit.
+The header names each parameter with its unit; each row names one of them again
+(with the same unit); the entry in row i, column j is in unit_i * unit_j. The means
+are not in the table: a problem's uncertainty section centres every value on the
+value its own file holds, and fitted.yaml holds the estimates. So
+``uncertainty: {covariance: covariance.csv}`` added to fitted.yaml draws around the
+fit.
 """
 
 from __future__ import annotations
@@ -225,7 +229,10 @@ def covariance_csv_text(result) -> str:
     cov = np.asarray(stats.covariance, dtype=float) * np.outer(f, f)
     lines = [f"# Covariance of the estimates of optfeed fit ({result.status}) for {result.problem.name}, from "
              f"{result.runs.source}.",
-             "# Row i, column j is in unit_i * unit_j; the last column, mean, is each estimate in its row's unit.",
+             "# Row i, column j is in unit_i * unit_j. The estimates (written into fitted.yaml): "
+             + ", ".join(f"{e.name} = {_num(e.value)} {e.unit or '(internal units)'}".rstrip() for e in est) + ".",
+             "# A problem's uncertainty section reads this file (covariance: covariance.csv) and draws around the "
+             "values its own file holds.",
              "# Error model: " + ("the stated measurement error (trusted)" if result.runs.trusted else
                                  f"scaled by the residuals (s^2 = {stats.scale:.4g})") + "."]
     for e in est:
@@ -234,10 +241,10 @@ def covariance_csv_text(result) -> str:
                          "units (g, L, h, mmol).")
     if not np.all(np.isfinite(cov)):
         lines.append("# Some entries are 'inf' or 'nan': the data cannot fix those parameters (see summary.json).")
-    header = ["parameter"] + [f"{e.name} [{e.unit or 'dimensionless'}]" for e in est] + ["mean"]
-    lines.append(",".join(header))
+    cells = [f"{e.name} [{e.unit or 'dimensionless'}]" for e in est]
+    lines.append(",".join(["parameter"] + cells))
     for i, e in enumerate(est):
-        lines.append(",".join([e.name] + [_num(v) for v in cov[i]] + [_num(e.value)]))
+        lines.append(",".join([cells[i]] + [_num(v) for v in cov[i]]))
     return "\n".join(lines) + "\n"
 
 

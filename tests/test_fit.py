@@ -1,0 +1,227 @@
+"""optfeed fit: estimates, intervals, identifiability, residuals and what it hands on.
+
+Outside references, named beside each check:
+
+* the truth the synthetic runs were made from (tests/fitcase.py: scipy's solve_ivp on
+  a hand-written right-hand side, numpy's seeded normal noise);
+* an independent fit of the same data with scipy (solve_ivp + least_squares, the
+  covariance (J^T J)^-1 from least_squares' own Jacobian);
+* the binomial distribution (scipy.stats.binom) for the coverage of 95 % intervals
+  over noise seeds;
+* numpy's sample covariance for the scenarios drawn from the fit's covariance file.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import fitcase
+import optfeed
+from optfeed.model import build_model
+from optfeed.uncertainty import scenario_set
+
+REPO = Path(__file__).resolve().parent.parent
+ESTIMATED = ("mu_max", "K_s", "Y_XS")
+
+
+@pytest.fixture(scope="module")
+def case1(tmp_path_factory):
+    """Seed 1 of the calibration case: (folder, problem, runs, measured, fit result)."""
+    folder = tmp_path_factory.mktemp("fitcase1")
+    problem, runs, measured = fitcase.write_case(folder, seed=1)
+    return folder, problem, runs, measured, optfeed.fit(problem, runs)
+
+
+def _values(result, unit_free=True):
+    return np.array([e.value for e in result.estimates])
+
+
+# ---------------------------------------------------------------- estimates and intervals
+
+
+def test_estimates_lie_within_their_95_percent_intervals(case1):
+    """Reference: the parameters the runs were simulated from (fitcase.TRUE)."""
+    *_, r = case1
+    assert r.status == "fitted", r.message
+    assert [e.name for e in r.estimates] == list(ESTIMATED)
+    assert [e.unit for e in r.estimates] == ["1/h", "g/L", "g/g"]
+    for e in r.estimates:
+        truth = fitcase.TRUE[e.name]
+        assert e.ci_low < truth < e.ci_high, (e, truth)
+        assert e.ci_low < e.value < e.ci_high
+    assert r.flags == ()
+    assert "consistent with the stated measurement error" in r.verdict
+
+
+def test_agrees_with_an_independent_scipy_fit(case1):
+    """Reference: the same weighted least squares solved by scipy (solve_ivp, LSODA
+    rtol 1e-10; least_squares trf; covariance (J^T J)^-1 of its Jacobian)."""
+    *_, measured, r = case1
+    x, se, chi2 = fitcase.scipy_fit(measured)
+    got = _values(r)
+    np.testing.assert_allclose(got, x, rtol=1e-4)
+    np.testing.assert_allclose([e.se for e in r.estimates], se, rtol=0.02)
+    assert r.chi2 == pytest.approx(chi2, rel=1e-4)
+    # the 95 % interval is estimate +- t(0.975, n - p) SE (Student's t from scipy.stats)
+    from scipy import stats
+
+    n = sum(len(run.times) * len(run.measured) for run in fitcase.DESIGN)
+    t = stats.t.ppf(0.975, n - len(ESTIMATED))
+    for e, s in zip(r.estimates, se):
+        assert e.ci_high - e.value == pytest.approx(t * s, rel=0.02)
+
+
+def _coverage(seeds, tmp_path):
+    """Per parameter, how many of the seeds' 95 % intervals hold the truth."""
+    hits = np.zeros(len(ESTIMATED), int)
+    for seed in seeds:
+        problem, runs, _ = fitcase.write_case(tmp_path / f"s{seed}", seed=seed, starts=1)
+        r = optfeed.fit(problem, runs)
+        assert r.status == "fitted", (seed, r.message)
+        hits += [e.ci_low <= fitcase.TRUE[e.name] <= e.ci_high for e in r.estimates]
+    return hits
+
+
+def _binomial_band(n, level=0.99):
+    """Counts of n independent 95 % intervals that hold the truth, two-sided ``level``
+    band (scipy.stats.binom)."""
+    from scipy import stats
+
+    return stats.binom.ppf((1 - level) / 2, n, 0.95), stats.binom.isf((1 - level) / 2, n, 0.95)
+
+
+def test_interval_coverage_30_seeds(tmp_path):
+    """Reference: the binomial band around 95 % (scipy.stats.binom), 30 noise seeds
+    (each fit from one start: the design's NLP is built once and reused)."""
+    seeds = range(101, 131)
+    lo, hi = _binomial_band(len(seeds))
+    hits = _coverage(seeds, tmp_path)
+    assert np.all((lo <= hits) & (hits <= hi)), (hits, lo, hi)
+
+
+@pytest.mark.slow
+def test_interval_coverage_200_seeds(tmp_path):
+    """Reference: the binomial band around 95 % (scipy.stats.binom), 200 noise seeds."""
+    seeds = range(201, 401)
+    lo, hi = _binomial_band(len(seeds))
+    hits = _coverage(seeds, tmp_path)
+    assert np.all((lo <= hits) & (hits <= hi)), (hits, lo, hi)
+
+
+# ---------------------------------------------------------------- identifiability
+
+
+def test_saturated_data_cannot_identify_mu_max_and_K_s(tmp_path):
+    """mu = mu_max S / (K_s + S) with S always far above K_s (60 g/L against 0.2 g/L)
+    is mu_max (1 - K_s/S) to first order: the data fix one combination of the two
+    (common practice: Monod constants need data near S ~ K_s)."""
+    design = (fitcase.Run("saturated", (0.2, 60.0, 0.0, 2.0), np.arange(0.5, 6.1, 0.5)),)
+    problem_text = fitcase.PROBLEM.replace("Y_XS: 0.45 g/g", "Y_XS: 0.5 g/g")  # the truth, not estimated
+    problem, runs, _ = fitcase.write_case(tmp_path, seed=3, estimate=("mu_max", "K_s"), design=design,
+                                          problem=problem_text)
+    r = optfeed.fit(problem, runs)
+    assert r.status == "fitted"  # said in words, not a solver failure
+    flags = " | ".join(r.flags)
+    assert "K_s is not identifiable from these data" in flags
+    assert "mu_max and K_s are correlated" in flags
+    assert "near-singular" in flags and "log K_s" in flags
+    assert "cannot tell K_s" in r.message, r.message
+    assert "IPOPT" not in r.message and "Solve_" not in r.message
+    assert abs(r.statistics.correlation[0, 1]) > 0.95
+
+
+# ---------------------------------------------------------------- residuals from the re-simulation
+
+
+def test_residuals_are_the_re_simulation_s_not_the_nlp_s(tmp_path, monkeypatch):
+    """With a coarse NLP grid (5 elements per run) the NLP's own answer is off; the
+    reported residuals must still be those of the runs simulated at the reported
+    estimates. Reference: fitcase.simulate (scipy's solve_ivp, LSODA rtol 1e-10)."""
+    from optfeed.fit import job
+
+    monkeypatch.setattr(job, "ELEMENTS_PER_RUN", 5)
+    problem, runs, measured = fitcase.write_case(tmp_path, seed=1, starts=1)
+    r = optfeed.fit(problem, runs)
+    assert r.status == "fitted", r.message
+    p = dict(fitcase.TRUE, **r.values)
+    chi2 = 0.0
+    for run, table_rows in zip(fitcase.DESIGN, _by_run(r.residuals)):
+        states = fitcase.simulate(run, p)
+        for q in run.measured:
+            row = table_rows[q]
+            np.testing.assert_allclose(row["fitted"], states[:, "XSP".index(q)], rtol=1e-6, atol=1e-8)
+            np.testing.assert_allclose(row["sigma"], fitcase.SIGMA[q])
+            chi2 += float(np.sum(((np.array(row["fitted"]) - row["measured"]) / fitcase.SIGMA[q]) ** 2))
+    assert r.chi2 == pytest.approx(chi2, rel=1e-6)  # the polish integrates with its sensitivities
+    # the coarse NLP's chi-square is not the one reported
+    assert abs(r.nlp_chi2 - r.chi2) > 1e-3 * r.chi2
+    # and its estimates are those of the fine fit (the model's, not its discretisation's)
+    x, _, _ = fitcase.scipy_fit(measured)
+    np.testing.assert_allclose(_values(r), x, rtol=1e-4)
+
+
+def _by_run(residuals):
+    out = {}
+    for row in residuals:
+        out.setdefault(row["run"], {})[row["quantity"]] = row
+    return list(out.values())
+
+
+# ---------------------------------------------------------------- covariance.csv -> uncertainty section
+
+
+def test_covariance_file_feeds_a_problem_s_uncertainty_section(case1, tmp_path):
+    """fit -> covariance.csv -> a problem naming it -> scenario draw. Reference: the
+    fit's own covariance against numpy's sample covariance of 4000 drawn scenarios
+    (relative error of a sample variance ~ sqrt(2/n) = 2.2 %)."""
+    from optfeed.fit.fitted import covariance_csv_text, fitted_yaml_text
+
+    *_, r = case1
+    text, _ = fitted_yaml_text(r)
+    (tmp_path / "fitted.yaml").write_text(text + "uncertainty:\n  covariance: covariance.csv\n")
+    (tmp_path / "covariance.csv").write_text(covariance_csv_text(r))
+    p = optfeed.load_problem(tmp_path / "fitted.yaml")
+    assert [v.name for v in p.uncertainty.values] == list(ESTIMATED)
+    model = build_model(p)
+    s = scenario_set(p, model, count=4000, seed=5, method="random", nominal=False)
+    factor = np.array([1.0, 1.0, 1.0])  # 1/h, g/L and g/g are optfeed's internal units
+    mean = np.array([e.value for e in r.estimates]) * factor
+    cov = np.asarray(r.statistics.covariance)
+    # the mean of the draws is the fitted value (written into fitted.yaml)
+    se = np.sqrt(np.diag(cov))
+    assert np.all(np.abs(s.values.mean(axis=1) - mean) < 4 * se / math.sqrt(4000))
+    drawn = np.cov(s.values)
+    np.testing.assert_allclose(np.diag(drawn), np.diag(cov), rtol=0.1)
+    corr = drawn / np.outer(np.sqrt(np.diag(drawn)), np.sqrt(np.diag(drawn)))
+    np.testing.assert_allclose(corr, r.statistics.correlation, atol=0.05)
+
+
+# ---------------------------------------------------------------- the command line and its files
+
+
+def test_command_line_writes_a_run_folder_that_optimize_reads(case1, tmp_path):
+    """fitted.yaml reads back with the estimates (to the digits written) and is the
+    problem that was fitted otherwise; summary.json holds what the result holds."""
+    folder, problem, runs, _, r = case1
+    out = tmp_path / "run"
+    done = subprocess.run([sys.executable, "-m", "optfeed.cli", "fit", str(problem), str(runs), "--out", str(out),
+                           "--quiet", "--no-figures"], capture_output=True, text=True, cwd=tmp_path, timeout=300)
+    assert done.returncode == 0, done.stderr
+    names = {p.name for p in out.iterdir()}
+    assert {"summary.json", "fitted.yaml", "covariance.csv", "residuals.csv", "report.txt", "report.html",
+            "trajectory-1.csv", "trajectory-2.csv"} <= names
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["status"] == "fitted"
+    back = optfeed.load_problem(out / "fitted.yaml")
+    for e in r.estimates:
+        assert back.parameters[e.name] == pytest.approx(e.value, abs=1e-3 * e.se)
+    assert back.parameters["m_S"] == pytest.approx(0.03)
+    v = optfeed.validate(out / "fitted.yaml")
+    assert v.exit_code == 0
