@@ -37,7 +37,7 @@ from ..solve import interrupt_guard, interrupted, solve
 from ..units import factor_to
 from .runs import Runs, load_runs
 from .simulate import Sampler, simulate_run
-from .statistics import Statistics, uncertainty, verdict
+from .statistics import Statistics, identifiability_words, uncertainty, verdict
 from .transcription import get_fit_nlp
 
 FITTED, NOT_CONVERGED, FAILED = st.FITTED, st.NOT_CONVERGED, st.FAILED
@@ -419,6 +419,8 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
             if settled else f"the polish on the re-simulated runs did not settle in {polish_iterations} steps; "
             "the values below are the last ones reached")
     message = f"{head}; {verdict(stats_, runs.trusted)}"
+    if identifiability_words(stats_):
+        message += f"; {identifiability_words(stats_)}"
     if flags:
         message += f"; {len(flags)} warning(s) about what the data can tell"
     return result(status, message, estimates=tuple(estimates), statistics=stats_, verdict=verdict(stats_, runs.trusted),

@@ -37,7 +37,9 @@ class Statistics:
     information matrix (inf if singular); weakest : its eigenvector of the smallest
     eigenvalue (in log-parameter space); scale : s^2 used (1 if the error model is
     trusted); dof : n - p; chi2 : sum of squared weighted residuals; p_value : of chi2;
-    flags : list of plain sentences.
+    flags : list of plain sentences; unidentified : names whose 95 % interval spans
+    more than their value; correlated : (name, name, correlation) of the pairs with
+    |correlation| above :data:`CORRELATION_FLAG`.
     """
 
     covariance: np.ndarray
@@ -53,6 +55,8 @@ class Statistics:
     p_value: float
     t_quantile: float
     flags: tuple
+    unidentified: tuple = ()
+    correlated: tuple = ()
 
 
 def uncertainty(names, theta, J, residuals, trusted: bool) -> Statistics:
@@ -88,13 +92,16 @@ def uncertainty(names, theta, J, residuals, trusted: bool) -> Statistics:
         corr = cov / np.outer(se, se)
     corr[~np.isfinite(corr)] = np.nan
     np.fill_diagonal(corr, 1.0)
+    unidentified, correlated = [], []
     for i, name in enumerate(names):
         if not np.isfinite(se[i]) or t * se[i] > abs(theta[i]):
+            unidentified.append(name)
             flags.append(f"{name} is not identifiable from these data: its 95 % interval spans more than its "
                          f"value (estimate {theta[i]:.4g}, half-width {t * se[i]:.4g}, internal units)")
     for i in range(p):
         for j in range(i + 1, p):
             if np.isfinite(corr[i, j]) and abs(corr[i, j]) > CORRELATION_FLAG:
+                correlated.append((names[i], names[j], float(corr[i, j])))
                 flags.append(f"{names[i]} and {names[j]} are correlated ({corr[i, j]:+.3f}): the data fix a "
                              "combination of the two better than either alone")
     if condition > CONDITION_FLAG:
@@ -102,7 +109,19 @@ def uncertainty(names, theta, J, residuals, trusted: bool) -> Statistics:
         flags.append(f"the information matrix is near-singular (condition number {condition:.3g}); the "
                      f"direction the data cannot see: {terms.lstrip('+')}")
     p_value = float(special.chdtrc(dof, chi2))  # upper tail of chi-square
-    return Statistics(cov, se, low, high, corr, condition, weakest, s2, dof, chi2, p_value, t, tuple(flags))
+    return Statistics(cov, se, low, high, corr, condition, weakest, s2, dof, chi2, p_value, t, tuple(flags),
+                      tuple(unidentified), tuple(correlated))
+
+
+def identifiability_words(stat: Statistics) -> str:
+    """What the data cannot fix, in one phrase ('' when they fix every parameter)."""
+    parts = []
+    if stat.unidentified:
+        parts.append(f"these data cannot tell {' or '.join(stat.unidentified)} (the 95 % interval spans more "
+                     "than the value)")
+    if stat.correlated:
+        parts.append("; ".join(f"{a} and {b} move together (correlation {c:+.3f})" for a, b, c in stat.correlated))
+    return "; ".join(parts)
 
 
 def verdict(stat: Statistics, trusted: bool) -> str:
