@@ -419,3 +419,59 @@ def test_api_schedule_overlap():
         load_schedule(path, ["glucose"], 10.0)
     issue = _one_issue(ei)
     assert (issue.line, issue.key) == (6, "glucose")
+
+
+# ---------------------------------------------------------------- runs files of optfeed fit
+
+FIT = CORPUS / "fit"
+
+# Each runs_*.yaml in bad_input/fit/ is a copy of ok_runs.yaml (for ok_problem.yaml) with
+# one defect; a fault inside a data file is reported at that file's line and column.
+FIT_CASES = [
+    Case("runs_unknown_species.yaml", 2, "Q [g/L]",
+         r"^'Q' is not a species, V, a named rate, OUR or heat_load of the problem",
+         reported="fit/data_unknown_species.csv"),
+    Case("runs_data_unit.yaml", 2, "X [g/h]", r"^unit 'g/h' has dimension \[mass\] / \[time\], but 'X' is in g/L",
+         reported="fit/data_wrong_unit.csv"),
+    Case("runs_bound_unit.yaml", 3, "estimate.mu_max.min",
+         r"^'0\.1 g/L' has dimension \[mass\] / \[length\] \*\* 3 .*, but 'mu_max' is in 1/h"),
+    Case("runs_time_outside.yaml", 15, "runs[1].end_time",
+         r"^the data file has samples up to 10 h, after the run's end \(8 h\)"),
+    Case("runs_few_samples.yaml", 7, "runs",
+         r"^1 measured value\(s\) for 2 parameter\(s\) to estimate: a fit needs more measurements than parameters"),
+    Case("runs_missing_schedule.yaml", 13, "runs[1].schedule", r"^no_such_schedule\.csv: file not found"),
+    Case("runs_unknown_parameter.yaml", 3, "estimate.mu_mx",
+         r"^'mu_mx' is not a parameter of .*ok_problem\.yaml; did you mean 'mu_max'\?"),
+    Case("runs_bounds.yaml", 4, "estimate.K_s", r"^min '2 g/L' is not below max '0\.01 g/L'"),
+    Case("runs_path.yaml", 10, "runs[0].data",
+         r"^'\.\./\.\./outside\.csv' leads outside .*; a data file named in runs_path\.yaml must lie in its folder"),
+]
+
+
+@pytest.mark.parametrize("case", [pytest.param(c, id=c.file) for c in FIT_CASES])
+def test_bad_runs_file_is_refused_cleanly(case: Case, tmp_path: Path):
+    """optfeed fit: exit 2, one message naming the file, line and key, nothing written."""
+    results = tmp_path / "results"
+    path = FIT / case.file
+    [(code, stdout, stderr)] = _run_all([["fit", str(OK_PROBLEM), str(path), "--results", str(results)]],
+                                        cwd=tmp_path)
+    named = CORPUS / case.reported if case.reported else path
+    _assert_clean_refusal("fit", code, stdout, stderr, named, case)
+    assert len(stderr.splitlines()) == 2, f"one message expected:\n{stderr}"
+    assert not results.exists() or not any(results.iterdir()), f"files written: {sorted(_files_under(results))}"
+    assert _files_under(tmp_path) == set()
+
+
+def test_fit_corpus_lists_every_runs_file():
+    on_disk = {p.name for p in FIT.glob("runs_*.yaml")}
+    assert on_disk == {c.file for c in FIT_CASES}
+
+
+def test_ok_runs_file_is_valid():
+    """The base every runs case is a variant of loads (so each refusal is its defect's)."""
+    from optfeed.fit import load_runs
+    from optfeed.model import build_model
+
+    problem = load_problem(OK_PROBLEM)
+    runs = load_runs(FIT / "ok_runs.yaml", problem, build_model(problem))
+    assert [r.name for r in runs.runs] == ["batch", "fed"] and runs.n_samples == 21

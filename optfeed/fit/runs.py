@@ -188,7 +188,7 @@ def load_runs(path, problem, model: Model) -> Runs:
     runs = []
     names = set()
     for i, r in enumerate(runs_in):
-        run = _run(r, i, base, path, lines, problem, model, fail)
+        run = _run(r, i, base, path, lines, problem, model, fail, issues.append)
         if run is not None:
             if run.name in names:
                 fail(("runs", i, "name"), f"run name {run.name!r} is used twice")
@@ -249,8 +249,21 @@ def _estimates(spec, problem, fail) -> list[Estimate]:
     return out
 
 
-def _run(r, i, base, path, lines, problem, model, fail) -> Run | None:
+def _run(r, i, base, path, lines, problem, model, fail, keep) -> Run | None:
+    """One run, checked; None after recording its issues. ``fail(loc, message)``
+    records an issue at the runs file; ``keep(issue)`` one found inside a data or
+    schedule file, which names that file's own line and cell."""
     loc = ("runs", i)
+
+    def passed_on(exc, key, text):
+        """The issues of a file the run names: at their own line of that file, or
+        (the file itself at fault: missing, empty, binary) at the runs file's key."""
+        for issue in exc.issues:
+            if issue.line is not None and issue.file != path:
+                keep(issue)
+            else:
+                fail(loc + (key,), issue.message if issue.file == path else f"{text}: {issue.message}")
+
     if not isinstance(r, dict):
         fail(loc, "expected a mapping with 'data' (and name, schedule, initial, ...)")
         return None
@@ -337,8 +350,7 @@ def _run(r, i, base, path, lines, problem, model, fail) -> Run | None:
     try:
         times, values, units = _read_data(data_file, model, problem)
     except InputError as exc:
-        for issue in exc.issues:
-            fail(loc + ("data",), f"{issue}")
+        passed_on(exc, "data", r["data"])
         return None
     if end_time is None:
         end_time = float(times[-1])
@@ -356,8 +368,7 @@ def _run(r, i, base, path, lines, problem, model, fail) -> Run | None:
                            key_text(loc + ("schedule",)), "schedule")
             schedule = load_schedule(sfile, model.feed_names, end_time)
         except InputError as exc:
-            for issue in exc.issues:
-                fail(loc + ("schedule",), f"{issue}" if issue.file != path else issue.message)
+            passed_on(exc, "schedule", r["schedule"])
             return None
     else:
         schedule = piecewise_constant(model.feed_names, [0.0], np.zeros((1, model.nu)), "pumps off (a batch run)")
