@@ -225,3 +225,39 @@ def test_command_line_writes_a_run_folder_that_optimize_reads(case1, tmp_path):
     assert back.parameters["m_S"] == pytest.approx(0.03)
     v = optfeed.validate(out / "fitted.yaml")
     assert v.exit_code == 0
+
+
+# ---------------------------------------------------------------- the shipped example: fit, optimize, check
+
+
+def _cli(*args, cwd):
+    return subprocess.run([sys.executable, "-m", "optfeed.cli", *map(str, args)], capture_output=True, text=True,
+                          cwd=cwd, timeout=600)
+
+
+def test_shipped_example_fit_optimize_check(tmp_path):
+    """The three-step loop of the README on configs/inhibited_product_runs.yaml.
+    Reference: the invented values the shipped data were simulated from
+    (configs/runs/make_inhibited_product_runs.py, TRUTH) lie in the 95 % intervals."""
+    sys.path.insert(0, str(REPO / "configs" / "runs"))
+    try:
+        import make_inhibited_product_runs as made
+    finally:
+        sys.path.pop(0)
+    fit_dir, opt_dir, check_dir = tmp_path / "fit", tmp_path / "optimize", tmp_path / "check"
+    done = _cli("fit", REPO / "configs/inhibited_product.yaml", REPO / "configs/inhibited_product_runs.yaml",
+                "--out", fit_dir, "--quiet", "--no-figures", cwd=tmp_path)
+    assert done.returncode == 0, done.stdout + done.stderr
+    summary = json.loads((fit_dir / "summary.json").read_text())
+    assert summary["status"] == "fitted"
+    est = {e["name"]: e for e in summary["estimates"]}
+    assert set(est) == set(made.TRUTH)
+    for name, truth in made.TRUTH.items():
+        lo, hi = est[name]["ci_low"], est[name]["ci_high"]
+        assert lo < truth < hi, (name, est[name])
+    done = _cli("optimize", fit_dir / "fitted.yaml", "--starts", "1", "--out", opt_dir, "--quiet", "--no-figures",
+                cwd=tmp_path)
+    assert done.returncode == 0, done.stdout + done.stderr
+    done = _cli("check", fit_dir / "fitted.yaml", "--schedule", opt_dir / "schedule.csv", "--out", check_dir,
+                "--quiet", "--no-figures", cwd=tmp_path)
+    assert done.returncode == 0, done.stdout + done.stderr
