@@ -59,6 +59,8 @@ objective: {maximize: titer, product: P}
 TRUE = {"mu_max": 0.5, "K_s": 0.2, "Y_XS": 0.5, "m_S": 0.03, "alpha": 0.3}
 SIGMA = {"X": 0.08, "S": 0.05, "P": 0.03}  # g/L, absolute only (the error model the noise is drawn from)
 S_FEED = 300.0
+BOUNDS = {"mu_max": ("0.1 1/h", "1.5 1/h"), "K_s": ("0.01 g/L", "3 g/L"), "Y_XS": ("0.2 g/g", "0.8 g/g"),
+          "alpha": ("0.05 g/g", "1 g/g"), "m_S": ("0.001 g/g/h", "0.2 g/g/h")}  # the runs file's default bounds
 
 
 @dataclass
@@ -88,6 +90,7 @@ DESIGN = (
 
 def rhs(t, y, p, F):
     X, S, P, V = y
+    S = max(S, 0.0)  # an integrator step just below zero must not reach the pole at S = -0.01
     mu = p["mu_max"] * S / (p["K_s"] + S)
     q_S = (mu / p["Y_XS"] + p["m_S"]) * S / (S + 0.01)
     D = F / V
@@ -135,9 +138,7 @@ def write_case(folder: Path, seed: int, estimate=("mu_max", "K_s", "Y_XS"), desi
     NLP starts (default: the fit's default)."""
     folder.mkdir(parents=True, exist_ok=True)
     measured = data(seed, design, truth, sigma)
-    bounds = bounds or {"mu_max": ("0.1 1/h", "1.5 1/h"), "K_s": ("0.01 g/L", "3 g/L"),
-                        "Y_XS": ("0.2 g/g", "0.8 g/g"), "alpha": ("0.05 g/g", "1 g/g"),
-                        "m_S": ("0.001 g/g/h", "0.2 g/g/h")}
+    bounds = bounds or BOUNDS
     lines = ["estimate:"] + [f"  {n}: {{min: {bounds[n][0]}, max: {bounds[n][1]}}}" for n in estimate]
     lines += ["errors:"] + [f"  {q}: {{absolute: {s} g/L}}" for q, s in sigma.items()
                             if any(q in r.measured for r in design)]
@@ -166,8 +167,9 @@ def write_case(folder: Path, seed: int, estimate=("mu_max", "K_s", "Y_XS"), desi
 
 def scipy_fit(measured, estimate=("mu_max", "K_s", "Y_XS"), design=DESIGN, start=None, sigma=SIGMA):
     """The same weighted least squares solved independently: solve_ivp (LSODA) +
-    scipy.optimize.least_squares (trf, 3-point finite differences, tolerances 1e-12),
-    covariance (J^T J)^-1 from least_squares' own Jacobian at the solution.
+    scipy.optimize.least_squares (trf, 3-point finite differences, tolerances 1e-12,
+    within the runs file's default bounds), covariance (J^T J)^-1 from least_squares'
+    own Jacobian at the solution.
 
     Returns (estimates, standard errors, chi-square)."""
     from scipy.optimize import least_squares
@@ -185,8 +187,10 @@ def scipy_fit(measured, estimate=("mu_max", "K_s", "Y_XS"), design=DESIGN, start
         return np.array(out)
 
     x0 = np.array([TRUE[n] for n in estimate] if start is None else start, dtype=float)
+    lower = [float(BOUNDS[n][0].split()[0]) for n in estimate]
+    upper = [float(BOUNDS[n][1].split()[0]) for n in estimate]
     res = least_squares(residuals, x0, jac="3-point", method="trf", x_scale="jac", ftol=1e-12, xtol=1e-12,
-                        gtol=1e-12)
+                        gtol=1e-12, bounds=(lower, upper))
     J = res.jac
     cov = np.linalg.inv(J.T @ J)
     return res.x, np.sqrt(np.diag(cov)), float(2 * res.cost)
