@@ -352,7 +352,12 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
             raise KeyboardInterrupt
         w0 = nlp.pack(data, runs.runs, theta, first)
         s = solve(nlp, data, w0, label, profile="cold", tolerance=NLP_TOLERANCE, max_iter=1500)
-        if s.status not in ("converged", "interrupted"):
+        # a solve that stops with a finite answer (IPOPT often ends a calibration with an
+        # error in its step computation once it sits at the optimum) is handed to the
+        # polish, which judges stationarity on the re-simulated runs; only a solve with
+        # nothing to hand on is tried again with the adaptive barrier
+        if s.status not in ("converged", "interrupted") and (s.objective is None or s.status in (
+                "infeasible", "iteration limit")):
             s2 = solve(nlp, data, w0, label + " (adaptive barrier)", profile="adaptive", tolerance=NLP_TOLERANCE,
                        max_iter=1500)
             s2.iterations += s.iterations
