@@ -1,13 +1,13 @@
 """The fit job: calibrate a problem's parameters against past runs.
 
-1. Guesses: the given start, then Latin-hypercube points within the bounds
-   (log-spaced where a bound spans a decade or more). Each point of a larger
-   Latin-hypercube sample is simulated (CVODES, values at the sampling times only)
-   and the points that fit the data best become the starts, so that the NLP solves
-   begin near the data rather than anywhere in the box.
+1. Guesses: the given start, then ``starts - 1`` Latin-hypercube points within the
+   bounds (log-spaced where a bound spans a decade or more). Each NLP starts with
+   its measured states at the data and the others from one simulation (see
+   :meth:`.transcription.FitNLP.pack`).
 2. Every run is transcribed by the collocation blocks of :mod:`.transcription`, all in
    one NLP sharing the estimated parameters (the simultaneous approach), and solved
-   with IPOPT from each start.
+   with IPOPT from each start. A solve that stops with a finite answer short of
+   IPOPT's convergence test goes on to the polish, which judges it.
 3. The best answer is polished on the runs' exact re-simulation by Levenberg-Marquardt
    steps whose Jacobian comes from the CVODES sensitivity equations: this removes what
    remains of the collocation error, so the estimates are those of the model, not of
