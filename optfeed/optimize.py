@@ -43,6 +43,7 @@ from .simulate import Simulator
 from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
                     make_guesses, models, scaling_for, solve, states_for)
 from .transcription import Grid, NLPData
+from .uncertainty import ScenarioSet, scenario_set
 from .units import factor_to
 from .verify import Verification, pump_schedule, verify
 
@@ -120,7 +121,12 @@ class OptimizeResult:
         grid's estimated gap, distinct local optima met, back-offs; for a scenario
         solve, each scenario's objective and verification ('scenarios').
     nominal : OptimizeResult or None
-        For a scenario solve: the nominal problem's own optimum, for comparison.
+        For a scenario solve: the nominal problem's own optimum, for comparison
+        (with its own Monte Carlo judgement).
+    uncertainty : MonteCarloResult or None
+        With an ``uncertainty`` section: the schedule found, judged over a fresh
+        Monte Carlo sample of the uncertain values (probability of breaking each
+        limit, the objective's spread). It never changes the status.
     """
 
     status: str
@@ -140,6 +146,7 @@ class OptimizeResult:
     seconds: float = 0.0
     record: dict = field(default_factory=dict)
     nominal: "OptimizeResult | None" = field(default=None, repr=False)
+    uncertainty: "MonteCarloResult | None" = field(default=None, repr=False)
 
     @property
     def exit_code(self) -> int:
@@ -210,34 +217,6 @@ class _Answer:
     pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
 
 
-@dataclass(frozen=True)
-class ScenarioSet:
-    """The scenarios an optimisation carries (the nominal first).
-
-    constants : (n_constants, S) the model's constant vector per scenario
-    x0 : (nx, S) initial states per scenario, the full model's layout
-    labels : tuple of S names
-    combine : 'mean', 'worst' or 'mean_std' (objective over scenarios)
-    risk : k of mean - k*std
-    weights : (S,) summing to 1, or None for equal weights
-    """
-
-    constants: np.ndarray
-    x0: np.ndarray
-    labels: tuple
-    combine: str = "mean"
-    risk: float = 0.0
-    weights: tuple | None = None
-
-    @property
-    def w(self) -> np.ndarray:
-        return np.full(self.size, 1.0 / self.size) if self.weights is None else np.asarray(self.weights, float)
-
-    @property
-    def size(self) -> int:
-        return self.constants.shape[1]
-
-
 class _Job:
     """Everything the stages of one optimize run share."""
 
@@ -279,7 +258,7 @@ class _Job:
         else:
             keep = [self.full.index(n) for n in lean.state_names]
             constants, x0 = sc.constants, sc.x0[keep, :]
-            weights, risk = sc.w, sc.risk
+            weights, risk = sc.weights, sc.risk
         return NLPData(
             constants=constants, x0=x0, end_time=self.fixed, end_bounds=self.t_bounds,
             pump_min=np.array([f.min_rate for f in p.feeds]) if pump is None else pump[0],
@@ -292,7 +271,7 @@ class _Job:
     def nlp(self, grid: Grid):
         sc = self.scenarios
         return get_nlp(self.problem, self.lean, self.limits, grid, self.free,
-                       scenarios=1 if sc is None else sc.size, combine="mean" if sc is None else sc.combine,
+                       scenarios=1 if sc is None else sc.count, combine="mean" if sc is None else sc.combine,
                        smoothing=self.settings.smoothing > 0)
 
     def scenario_inputs(self):
@@ -300,7 +279,7 @@ class _Job:
         sc = self.scenarios
         if sc is None:
             return [(self.full.x0, self.full.p0)]
-        return [(sc.x0[:, s], sc.constants[:, s]) for s in range(sc.size)]
+        return [(sc.x0[:, s], sc.constants[:, s]) for s in range(sc.count)]
 
     def report(self, label, iteration, f, infeasibility=None):
         """Progress of a running solve: ``f`` is the NLP's scaled objective, shown as
@@ -363,17 +342,17 @@ def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
     if sc is None:
         return None
     first, weight = {}, {}
-    for s, w in zip(range(sc.size), sc.w):
+    for s, w in zip(range(sc.count), sc.weights):
         key = (tuple(sc.constants[:, s]), tuple(sc.x0[:, s]))
         first.setdefault(key, s)
         weight[key] = weight.get(key, 0.0) + w  # a repeated draw keeps its share of the mean
     if len(first) == 1:
         return None
-    if len(first) == sc.size:
+    if len(first) == sc.count:
         return sc
     keep = list(first.values())
-    return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep],
-                   labels=tuple(sc.labels[s] for s in keep), weights=tuple(weight[k] for k in first))
+    return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep], values=sc.values[:, keep],
+                   labels=tuple(sc.labels[s] for s in keep), weights=np.array([weight[k] for k in first]))
 
 
 def _seed_guesses(job, seeds) -> list:
@@ -410,7 +389,7 @@ def combine(values, sc: ScenarioSet, maximize: bool = True) -> float:
     values = np.asarray(values, dtype=float)
     if sc.combine == "worst":
         return float(values.min() if maximize else values.max())
-    w = sc.w
+    w = sc.weights
     mean = float(w @ values)
     if sc.combine == "mean_std":
         std = float(np.sqrt(w @ (values - mean) ** 2))
@@ -436,7 +415,8 @@ def design_bounds(lim, margin: float) -> tuple:
 
 
 def optimize(problem, workers: int | None = None, on_progress=None, time_limit: float | None = None,
-             set: dict | None = None, scenarios: ScenarioSet | None = None) -> OptimizeResult:
+             set: dict | None = None, scenarios: ScenarioSet | None = None,
+             samples: int | None = None, seed: int | None = None) -> OptimizeResult:
     """Find the feed profile that optimises the problem's objective inside every limit.
 
     Parameters
@@ -454,7 +434,14 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
         shadows the builtin ``set`` inside this function.)
     scenarios : ScenarioSet, optional
         Optimise one shared pump profile over these scenarios (every limit held in
-        each); default: the problem's ``uncertainty`` section, if it has one.
+        each); default: the scenarios of the problem's ``uncertainty`` section
+        (:func:`optfeed.uncertainty.scenario_set`), if it has one. Scenarios that
+        are all the same problem (e.g. ``count: 1``, or zero spread) leave the
+        nominal problem alone.
+    samples, seed : int, optional
+        With an ``uncertainty`` section: the Monte Carlo sample that judges the
+        answer and the nominal optimum side by side (default: the section's
+        ``monte_carlo``); ``result.uncertainty`` and ``result.nominal.uncertainty``.
 
     Returns
     -------
@@ -474,19 +461,42 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
                              "(e.g. objective: {maximize: product_mass, product: P})")
     limit = time_limit if time_limit is not None else problem.settings.time_limit
     deadline = None if limit is None else time.monotonic() + limit
+    if scenarios is None and problem.uncertainty is not None:
+        from .model import build_model
+
+        scenarios = scenario_set(problem, build_model(problem))
     scenarios = merge_identical(scenarios)
+    say = on_progress or (lambda *a: None)
     with interrupt_guard():
         if scenarios is None:
-            return _optimize(problem, workers, on_progress, deadline, t_start)
+            result = _optimize(problem, workers, on_progress, deadline, t_start)
+            return _judged_over_samples(result, problem, samples, seed, workers, say, deadline)
         # one pump profile over the scenarios, started (among others) from the
         # nominal optimum, which is also reported beside it
-        say = on_progress or (lambda *a: None)
         say("the nominal problem", None, None)
         nominal = _optimize(problem, workers, on_progress, deadline, t_start)
-        say(f"one feed profile for {scenarios.size} scenarios", None, None)
+        say(f"one feed profile for {scenarios.count} scenarios", None, None)
         seeds = [] if nominal.schedule is None else [("the nominal optimum", nominal.schedule, nominal.end_time)]
         robust = _optimize(problem, workers, on_progress, deadline, t_start, scenarios, seeds)
-        return replace(robust, nominal=nominal)
+        robust = _judged_over_samples(robust, problem, samples, seed, workers, say, deadline, "the answer")
+        nominal = _judged_over_samples(nominal, problem, samples, seed, workers, say, deadline, "the nominal optimum")
+        return replace(robust, nominal=nominal, seconds=time.perf_counter() - t_start)
+
+
+def _judged_over_samples(result, problem, samples, seed, workers, say, deadline, what: str = "the answer"):
+    """The result with its schedule judged over the Monte Carlo sample of the problem's
+    uncertain values (``result.uncertainty``), when it has an uncertainty section and
+    a schedule; the status is not changed by it (the figures stand beside it)."""
+    if problem.uncertainty is None or result.schedule is None:
+        return result
+    from .montecarlo import monte_carlo
+
+    def progress(text, done, total):
+        say(f"Monte Carlo, {what}: {text}", done, total)
+
+    mc = monte_carlo(problem, result.schedule, result.end_time, samples=samples, seed=seed, workers=workers,
+                     on_progress=progress, deadline=deadline)
+    return replace(result, uncertainty=mc)
 
 
 def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, seeds=()) -> OptimizeResult:
@@ -510,7 +520,10 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
         return result(st.INFEASIBLE, f"before solving: {blocked}")
 
     job.progress("simulating initial feeds", 0, s.starts)
-    guesses = _seed_guesses(job, seeds) + make_guesses(problem, job.full, s.starts)
+    # a scenario solve starts from the nominal optimum (its multistart is done), not
+    # from every default feed again (measured: a default feed cost 35 s of an 8-scenario
+    # solve's 85 s and ended at its iteration limit)
+    guesses = _seed_guesses(job, seeds) + ([] if seeds else make_guesses(problem, job.full, s.starts))
     if not guesses:
         return result(st.FAILED, "the integrator could not follow any of the initial feeds")
     diagnosis = _always_broken(job, guesses)
@@ -943,11 +956,13 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
         nlps = nlp.scenario_objectives(best.w, data)
         objective_sim = None if None in sims else combine(np.array(sims), sc, job.sense < 0) * job.f_obj
         record["scenarios"] = {
-            "count": sc.size, "objective_over_scenarios": sc.combine, "k": sc.risk,
+            "count": sc.count, "objective_over_scenarios": sc.combine, "k": sc.risk,
             "labels": list(sc.labels),
             "objective_nlp": [float(v) * job.f_obj for v in nlps],
             "objective_resimulated": [None if v is None else float(v) * job.f_obj for v in sims],
             "verified": [bool(c.verified) for c in job.scenario_checks],
+            "weights": [float(w) for w in sc.weights],
+            "values": _scenario_values(job.problem, sc),
         }
     return result(
         status, message, objective_nlp=best.objective * job.f_obj,
@@ -955,6 +970,18 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
         end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
         outcome=outcome, points=points,
     )
+
+
+def _scenario_values(problem, sc) -> dict:
+    """Each uncertain value in every scenario, in the unit it is written in:
+    ``{"mu_max [1/h]": [...], ...}`` (internal units where it has none)."""
+    units = {v.name: v.unit for v in problem.uncertainty.values} if problem.uncertainty else {}
+    out = {}
+    for name, row in zip(sc.names, sc.values):
+        unit = units.get(name, "")
+        f = factor_to(unit) if unit else 1.0
+        out[f"{name} [{unit or 'internal units'}]"] = [float(v) * f for v in row]
+    return out
 
 
 def _full_points(job, un) -> dict:

@@ -146,6 +146,7 @@ class FeedNLP:
             raise ValueError(f"combine must be one of {COMBINE}")
         self.model, self.limits, self.grid = model, [l for l in limits if l.kind != "setting"], grid
         self.free_time, self.S, self.combine = free_time, int(scenarios), combine
+        self.copies = self.S  # copies of the model sharing decisions (solve.ipopt_options)
         self.has_smoothing = smoothing
         self.sense = -1.0 if (model.problem.objective is None or model.problem.objective.sense == "maximize") else 1.0
         self._build()

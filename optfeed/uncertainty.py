@@ -60,6 +60,12 @@ class ScenarioSet:
         Each scenario's weight in a mean over scenarios (equal, summing to 1).
     method : str
     seed : int
+    combine : str
+        The objective over the scenarios when one pump profile is optimised for
+        all of them: 'mean', 'worst' or 'mean_std' (the mean less ``risk``
+        standard deviations for a maximised objective, plus for a minimised one).
+    risk : float
+        k of 'mean_std'.
     """
 
     constants: np.ndarray
@@ -70,6 +76,8 @@ class ScenarioSet:
     weights: np.ndarray
     method: str
     seed: int
+    combine: str = "mean"
+    risk: float = 0.0
 
     @property
     def count(self) -> int:
@@ -114,7 +122,7 @@ def scenario_set(problem: Problem, model: Model, count: int | None = None, seed:
     """
     u = problem.uncertainty
     if u is None:
-        return _assemble(model, [], np.zeros((0, 1)), ("nominal",), "none", 0)
+        return _assemble(model, [], np.zeros((0, 1)), ("nominal",), "none", 0, "mean", 0.0)
     count = u.scenarios if count is None else int(count)
     seed = u.scenario_seed if seed is None else int(seed)
     method = u.method if method is None else method
@@ -130,7 +138,8 @@ def scenario_set(problem: Problem, model: Model, count: int | None = None, seed:
     if nominal:
         values = np.column_stack([[v.nominal for v in u.values], values]) if len(u.values) else values
         labels = ("nominal",) + labels
-    return _assemble(model, list(u.values), values.reshape(len(u.values), -1), labels, method, seed)
+    return _assemble(model, list(u.values), values.reshape(len(u.values), -1), labels, method, seed,
+                     u.combine, u.k)
 
 
 def unit_points(d: int, n: int, seed: int, method: str) -> np.ndarray:
@@ -172,7 +181,7 @@ def _values(u, points) -> np.ndarray:
     return out
 
 
-def _assemble(model: Model, values, drawn, labels, method, seed) -> ScenarioSet:
+def _assemble(model: Model, values, drawn, labels, method, seed, combine, risk) -> ScenarioSet:
     S = len(labels)
     constants = np.repeat(model.p0[:, None], S, axis=1)
     x0 = np.repeat(model.x0[:, None], S, axis=1)
@@ -182,4 +191,4 @@ def _assemble(model: Model, values, drawn, labels, method, seed) -> ScenarioSet:
         else:
             x0[model.index(v.ref)] = row
     return ScenarioSet(constants, x0, tuple(labels), tuple(v.name for v in values), np.asarray(drawn, dtype=float),
-                       np.full(S, 1.0 / S), method, int(seed))
+                       np.full(S, 1.0 / S), method, int(seed), combine, float(risk))

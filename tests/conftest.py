@@ -35,15 +35,15 @@ _OPTIMIZED: dict = {}
 
 @pytest.fixture(scope="session")
 def optimized():
-    """optimized(path) -> the OptimizeResult of that problem file with default
-    settings, computed once per test session (optimize is deterministic: budgets are
+    """optimized(path, set=None) -> the OptimizeResult of that problem file with
+    default settings (or these overrides), computed once per test session (optimize is deterministic: budgets are
     iteration counts), so several tests can judge one run."""
     from optfeed.optimize import optimize
 
-    def get(path):
-        key = str(path)
+    def get(path, set=None):
+        key = (str(path), tuple(sorted((set or {}).items())))
         if key not in _OPTIMIZED:
-            _OPTIMIZED[key] = optimize(path)
+            _OPTIMIZED[key] = optimize(path, set=set)
         return _OPTIMIZED[key]
 
     return get

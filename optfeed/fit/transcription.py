@@ -136,6 +136,7 @@ class FitNLP:
     def __init__(self, model: Model, runs, estimated, elements_per_run: int = 100, degree: int = 3):
         self.model, self.estimated = model, list(estimated)
         self.n_runs = len(runs)
+        self.copies = self.n_runs  # copies of the model sharing decisions (solve.ipopt_options)
         self.degree = degree
         m = model
         W, P = Layout("w"), Layout("p")

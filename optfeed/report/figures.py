@@ -594,6 +594,42 @@ def feed_profile(label: str, t, columns: dict) -> Drawing:
     return Drawing("best_feed", "The pump schedule of the best case.", fig)
 
 
+def feeds_against(feeds, answer, answer_end: float, nominal, nominal_end: float, title: str = "") -> Drawing:
+    """The pump profile of a scenario solve's answer against the nominal optimum's, one
+    panel per feed, each in its own unit.
+
+    Parameters
+    ----------
+    feeds : sequence of Feed
+        The problem's feeds (name, unit).
+    answer, nominal : Schedule
+    answer_end, nominal_end : float
+        Their run lengths, h.
+    """
+    from ..units import factor_to
+
+    with _rc():
+        n = max(1, len(feeds))
+        fig, axes = _figure(n, 1, width=7.0, height=2.6)
+        names = [f.name for f in feeds]
+        for ax, feed in zip(axes, feeds):
+            k = names.index(feed.name)
+            f = factor_to(feed.unit)
+            for schedule, end, label, color, style in (
+                    (nominal, nominal_end, "the nominal optimum", FAN_REFERENCE, "--"),
+                    (answer, answer_end, "the answer over the scenarios", INK, "-")):
+                pieces = [(sg, np.linspace(sg.start, sg.end, 20)) for sg in schedule.segments(names, end)]
+                tt = np.concatenate([t for _, t in pieces])
+                rr = np.concatenate([sg.rates(t)[:, k] for sg, t in pieces])
+                ax.plot(tt, rr * f, color=color, ls=style, lw=1.4, label=label)
+            ax.set_title(f"pump {feed.name}")
+            ax.set_ylabel(feed.unit)
+            ax.legend(loc="best")
+        _finish(fig, axes, n, 1, title, np.array([0.0, max(answer_end, nominal_end)]))
+    return Drawing("figure-robust-feeds", "The pump profile chosen over the scenarios (solid) against the "
+                   "nominal problem's optimum (dashed).", fig)
+
+
 def _safe(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_]+", "_", text)[:60]
 

@@ -269,10 +269,31 @@ def optimize_summary(result) -> dict:
             "seconds_total": result.seconds,
         },
         "finals": finals,
+        **_robust_summary(result),
         "warnings": [str(w) for w in result.problem.warnings],
         "record": result.record,
         "caution": CAUTION,
     }
+
+
+def _robust_summary(result) -> dict:
+    """The Monte Carlo judgement of the answer and, for a scenario solve, the nominal
+    optimum beside it (summary.json)."""
+    out = {}
+    if result.uncertainty is not None:
+        out["uncertainty"] = uncertainty_summary(result.uncertainty, result.problem)
+        out["uncertainty"]["note"] = ("Monte Carlo over the uncertain values; the status above is the "
+                                      "optimizer's verdict over its scenarios")
+    n = result.nominal
+    if n is not None:
+        out["nominal_optimum"] = {
+            "note": "the optimum of the nominal problem alone, for comparison; not the answer",
+            "status": n.status, "message": n.message, "objective": n.objective_sim, "unit": result.objective_unit,
+            "end_time_h": n.end_time, "schedule": "nominal-schedule.csv" if n.schedule is not None else None,
+            "uncertainty": None if n.uncertainty is None else {
+                **uncertainty_summary(n.uncertainty, result.problem), "per_sample": "montecarlo-nominal.csv"},
+        }
+    return out
 
 
 def write_optimize_run(result, target, figures: bool = True) -> Path:
@@ -282,12 +303,15 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
     answer also schedule.csv (the pump schedule, readable by ``optfeed check
     --schedule``), trajectory.csv (re-simulated), points.csv (the NLP's collocation
     points) and the figures figure-limits.png, figure-culture.png, figure-feeds.png.
-    When the solve failed, the closest schedule the solver found is written as
+    With an uncertainty section also montecarlo.csv and figure-fan.png (the answer
+    over the Monte Carlo sample) and, for a scenario solve, nominal-schedule.csv
+    and montecarlo-nominal.csv (the nominal optimum, for comparison; not the
+    answer) and figure-robust-feeds.png (the two pump profiles). When the solve failed, the closest schedule the solver found is written as
     closest-schedule.csv (with its trajectory and figures), never as schedule.csv.
     """
     from ..model import build_model
     from ..schedule import schedule_csv_text
-    from .figures import run_drawings
+    from .figures import fan_drawing, feeds_against, run_drawings
     from .html import optimize_page, write_report
     from .text import optimize_text
 
@@ -313,11 +337,33 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
+        nominal = result.nominal
+        if nominal is not None and nominal.schedule is not None:
+            end = f" --end-time {nominal.end_time!r}" if result.problem.horizon.free else ""
+            (tmp / "nominal-schedule.csv").write_text(schedule_csv_text(nominal.schedule, {
+                f.name: f.unit for f in result.problem.feeds},
+                f"NOT THE ANSWER: the optimum of the nominal problem alone ({nominal.status}) for "
+                f"{result.problem.name}, kept for comparison with schedule.csv.\nRun length: {nominal.end_time!r} h. "
+                f"Check it with: optfeed check PROBLEM --schedule nominal-schedule.csv{end}"))
+        mc = result.uncertainty
+        if mc is not None:
+            write_csv(tmp / "montecarlo.csv", *montecarlo_rows(mc))
+        if nominal is not None and nominal.uncertainty is not None:
+            write_csv(tmp / "montecarlo-nominal.csv", *montecarlo_rows(nominal.uncertainty))
         # the shareable report and its figures (optfeed/report/html.py, figures.py)
         draw = None
         if figures and result.trajectory is not None:
+            fan = ([fan_drawing(mc.bands, f"{result.problem.name}: the answer over {mc.samples} samples",
+                                reference=None if nominal is None or nominal.uncertainty is None
+                                else nominal.uncertainty.bands, label="samples (the answer)",
+                                reference_label="samples (the nominal optimum)")]
+                   if mc is not None and mc.bands else [])
+            if nominal is not None and nominal.schedule is not None:
+                fan.append(feeds_against(result.problem.feeds, result.schedule, result.end_time, nominal.schedule,
+                                         nominal.end_time, f"{result.problem.name}: the answer against the "
+                                         "nominal optimum"))
             draw = lambda: run_drawings(model, result.trajectory, points=result.points,  # noqa: E731
-                                        title=f"{result.problem.name}: optimize - {result.status}")
+                                        title=f"{result.problem.name}: optimize - {result.status}") + fan
         write_report(tmp, lambda d, s, note: optimize_page(result, d, s, note), draw,
                      "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
     return Path(target)

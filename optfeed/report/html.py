@@ -374,12 +374,42 @@ def optimize_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
     reports = [v.report for v in result.limits]
     sections.append(limits_section(reports, list(result.limits), unit, result.objective_nlp,
                                    "Limits at the optimum (re-simulated)"))
+    if result.record.get("scenarios"):
+        sections.append(scenarios_section(result))
+    if result.uncertainty is not None:
+        sections.append(uncertainty_section(result.uncertainty, result.problem.uncertainty.values,
+                                            what="the schedule found"))
     sections.append(figures_section(drawings, svgs, figure_note))
     sections.append(outcome_section(result.outcome, "At the end of the run (re-simulated)"))
     sections.append(schedule_section(result.schedule, result.problem, "The pump schedule found"))
     sections.append(provenance_section(result.record, {"solver time (s)": round(result.seconds, 2)}))
     return Page("optimize", result.problem.name, words, tone, result.status, result.message, tuple(sections),
                 result.record.get("created_utc", ""))
+
+
+def scenarios_section(result) -> Section:
+    """A scenario solve: each scenario's values and objective, and the answer beside
+    the nominal optimum over the same Monte Carlo sample."""
+    from .text import robustness_rows
+
+    sc = result.record["scenarios"]
+    unit = result.objective_unit
+    names = list(sc.get("values", {}))
+    rows = [[label, sc["weights"][k], *(sc["values"][n][k] for n in names), sc["objective_resimulated"][k],
+             "yes" if sc["verified"][k] else "NO"] for k, label in enumerate(sc["labels"])]
+    words = {"mean": "the mean", "worst": "the worst", "mean_std": f"the mean less {fmt(sc.get('k'))} standard "
+             "deviations"}.get(sc["objective_over_scenarios"], sc["objective_over_scenarios"])
+    body = [f"<p>One pump profile for {sc['count']} scenarios of the uncertain values (the nominal one first), "
+            f"chosen for {esc(words)} of the objective over them, with every limit held in each scenario.</p>",
+            table(["scenario", "weight", *names, f"objective ({unit})", "verified"], rows,
+                  row_class=lambda k: "" if sc["verified"][k] else "broken")]
+    cmp = robustness_rows(result)
+    if cmp is not None:
+        header, crow = cmp
+        body.append(table(header, crow, caption=f"What robustness costs and buys: both schedules judged over the same "
+                                                f"{result.uncertainty.samples} Monte Carlo samples. The nominal "
+                                                "optimum is in nominal-schedule.csv."))
+    return Section("scenarios", "Over the scenarios", "".join(body))
 
 
 def sweep_page(sweep, rows, best, drawings=(), svgs=(), figure_note: str = "", top: int = 10) -> Page:

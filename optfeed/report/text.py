@@ -41,6 +41,17 @@ def tidy(value, report):
     return value
 
 
+def table_lines(rows) -> list[str]:
+    """Rows of strings (the first a header) as aligned text lines, a rule under the header."""
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    out = []
+    for k, row in enumerate(rows):
+        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
+        if k == 0:
+            out.append("  " + "  ".join("-" * w for w in widths))
+    return out
+
+
 def limits_table(reports) -> list[str]:
     rows = [("limit", "range", "smallest slack", "at (h)", "peak use", "first broken (h)")]
     for r in reports:
@@ -54,13 +65,7 @@ def limits_table(reports) -> list[str]:
             "-" if r.peak_use is None else f"{r.peak_use:.1f} %",
             "-" if r.first_violation is None else f"{fmt(r.first_violation)}  BROKEN by up to {fmt(r.worst_violation)} {unit}",
         ))
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    out = []
-    for k, row in enumerate(rows):
-        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
-        if k == 0:
-            out.append("  " + "  ".join("-" * w for w in widths))
-    return out
+    return table_lines(rows)
 
 
 def outcome_lines(outcome) -> list[str]:
@@ -109,11 +114,7 @@ def uncertainty_lines(mc, problem) -> list[str]:
     tried = mc.judged + mc.failed
     rows.append(("simulation failed", f"{mc.failed} of {tried}", percent(mc.failed / tried if tried else None),
                  f"{percent(lo)} .. {percent(hi)}", "failed" if mc.nominal_status == "simulation failed" else "-"))
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    for k, row in enumerate(rows):
-        lines.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
-        if k == 0:
-            lines.append("  " + "  ".join("-" * w for w in widths))
+    lines += table_lines(rows)
     margins = [r for r in mc.limits if r.margin_p5 is not None and r.kind != "pump"]
     if margins:
         lines.append("  Smallest margin over the run (5th percentile / median of the samples; negative: broken):")
@@ -184,6 +185,7 @@ def optimize_text(result) -> str:
         if "end_time_marginal_per_h" in result.record:
             lines.append(f"  1 h longer run      {fmt(result.record['end_time_marginal_per_h'])} {unit} more")
         lines.append("")
+    lines += scenario_lines(result)
     if result.starts:
         lines.append("Starts (best first):")
         for s in result.starts:
@@ -214,6 +216,9 @@ def optimize_text(result) -> str:
         lines.append("")
     if result.outcome is not None:
         lines += ["At the end of the run (re-simulated):"] + outcome_lines(result.outcome) + [""]
+    lines += robustness_lines(result)
+    if result.uncertainty is not None:
+        lines += uncertainty_lines(result.uncertainty, p)
     lines.append(CAUTION)
     return "\n".join(lines) + "\n"
 
@@ -222,16 +227,6 @@ CALIBRATION_CAUTION = (
     "A calibrated model describes the runs it was fitted to; it extrapolates poorly to\n"
     "conditions those runs did not reach. Read its intervals before planning with it."
 )
-
-
-def _table_lines(rows) -> list[str]:
-    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
-    out = []
-    for k, row in enumerate(rows):
-        out.append("  " + "  ".join(c.ljust(w) for c, w in zip(row, widths)).rstrip())
-        if k == 0:
-            out.append("  " + "  ".join("-" * w for w in widths))
-    return out
 
 
 def fit_text(result) -> str:
@@ -264,13 +259,13 @@ def fit_text(result) -> str:
             rows.append(tuple(row))
         lines += [f"Estimates (95 % intervals: t distribution with {s.dof} degrees of freedom"
                   + ("; a profile end shown '-' lies beyond the range searched" if profile else "") + "):"]
-        lines += _table_lines(rows) + [""]
+        lines += table_lines(rows) + [""]
         names = [e.name for e in r.estimates]
         if len(names) > 1:
             rows = [tuple([""] + names)]
             for i, n in enumerate(names):
                 rows.append(tuple([n] + [f"{v:+.3f}" if v == v else "-" for v in s.correlation[i]]))
-            lines += ["Correlation of the estimates:"] + _table_lines(rows) + [""]
+            lines += ["Correlation of the estimates:"] + table_lines(rows) + [""]
         terms = " ".join(f"{c:+.2f} log {n}" for c, n in zip(s.weakest, names) if abs(c) > 0.05).lstrip("+")
         lines += ["Identifiability:",
                   f"  condition number of the scaled information matrix: {fmt(s.condition, 3)}",
@@ -285,16 +280,89 @@ def fit_text(result) -> str:
         for d in r.residuals:
             rows.append((d["run"], d["quantity"], d["unit"], str(d["count"]), fmt(d["mean"], 3), fmt(d["rms"], 3)))
         lines += ["Residuals, weighted ((model - measured) / sigma, from the re-simulated runs; RMS near 1 is what",
-                  "the stated measurement error expects):"] + _table_lines(rows) + [""]
+                  "the stated measurement error expects):"] + table_lines(rows) + [""]
     if r.starts:
         rows = [("chi-square", "status", "iterations", "seconds", "from")]
         for st_ in r.starts:
             rows.append((fmt(st_.get("chi2"), 7), st_["status"], str(st_.get("iterations", "-")),
                          f"{st_.get('seconds', 0.0):.2f}", st_["from"]))
-        lines += ["Starts of the NLP (chi-square of the collocation answer, before the polish):"] + _table_lines(rows)
+        lines += ["Starts of the NLP (chi-square of the collocation answer, before the polish):"] + table_lines(rows)
         if r.spread is not None:
             lines.append(f"  spread over converged starts: {r.spread:.2%} of the best")
         lines.append("")
     lines.append(CAUTION)
     lines.append(CALIBRATION_CAUTION)
     return "\n".join(lines) + "\n"
+
+
+def robustness_rows(result) -> tuple[list, list] | None:
+    """The answer of a scenario solve beside the nominal optimum, both judged over the
+    same Monte Carlo sample: header and rows of plain strings, or None when there is
+    no such pair (an :class:`~optfeed.optimize.OptimizeResult`)."""
+    nominal = result.nominal
+    a, b = result.uncertainty, None if nominal is None else nominal.uncertainty
+    if a is None or b is None:
+        return None
+    unit = unit_words(result.objective_unit)
+    sc = result.record.get("scenarios", {})
+    rows = [
+        ("status", result.status, nominal.status),
+        (f"objective, nominal model ({unit})", fmt(_scenario_nominal(result), 6), fmt(nominal.objective_sim, 6)),
+        (f"objective over the {sc.get('count', '')} scenarios, {sc.get('objective_over_scenarios', '')} ({unit})",
+         fmt(result.objective_sim, 6), "-"),
+    ]
+    if a.objective is not None and b.objective is not None:
+        for key, words in (("mean", "mean"), ("p5", "5th percentile"), ("p50", "median"),
+                           ("p95", "95th percentile")):
+            rows.append((f"objective over the samples, {words} ({unit})", fmt(a.objective[key], 6),
+                         fmt(b.objective[key], 6)))
+
+    def risk(r):
+        interval = "" if r.low is None else f" ({percent(r.low)} .. {percent(r.high)})"
+        return f"{percent(r.probability)}{interval}"
+
+    rows.append(("probability of breaking any limit (95 % interval)", risk(a.any_limit), risk(b.any_limit)))
+    for ra, rb in zip(a.limits, b.limits):
+        if ra.kind != "pump" and (ra.broken or rb.broken):
+            rows.append((f"  {ra.name}", risk(ra), risk(rb)))
+    header = ["", "this answer (over the scenarios)", "the nominal optimum"]
+    return header, [list(r) for r in rows]
+
+
+def _scenario_nominal(result):
+    """The answer's objective on the nominal model (display unit): its first scenario's."""
+    sims = result.record.get("scenarios", {}).get("objective_resimulated") or [None]
+    return sims[0]
+
+
+def robustness_lines(result) -> list[str]:
+    """The text block comparing a scenario solve's answer with the nominal optimum."""
+    table = robustness_rows(result)
+    if table is None:
+        return []
+    header, rows = table
+    n = result.uncertainty.samples
+    lines = [f"What robustness costs and buys (both schedules judged over the same {n} Monte Carlo samples):"]
+    lines += table_lines([header] + rows)
+    lines.append("  The nominal optimum's schedule is nominal-schedule.csv; its samples montecarlo-nominal.csv.")
+    return lines + [""]
+
+
+def scenario_lines(result) -> list[str]:
+    """Each scenario of a scenario solve: its uncertain values, objective (NLP and
+    re-simulated) and verification."""
+    sc = result.record.get("scenarios")
+    if not sc:
+        return []
+    unit = unit_words(result.objective_unit)
+    words = {"mean": "the mean", "worst": "the worst", "mean_std": f"the mean less {fmt(sc.get('k'))} std"}
+    lines = [f"One pump profile for {sc['count']} scenarios of the uncertain values, objective {words.get(sc['objective_over_scenarios'], sc['objective_over_scenarios'])}"
+             " over them; every limit held in each:"]
+    names = list(sc.get("values", {}))
+    rows = [["scenario", "weight", *names, f"objective ({unit})", "verified"]]
+    for s_, label in enumerate(sc["labels"]):
+        J = sc["objective_resimulated"][s_]
+        rows.append([label, f"{sc['weights'][s_]:.3g}", *(fmt(sc["values"][n][s_]) for n in names),
+                     fmt(J, 6), "yes" if sc["verified"][s_] else "NO"])
+    lines += table_lines(rows)
+    return lines + [""]
