@@ -10,6 +10,29 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"
 
+# our own scenario: biomass on a sugar feed, held back by the OTR ceiling (a quick solve)
+OXYGEN = """
+name: oxygen_limited
+species:
+  X: {initial: 2 g/L}
+  S: {initial: 0.5 g/L}
+parameters: {mu_max: 0.5 1/h, K_s: 0.1 g/L, Y_XS: 0.5}
+rates:
+  mu: monod(S, mu_max, K_s)
+reactions:
+  X: mu * X
+  S: -mu / Y_XS * X
+feeds:
+  sugar: {composition: {S: 200 g/L}, max_rate: 50 mL/h}
+vessel:
+  initial_volume: 1 L
+  working_volume: 1.4 L
+  oxygen: {uptake: 20 * mu * X + 1 * X, transfer_max: 40 mmol/L/h}
+horizon: {end_time: 12 h}
+objective: {maximize: product_mass, product: X}
+solver: {pump_steps: 12, starts: 1}
+"""
+
 # (problem, proposed schedule, expected exit code of `optfeed check`)
 EXAMPLES = [
     ("fast_microbe.yaml", "fast_microbe_plan.csv", 1),

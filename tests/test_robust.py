@@ -29,29 +29,10 @@ from optfeed.problem import load_problem
 from optfeed.report import write_optimize_run
 from optfeed.uncertainty import scenario_set
 
-# our own scenario: biomass on a sugar feed, held back by the oxygen ceiling; a faster
-# strain (larger mu_max) takes more oxygen for the same feed
-OXYGEN = """\
-name: oxygen_uncertain
-species:
-  X: {initial: 2 g/L}
-  S: {initial: 0.5 g/L}
-parameters: {mu_max: 0.5 1/h, K_s: 0.1 g/L, Y_XS: 0.5}
-rates:
-  mu: monod(S, mu_max, K_s)
-reactions:
-  X: mu * X
-  S: -mu / Y_XS * X
-feeds:
-  sugar: {composition: {S: 200 g/L}, max_rate: 50 mL/h}
-vessel:
-  initial_volume: 1 L
-  working_volume: 1.4 L
-  oxygen: {uptake: 20 * mu * X + 1 * X, transfer_max: 40 mmol/L/h}
-horizon: {end_time: 12 h}
-objective: {maximize: product_mass, product: X}
-solver: {pump_steps: 12, starts: 1}
-"""
+from conftest import OXYGEN
+
+# OXYGEN (tests/conftest.py): our own OTR-limited problem, biomass on a sugar feed
+
 
 UNCERTAIN = """\
 uncertainty:
@@ -65,7 +46,7 @@ uncertainty:
 
 def _write(tmp_path, text, name="problem.yaml"):
     path = tmp_path / name
-    path.write_text(textwrap.dedent(text))
+    path.write_text(textwrap.dedent(text).lstrip())
     return path
 
 
