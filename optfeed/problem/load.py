@@ -22,6 +22,7 @@ from ..errors import InputError, Issue
 from ..paths import SAFE_NAME, safe_folder_name
 from ..units import describe, parse_quantity, to_internal, written_unit
 from . import schema
+from .phases import check_phases
 from .uncertain import check_uncertainty
 from .spec import RESERVED, Bound, Feed, Heat, Horizon, Objective, Oxygen, Problem, Settings, Species, Vessel
 from .yamlio import Lines, key_text, read_yaml
@@ -264,6 +265,7 @@ class _Builder:
         objective = self._objective(end_env)
         settings = self._settings(horizon)
         uncertainty = check_uncertainty(r, self.source, self.lines, self.fail, self.issues)
+        phases, additions = check_phases(self, species_dims, end_env, horizon, [b.name for b in bounds])
 
         if not self.issues:
             self._dry_build(parameters, species, rates, vessel, bounds, objective)
@@ -285,6 +287,8 @@ class _Builder:
             objective=objective,
             settings=settings,
             uncertainty=uncertainty,
+            phases=phases,
+            additions=additions,
             data=self.data,
         )
 
@@ -462,40 +466,48 @@ class _Builder:
         out = []
         for group, at_end in (("limits", False), ("end", True)):
             for i, b in enumerate(getattr(self.raw, group)):
-                loc = (group, i)
-                e = self.expression(b.expression, loc + ("expression",), env)
-                if b.min is None and b.max is None:
-                    self.fail(loc, "give 'min', 'max' or both")
-                    continue
-                lo = hi = None
-                unit = ""
-                dims = species_dims.get(e.text.strip()) if e is not None else None
-                for side in ("min", "max"):
-                    value = getattr(b, side)
-                    if value is None:
-                        continue
-                    got = self.quantity(value, "any", loc + (side,))
-                    if got is None:
-                        continue
-                    if dims is not None and got[2] != dims and written_unit(value, "any"):
-                        self.fail(loc + (side,), f"{value!r} has dimension {got[2]}, but {e.text.strip()!r} "
-                                                 f"is in {dims}")
-                    if side == "min":
-                        lo = got[0]
-                    else:
-                        hi = got[0]
-                    unit = unit or got[1]
-                if lo is not None and hi is not None and lo > hi:
-                    self.fail(loc, f"min {b.min!r} is above max {b.max!r}")
-                if e is None:
-                    continue
-                name = b.name or (f"{'end ' if at_end else ''}{e.text.strip()}")
-                taken = [x.name for x in out] + ["working volume", "OTR ceiling", "heat removal"] + \
-                    [f"pump {f}" for f in self.raw.feeds]
-                if name in taken:
-                    self.fail(loc + ("name",), f"limit name {name!r} is already used; give each limit its own name")
-                out.append(Bound(name, e, lo, hi, unit, at_end, key_text(loc)))
+                got = self.bound(b, (group, i), at_end, species_dims, env, [x.name for x in out])
+                if got is not None:
+                    out.append(got)
         return out
+
+    def bound(self, b, loc, at_end, species_dims, env, taken, prefix=""):
+        """One checked :class:`Bound` from a limit entry ``b`` (schema.BoundIn) at ``loc``,
+        or None after recording its issues. ``taken``: limit names already used;
+        ``prefix`` goes before a default name."""
+        e = self.expression(b.expression, loc + ("expression",), env)
+        if b.min is None and b.max is None:
+            self.fail(loc, "give 'min', 'max' or both")
+            return None
+        lo = hi = None
+        unit = ""
+        dims = species_dims.get(e.text.strip()) if e is not None else None
+        for side in ("min", "max"):
+            value = getattr(b, side)
+            if value is None:
+                continue
+            got = self.quantity(value, "any", loc + (side,))
+            if got is None:
+                continue
+            if dims is not None and got[2] != dims and written_unit(value, "any"):
+                self.fail(loc + (side,), f"{value!r} has dimension {got[2]}, but {e.text.strip()!r} "
+                                         f"is in {dims}")
+            if side == "min":
+                lo = got[0]
+            else:
+                hi = got[0]
+            unit = unit or got[1]
+        if lo is not None and hi is not None and lo > hi:
+            self.fail(loc, f"min {b.min!r} is above max {b.max!r}")
+        if e is None:
+            return None
+        name = b.name or (prefix + f"{'end ' if at_end else ''}{e.text.strip()}")
+        taken = list(taken) + ["working volume", "OTR ceiling", "heat removal"] + \
+            [f"pump {f}" for f in self.raw.feeds]
+        if name in taken:
+            self.fail(loc + ("name",), f"limit name {name!r} is already used; give each limit its own name")
+            return None
+        return Bound(name, e, lo, hi, unit, at_end, key_text(loc))
 
     def _horizon(self):
         h = self.raw.horizon.end_time

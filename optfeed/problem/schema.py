@@ -147,6 +147,41 @@ class UncertaintyIn(_Strict):
     monte_carlo: MonteCarloIn = Field(default_factory=MonteCarloIn)
 
 
+class BetweenIn(_Strict):
+    between: list[Scalar]
+    guess: Optional[Scalar] = None
+
+
+class PhaseIn(_Strict):
+    name: Text
+    until: Optional[Union[Scalar, BetweenIn]] = None  # a time, {between: [a, b]}, or a condition 'S < 0.5 g/L'
+    # 'off' (YAML reads a bare off as false): every pump off; or feed -> off / {min, max}
+    feeds: Optional[Union[StrictBool, Literal["off"], dict[str, Union[StrictBool, Literal["off"], "PumpRangeIn"]]]] = None
+    parameters: dict[str, Scalar] = Field(default_factory=dict)
+    rates: dict[str, Scalar] = Field(default_factory=dict)
+    limits: list[BoundIn] = Field(default_factory=list)
+    description: Text = ""
+
+
+class PumpRangeIn(_Strict):
+    min: Optional[Scalar] = None
+    max: Optional[Scalar] = None
+
+
+class AdditionIn(_Strict):
+    sample: Optional[Scalar] = None  # volume taken out
+    bolus: Optional[Scalar] = None  # volume added
+    amounts: dict[str, Scalar] = Field(default_factory=dict)  # bolus: species -> amount it holds
+    at: Optional[Union[Scalar, list[Scalar]]] = None
+    every: Optional[Scalar] = None
+    start: Optional[Scalar] = None  # with every: first time (default: one interval in)
+    stop: Optional[Scalar] = None  # with every: last time at most (default: before the end)
+    description: Text = ""
+
+
+PhaseIn.model_rebuild()
+
+
 class ProblemIn(_Strict):
     name: Text = ""
     description: Text = ""
@@ -163,3 +198,5 @@ class ProblemIn(_Strict):
     objective: Optional[ObjectiveIn] = None
     solver: SolverIn = Field(default_factory=SolverIn)
     uncertainty: Optional[UncertaintyIn] = None
+    phases: list[PhaseIn] = Field(default_factory=list)
+    additions: list[AdditionIn] = Field(default_factory=list)

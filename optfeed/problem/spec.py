@@ -337,6 +337,88 @@ class Uncertainty:
 
 
 @dataclass(frozen=True)
+class PhaseEnd:
+    """What ends a phase.
+
+    kind : str
+        'at' (a fixed time ``time``), 'between' (a time ``optimize`` chooses within
+        ``lower``..``upper``, ``guess`` to start from; ``check`` reads it from the
+        schedule), 'when' (the first moment ``condition`` crosses ``level``, found by
+        event detection in simulation and as a switching constraint in the NLP) or
+        'run' (the last phase: it ends with the run).
+    time, lower, upper, guess : float or None
+        h.
+    condition : Expr or None
+        For 'when': the expression watched.
+    level : float or None
+        For 'when', internal units.
+    falling : bool
+        For 'when': True if the phase ends when ``condition`` falls to ``level``
+        (written ``<`` or ``<=``), False when it rises to it.
+    text : str
+        As written (for reports).
+    """
+
+    kind: str
+    time: float | None = None
+    lower: float | None = None
+    upper: float | None = None
+    guess: float | None = None
+    condition: Expr | None = None
+    level: float | None = None
+    falling: bool = True
+    text: str = ""
+
+
+@dataclass(frozen=True)
+class Phase:
+    """One stretch of a run over which the model and the pumps' ranges are fixed.
+
+    Attributes
+    ----------
+    name : str
+    end : PhaseEnd
+    pumps : dict
+        Feed name -> (min, max) L/h in this phase, for the feeds whose range differs
+        from the feed's own; (0, 0) is a pump that is off.
+    parameters : dict
+        Parameter name -> value (internal units) in this phase.
+    rates : dict
+        Named rate or species -> Expr that replaces its expression in this phase.
+    bounds : tuple of Bound
+        Extra path limits that hold only in this phase.
+    key : str
+        Where it is written (``phases[1]``).
+    """
+
+    name: str
+    end: PhaseEnd
+    pumps: dict = field(default_factory=dict)
+    parameters: dict = field(default_factory=dict)
+    rates: dict = field(default_factory=dict)
+    bounds: tuple = ()
+    key: str = ""
+
+
+@dataclass(frozen=True)
+class Addition:
+    """A discrete change of the broth at a fixed time: a state jump.
+
+    kind : 'sample' (``volume`` L taken out, concentrations unchanged) or 'bolus'
+        (``volume`` L added holding ``amounts``: species -> amount in internal units
+        of concentration x volume, e.g. g; every other diluted species is diluted).
+    time : float, h.
+    key : str, where it is written (``additions[0]``).
+    """
+
+    kind: str
+    time: float
+    volume: float
+    amounts: dict = field(default_factory=dict)
+    key: str = ""
+
+
+@dataclass(frozen=True)
 class Problem:
     """A checked fed-batch problem. Build it with :func:`optfeed.load_problem`."""
 
@@ -354,6 +436,8 @@ class Problem:
     objective: Objective | None
     settings: Settings = field(default_factory=Settings)
     uncertainty: Uncertainty | None = None  # None: no uncertainty section
+    phases: tuple = ()  # of Phase, in order; () is one phase over the whole run
+    additions: tuple = ()  # of Addition, by time
     data: dict = field(repr=False, default_factory=dict)
     warnings: tuple = field(repr=False, default=())  # of optfeed.errors.Issue: units that look wrong
 
@@ -378,6 +462,10 @@ class Problem:
         if self.uncertainty is not None:
             u = self.uncertainty
             parts.append(f"{len(u.values)} uncertain value(s), {u.scenarios} scenario(s)")
+        if self.phases:
+            parts.append(f"phases {', '.join(ph.name for ph in self.phases)}")
+        if self.additions:
+            parts.append(f"{len(self.additions)} addition(s)")
         if self.warnings:
             parts.append(f"{len(self.warnings)} unit warning(s)")
         return f"Problem({self.name!r} from {self.source!r}: {'; '.join(parts)})"

@@ -1,0 +1,119 @@
+"""Phases and additions at run time: each phase's model and constants, and the jumps.
+
+A problem without a ``phases`` section is one phase over the whole run. With one,
+every phase shares the state vector of the problem's model (so a run's state passes
+from one phase to the next unchanged) and differs in its right-hand side (rates it
+replaces), its constants (values it changes) and the pumps' ranges.
+
+Additions are state jumps ``x+ = jump(x-)`` at fixed times, in internal units (the
+states are concentrations, the volume in L, the cumulative amounts fed):
+
+* a sample of volume v: V -> V - v; concentrations unchanged;
+* a bolus of volume v holding amounts m_i: V -> V + v; a species the feed dilutes
+  -> (C V + m) / (V + v); its cumulative amount fed ``fed_<s>`` grows by m (a bolus
+  counts as fed substrate for yields and caps).
+
+Species with ``dilute: false`` (per-cell or extensive quantities) are left as they
+are by both, and so are species whose balance is written in full (``derivatives``):
+the tool cannot tell what they are; write such a quantity as a concentration if
+samples or boluses should change it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import casadi as ca
+import numpy as np
+
+from .model import Model, build_model
+from .problem.spec import Addition, Phase, PhaseEnd, Problem
+
+
+def phases_of(problem: Problem) -> tuple:
+    """The run's phases: the file's, or one phase 'run' over the whole run."""
+    return problem.phases or (Phase("run", PhaseEnd("run")),)
+
+
+def phase_problem(problem: Problem, phase: Phase) -> Problem:
+    """``problem`` with the rates and species rates that ``phase`` replaces.
+
+    Its parameters are unchanged: a phase's values are constants
+    (:func:`phase_constants`), so every phase's model has the same constants vector.
+    """
+    if not phase.rates:
+        return problem
+    rates = tuple((n, phase.rates.get(n, e)) for n, e in problem.rates)
+    species = tuple(dataclasses.replace(s, rate=phase.rates[s.name]) if s.name in phase.rates else s
+                    for s in problem.species)
+    return dataclasses.replace(problem, rates=rates, species=species)
+
+
+def phase_models(problem: Problem, fed: str = "all") -> list[Model]:
+    """One model per phase (the same object where a phase replaces no rate).
+
+    ``fed`` as in :func:`optfeed.model.build_model`; a phase's own limits count as
+    users of ``fed_<s>`` states.
+    """
+    extra = tuple(b for ph in problem.phases for b in ph.bounds)
+    base_problem = dataclasses.replace(problem, bounds=problem.bounds + extra) if extra else problem
+    base = build_model(base_problem, fed=fed)
+    if extra:
+        base.problem = problem
+    out = []
+    for ph in phases_of(problem):
+        if not ph.rates:
+            out.append(base)
+            continue
+        m = build_model(phase_problem(base_problem, ph), fed=fed)
+        m.problem = problem
+        if m.state_names != base.state_names:  # cannot happen: rates do not change the states
+            raise AssertionError("a phase changed the state vector")
+        out.append(m)
+    return out
+
+
+def phase_constants(model: Model, phase: Phase, p):
+    """The constants vector ``p`` (numeric, or CasADi) with ``phase``'s values in."""
+    if not phase.parameters:
+        return p
+    if isinstance(p, (ca.MX, ca.SX)):
+        entries = [p[i] for i in range(p.shape[0])]
+        for name, value in phase.parameters.items():
+            entries[model.constant_index(name)] = value
+        return ca.vertcat(*entries)
+    p = np.array(p, dtype=float, copy=True)
+    for name, value in phase.parameters.items():
+        p[..., model.constant_index(name)] = value
+    return p
+
+
+def jump(model: Model, addition: Addition, x):
+    """State right after ``addition`` from the state ``x`` right before it (numeric
+    or CasADi; see the module docstring)."""
+    V_i = model.index("V")
+    V = x[V_i]
+    symbolic = isinstance(x, (ca.MX, ca.SX))
+    entries = [x[i] for i in range(model.nx)]
+    if addition.kind == "sample":
+        entries[V_i] = V - addition.volume
+    else:
+        V_new = V + addition.volume
+        for i, s in enumerate(model.problem.species):
+            if s.dilute:
+                entries[i] = (x[i] * V + addition.amounts.get(s.name, 0.0)) / V_new
+        for name, amount in addition.amounts.items():
+            key = f"fed_{name}"
+            if key in model.state_names:
+                k = model.index(key)
+                entries[k] = x[k] + amount
+        entries[V_i] = V_new
+    return ca.vertcat(*entries) if symbolic else np.array([float(e) for e in entries])
+
+
+def condition_function(model: Model, end: PhaseEnd) -> ca.Function:
+    """(t, x, u, p) -> distance of a 'when' phase end from its level, above zero
+    while the phase goes on and zero at its end: ``condition - level`` for a
+    falling condition (``S < 0.5 g/L``), ``level - condition`` for a rising one."""
+    value = model.expression(end.condition) - end.level
+    return model.function_p("until", [value if end.falling else -value])
