@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 import time
 from dataclasses import dataclass, field
 
@@ -18,6 +19,66 @@ from .provenance import problem_digest, stamp
 from .results import result_repr, result_trajectory_table
 from .schedule import Schedule, checked_schedule, load_schedule
 from .simulate import Trajectory, simulate
+
+
+@dataclass(frozen=True)
+class PhaseRow:
+    """One phase of a simulated run: ``start`` and ``end`` in h; ``how`` it ended in
+    words ('fixed time', 'schedule', 'condition S < 0.5 g/L', 'end of run', 'never
+    ended')."""
+
+    name: str
+    start: float
+    end: float
+    how: str
+
+
+@dataclass(frozen=True)
+class AdditionRow:
+    """One addition applied: ``time`` h, ``kind`` ('sample' or 'bolus'), ``volume``
+    in mL (taken out for a sample, added for a bolus), ``amounts`` as written in
+    the problem's internal units, ``key`` where it is written."""
+
+    time: float
+    kind: str
+    volume: float
+    amounts: dict
+    key: str
+
+
+def phase_rows(problem: Problem, traj: Trajectory, end_time: float) -> tuple:
+    """:class:`PhaseRow` per phase that ran in ``traj``."""
+    if not problem.phases:
+        return ()
+    rows, start = [], 0.0
+    for ph in problem.phases:
+        if ph.name in traj.switches:
+            end = traj.switches[ph.name]
+            how = {"at": "fixed time", "between": "schedule", "when": f"condition {ph.end.text}"}[ph.end.kind]
+        elif ph.name == traj.unended:
+            end, how = end_time, "never ended"
+        elif ph.end.kind == "run":
+            end, how = end_time, "end of run"
+        else:
+            break  # it never started
+        rows.append(PhaseRow(ph.name, float(start), float(end), how))
+        if ph.name == traj.unended:
+            break
+        start = end
+    return tuple(rows)
+
+
+def addition_rows(traj: Trajectory) -> tuple:
+    return tuple(AdditionRow(a.time, a.kind, a.volume * 1e3, dict(a.amounts), a.key) for a, _ in traj.additions)
+
+
+def never_ended(problem: Problem, name: str, end_time: float) -> str:
+    """One sentence: the 'when' phase ``name`` did not end before ``end_time`` h."""
+    ph = next(p for p in problem.phases if p.name == name)
+    m = re.match(r"^(?P<expr>.+?)\s*(?:<=|>=|<|>)\s*(?P<level>.+)$", ph.end.text)
+    expr, level = (m["expr"], m["level"]) if m else (ph.end.text, "its level")
+    side = "above" if ph.end.falling else "below"
+    return f"phase {name!r} never ended: {expr} stayed {side} {level} until {end_time:g} h"
 
 
 @dataclass(frozen=True)
@@ -47,6 +108,11 @@ class CheckResult:
         With ``uncertainty=True``: the schedule judged over a Monte Carlo sample of
         the uncertain values (:mod:`optfeed.montecarlo`). The status, message and
         exit code stay those of the nominal run; these figures stand beside them.
+    phases : tuple of PhaseRow
+        For a problem with phases: each phase's start, end and how it ended (a
+        phase that never started is left out).
+    additions : tuple of AdditionRow
+        The additions applied: time, kind, volume.
     """
 
     status: str
@@ -60,6 +126,8 @@ class CheckResult:
     use: dict = field(repr=False, default_factory=dict)
     record: dict = field(default_factory=dict)
     uncertainty: MonteCarloResult | None = field(repr=False, default=None)
+    phases: tuple = ()
+    additions: tuple = ()
 
     @property
     def exit_code(self) -> int:
@@ -156,9 +224,9 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     tf = run_length(problem, end_time)
     model = build_model(problem)
     if isinstance(schedule, Schedule):
-        schedule = checked_schedule(schedule, model.feed_names, tf)
+        schedule = checked_schedule(schedule, model.feed_names, tf, problem.phases)
     else:
-        schedule = load_schedule(schedule, model.feed_names, tf)
+        schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}
     limits = build_limits(model)
@@ -184,7 +252,13 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
     reports, use = judge(model, limits, traj)
     outcome = outcome_of(model, traj, tf)
     broken = sorted((r for r in reports if r.violated), key=lambda r: r.first_violation)
-    if broken:
+    phases, additions = phase_rows(problem, traj, tf), addition_rows(traj)
+    if traj.unended is not None:
+        status = st.LIMIT_BROKEN
+        message = never_ended(problem, traj.unended, tf)
+        if broken:
+            message += f"; {len(broken)} limit(s) broken, first: {broken[0].name} at {broken[0].first_violation:.4g} h"
+    elif broken:
         first = broken[0]
         status = st.LIMIT_BROKEN
         message = (f"{len(broken)} limit(s) broken; first: {first.name} at {first.first_violation:.4g} h")
@@ -195,7 +269,8 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         if used:
             tight = max(used, key=lambda r: r.peak_use)
             message += f"; highest use: {tight.name} at {tight.peak_use:.1f} %"
-    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, beside())
+    return CheckResult(status, message, reports, outcome, tf, problem, schedule, traj, use, record, beside(),
+                       phases, additions)
 
 
 def run_length(problem: Problem, end_time: float | None = None, source: str = "--end-time") -> float:

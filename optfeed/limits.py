@@ -12,10 +12,22 @@ trust the samples alone: around every local peak of a limit's use (and next to e
 pump change, where the samples sit on both sides of the change) it integrates again
 with a finer output to find the extremum between samples, and it locates the moment
 a limit is first crossed by narrowing down between samples, to well under a second.
+
+With phases (:mod:`optfeed.phases`) every sample is judged with the model and the
+constants of the phase it lies in. A phase's own limits (``phases[i].limits``) hold
+only over that phase's time window (``Limit.phase``). A phase's pump range
+(``phases[i].feeds``) is a limit named ``pump <feed> in <phase>`` (kind 'phase
+pump'), judged on the schedule as written: the volume it asks that pump for outside
+the phase's range, within the phase's window, may be at most
+:data:`PHASE_PUMP_ALLOWANCE` of the working volume. (The pump controller keeps a
+pump that a phase turns off off whatever the schedule asks; the allowance keeps a
+phase end found by event detection a hair after the schedule's step from counting
+as a breach, while any real feeding in the wrong phase does.)
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import casadi as ca
@@ -36,6 +48,7 @@ REFINE_BAND = 0.02
 MAX_REFINED = 40
 REFINE_ROUNDS = 3
 CROSSING_ROUNDS = 5
+PHASE_PUMP_ALLOWANCE = 1e-4  # of the working volume: what a schedule may ask outside a phase's pump range
 
 
 def bound_scale(lower, upper) -> float:
@@ -69,6 +82,10 @@ class Limit:
         it as a bound on that state's variables rather than as a constraint row).
     on_pump : bool
         g depends on the pump rates (then it jumps where a pump changes).
+    phase : str or None
+        The phase whose time window the limit holds in (None: the whole run).
+        Kind 'phase pump' is a pump's range in that phase (g = the rate, L/h),
+        judged by the volume asked outside it (see the module docstring).
     """
 
     name: str
@@ -82,6 +99,7 @@ class Limit:
     key: str
     state: int | None = None
     on_pump: bool = False
+    phase: str | None = None
 
     def scale(self) -> float:
         """Magnitude that relative slack and violations are measured against
@@ -166,11 +184,11 @@ def build_limits(model: Model) -> list[Limit]:
     p = model.problem
     out = []
 
-    def add(name, kind, expr, lower, upper, unit, factor, at_end, key):
+    def add(name, kind, expr, lower, upper, unit, factor, at_end, key, phase=None):
         expr = ca.SX(expr)
         out.append(Limit(name, kind, expr, lower, upper, unit, factor, at_end, key,
-                         None if kind == "pump" else _state_index(model, expr),
-                         bool(ca.depends_on(expr, model.u))))
+                         None if kind in ("pump", "phase pump") else _state_index(model, expr),
+                         bool(ca.depends_on(expr, model.u)), phase))
 
     for j, f in enumerate(p.feeds):
         add(f"pump {f.name}", "pump", model.u[j], f.min_rate, f.max_rate, f.unit, factor_to(f.unit), False,
@@ -193,6 +211,16 @@ def build_limits(model: Model) -> list[Limit]:
         unit = b.unit
         add(b.name, "end" if b.at_end else "path", model.expression(b.expression), b.lower, b.upper, unit,
             factor_to(unit) if unit else 1.0, b.at_end, b.key)
+    feeds = {f.name: (j, f) for j, f in enumerate(p.feeds)}
+    for ph in p.phases:
+        for name, (lo, hi) in ph.pumps.items():
+            j, f = feeds[name]
+            add(f"pump {name} in {ph.name}", "phase pump", model.u[j], lo, hi, f.unit, factor_to(f.unit), False,
+                f"{ph.key}.feeds", ph.name)
+        for b in ph.bounds:
+            unit = b.unit
+            add(b.name, "path", model.expression(b.expression), b.lower, b.upper, unit,
+                factor_to(unit) if unit else 1.0, False, b.key, ph.name)
     return out
 
 
@@ -202,9 +230,77 @@ def limit_function(model: Model, limits, p=None) -> ca.Function:
 
 
 def evaluate(model: Model, limits, traj: Trajectory) -> np.ndarray:
-    """g of every limit at every sample: shape (n_samples, n_limits), internal units."""
-    f = limit_function(model, limits, traj.constants)
-    return _apply(f, traj.t, traj.x, traj.u, len(limits))
+    """g of every limit at every sample: shape (n_samples, n_limits), internal units
+    (each sample with its phase's model and constants)."""
+    return _values(_phase_functions(model, limits, traj), traj, len(limits))
+
+
+def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
+    """(t, x, u) -> g of every limit, one Function per phase of ``traj`` (one without
+    phases), each with that phase's model and constants."""
+    models = traj.phase_models
+    if traj.phase is None or not models:
+        return [limit_function(model, limits, traj.constants)]
+    out, rebuilt = [], {}
+    for k, m in enumerate(models):
+        if m is model:
+            exprs = [ca.SX(l.expr) for l in limits]
+        else:
+            if id(m) not in rebuilt:
+                rebuilt[id(m)] = {l.name: l for l in build_limits(m)}
+            mine = rebuilt[id(m)]
+            old = ca.vertcat(model.t, model.x, model.u, model.p)
+            new = ca.vertcat(m.t, m.x, m.u, m.p)
+            exprs = [ca.SX(mine[l.name].expr) if l.name in mine else ca.substitute(ca.SX(l.expr), old, new)
+                     for l in limits]
+        out.append(m.function("g", [ca.vertcat(*exprs)], p=traj.phase_constants(k)))
+    return out
+
+
+def _values(fs, traj, n_limits) -> np.ndarray:
+    if len(fs) == 1:
+        return _apply(fs[0], traj.t, traj.x, traj.u, n_limits)
+    g = np.empty((len(traj.t), n_limits))
+    for k, f in enumerate(fs):
+        sel = traj.phase == k
+        if sel.any():
+            g[sel] = _apply(f, traj.t[sel], traj.x[sel], traj.u[sel], n_limits)
+    return g
+
+
+def _fn(fs, traj, k):
+    """The limit Function for sample ``k``'s phase."""
+    return fs[0] if len(fs) == 1 else fs[traj.phase[k]]
+
+
+def phase_window(traj: Trajectory, name: str) -> np.ndarray:
+    """Boolean mask of the samples of ``traj`` that lie in phase ``name``."""
+    from .phases import phases_of
+
+    names = [ph.name for ph in phases_of(traj._simulator.model.problem)] if traj._simulator else []
+    if traj.phase is None or name not in names:
+        return np.zeros(len(traj.t), dtype=bool)
+    return traj.phase == names.index(name)
+
+
+def asked_outside(traj: Trajectory, j: int, lower: float, upper: float, t0: float, t1: float):
+    """The volume (L) the schedule of ``traj`` asks pump ``j`` for outside
+    [``lower``, ``upper``] L/h between ``t0`` and ``t1`` h, with the running total
+    as (times h, volumes L): (total, times, volumes). Each schedule stretch is
+    integrated by the trapezoid rule over 256 intervals (exact for steps)."""
+    times, vols, total = [t0], [0.0], 0.0
+    for seg in traj.requested:
+        a, b = max(seg.start, t0), min(seg.end, t1)
+        if not b > a:
+            continue
+        tt = np.linspace(a, b, 257)
+        rate = seg.rates(tt)[:, j]
+        excess = np.maximum(rate - upper, 0.0) + np.maximum(lower - rate, 0.0)
+        cum = np.concatenate([[0.0], np.cumsum(0.5 * (excess[1:] + excess[:-1]) * np.diff(tt))])
+        times += list(tt[1:])
+        vols += list(total + cum[1:])
+        total += float(cum[-1])
+    return total, np.array(times), np.array(vols)
 
 
 def _apply(f, t, x, u, n_limits) -> np.ndarray:
@@ -217,17 +313,31 @@ def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> t
     """A :class:`LimitReport` per limit for trajectory ``traj``; also returns the
     per-sample use (% of the upper bound) as a dict name -> array. A limit counts as
     broken where it is exceeded by more than ``rel_tol`` of its bound; extrema and
-    first crossings between samples are found as the module docstring says."""
-    f = limit_function(model, limits, traj.constants)
-    g = _apply(f, traj.t, traj.x, traj.u, len(limits))
+    first crossings between samples are found as the module docstring says. A
+    limit of one phase is judged over that phase's samples only (its use is NaN
+    elsewhere); a phase's pump range by the volume asked outside it."""
+    fs = _phase_functions(model, limits, traj)
+    g = _values(fs, traj, len(limits))
     reports, use = [], {}
     for i, lim in enumerate(limits):
+        window = None if lim.phase is None else phase_window(traj, lim.phase)
+        if lim.kind == "phase pump":
+            reports.append(_judge_phase_pump(model, lim, traj, window))
+            continue
+        if window is not None and not window.any():  # the phase never started
+            reports.append(LimitReport(lim.name, lim.kind, lim.unit,
+                                       None if lim.lower is None else lim.lower * lim.factor,
+                                       None if lim.upper is None else lim.upper * lim.factor,
+                                       math.nan, math.nan, "max", None, 0.0, None, lim.at_end, lim.key))
+            continue
         if lim.at_end:
             values, times = g[-1:, i], traj.t[-1:]
             extra_t, extra_v = np.zeros(0), np.zeros(0)
         else:
             values, times = g[:, i], traj.t
-            extra_t, extra_v = _between_samples(traj, f, i, lim, values)
+            extra_t, extra_v = _between_samples(traj, fs, i, lim, values, window)
+            if window is not None:
+                values, times = values[window], times[window]
         all_t = np.concatenate([times, extra_t])
         all_v = np.concatenate([values, extra_v])
         slack, side = lim.slack(all_v)
@@ -235,11 +345,13 @@ def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> t
         tol = lim.tolerance(rel_tol)
         first = None
         if slack[k] < -tol:
-            first = _first_crossing(traj, f, i, lim, values, extra_t, extra_v, tol)
+            first = _first_crossing(traj, fs, i, lim, g[:, i], extra_t, extra_v, tol, window)
         peak = None
         if lim.upper is not None and lim.upper > 0:
             if not lim.at_end:  # an end bound says nothing about the run before the end
                 use[lim.name] = 100.0 * g[:, i] / lim.upper
+                if window is not None:
+                    use[lim.name] = np.where(window, use[lim.name], np.nan)
             peak = float(np.max(100.0 * all_v / lim.upper))
         conv = lim.factor
         reports.append(LimitReport(
@@ -252,6 +364,31 @@ def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> t
             peak_use=peak, at_end=lim.at_end, key=lim.key,
         ))
     return tuple(reports), use
+
+
+def _judge_phase_pump(model, lim, traj, window) -> LimitReport:
+    """A phase's pump range, judged by the volume asked outside it (module docstring);
+    the report is in the vessel's volume unit, its upper bound the allowance."""
+    vessel = model.problem.vessel
+    unit = vessel.unit
+    conv = factor_to(unit)
+    allowance = PHASE_PUMP_ALLOWANCE * vessel.working_volume
+    j = model.feed_names.index(lim.name[len("pump "):].rsplit(" in ", 1)[0])
+    if window is None or not window.any() or not traj.requested:
+        total, t0, times, vols = 0.0, 0.0, np.zeros(1), np.zeros(1)
+    else:
+        t0, t1 = float(traj.t[window][0]), float(traj.t[window][-1])
+        total, times, vols = asked_outside(traj, j, lim.lower, lim.upper, t0, t1)
+    first = None
+    if total > allowance:
+        k = int(np.argmax(vols > allowance))
+        first = float(times[k])
+    return LimitReport(
+        name=lim.name, kind=lim.kind, unit=unit, lower=None, upper=allowance * conv,
+        min_slack=(allowance - total) * conv, time_min_slack=float(times[-1]) if len(times) else float(t0),
+        side="max", first_violation=first, worst_violation=max(0.0, total - allowance) * conv,
+        peak_use=100.0 * total / allowance, at_end=False, key=lim.key,
+    )
 
 
 def _local_minima(slack, piece) -> np.ndarray:
@@ -270,12 +407,14 @@ def _local_minima(slack, piece) -> np.ndarray:
     return np.nonzero(left & right & interior)[0]
 
 
-def _between_samples(traj, f, i, lim, values):
+def _between_samples(traj, fs, i, lim, values, window=None):
     """Extra (times, values) of limit ``i`` found by re-integrating around the
-    samples where its slack has a local minimum."""
+    samples where its slack has a local minimum (within ``window``, a sample mask)."""
     if lim.kind in ("pump", "setting") or traj.piece is None or traj._simulator is None:
         return np.zeros(0), np.zeros(0)
     slack, _ = lim.slack(values)
+    if window is not None:
+        slack = np.where(window, slack, np.inf)
     minima = _local_minima(slack, traj.piece)
     if len(minima) == 0:
         return np.zeros(0), np.zeros(0)
@@ -298,6 +437,7 @@ def _between_samples(traj, f, i, lim, values):
         if hi == lo:
             continue
         t_lo, x_lo, t_hi = traj.t[lo], traj.x[lo], traj.t[hi]
+        f = _fn(fs, traj, lo)
         for _ in range(REFINE_ROUNDS):
             t, x, u = traj.between(lo, t_lo, x_lo, t_hi)
             v = _apply(f, t, x, u, f.size1_out(0))[:, i]
@@ -311,10 +451,12 @@ def _between_samples(traj, f, i, lim, values):
     return np.array(ts), np.array(vs)
 
 
-def _first_crossing(traj, f, i, lim, values, extra_t, extra_v, tol) -> float:
+def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None) -> float:
     """First time (h) the slack of limit ``i`` drops below -tol, located between
-    samples by narrowing the interval where it first happens."""
+    samples by narrowing the interval where it first happens (within ``window``)."""
     slack, _ = lim.slack(values)
+    if window is not None:
+        slack = np.where(window, slack, np.inf)
     bad = np.nonzero(slack < -tol)[0]
     t_bad = traj.t[bad[0]] if len(bad) else np.inf
     if len(extra_t):
@@ -333,6 +475,7 @@ def _first_crossing(traj, f, i, lim, values, extra_t, extra_v, tol) -> float:
     if k < 0 or traj.piece[k] != traj.piece[min(k + 1, len(traj.t) - 1)] or slack[k] < -tol:
         return float(t_bad)  # violated from the start of a piece (a pump change) or of the run
     t_lo, x_lo, t_hi = traj.t[k], traj.x[k], float(t_bad)
+    f = _fn(fs, traj, k)
     for _ in range(CROSSING_ROUNDS):
         t, x, u = traj.between(k, t_lo, x_lo, t_hi)
         s, _ = lim.slack(_apply(f, t, x, u, f.size1_out(0))[:, i])

@@ -192,13 +192,17 @@ def build_model(problem: Problem, fed: str = "all") -> Model:
 
     ``fed='all'`` keeps a ``fed_<s>`` state for every species a feed carries (for
     reports); ``fed='used'`` only those a limit or the objective uses (the optimizer's
-    leaner NLP).
+    leaner NLP); a list of species names keeps exactly those a feed carries (to build
+    a model with the states of another, see :func:`optfeed.phases.models_like`).
     """
     p = problem
     species = list(p.species)
     fed_species = [s.name for s in species if any(s.name in f.composition for f in p.feeds)]
     if fed == "used":
         keep = set(used_fed_species(p))
+        fed_species = [n for n in fed_species if n in keep]
+    elif not isinstance(fed, str):
+        keep = set(fed)
         fed_species = [n for n in fed_species if n in keep]
     has_integral = p.objective is not None and p.objective.integral is not None
     state_names = [s.name for s in species] + ["V"] + [f"fed_{n}" for n in fed_species]

@@ -282,9 +282,9 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     tf = run_length(problem, end_time)
     model = build_model(problem)
     if isinstance(schedule, Schedule):
-        schedule = checked_schedule(schedule, model.feed_names, tf)
+        schedule = checked_schedule(schedule, model.feed_names, tf, problem.phases)
     else:
-        schedule = load_schedule(schedule, model.feed_names, tf)
+        schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     limits = build_limits(model)
     drawn = scenario_set(problem, model, count=int(samples), seed=int(seed), method="random", nominal=False)
     if workers is None:

@@ -117,3 +117,22 @@ def condition_function(model: Model, end: PhaseEnd) -> ca.Function:
     falling condition (``S < 0.5 g/L``), ``level - condition`` for a rising one."""
     value = model.expression(end.condition) - end.level
     return model.function_p("until", [value if end.falling else -value])
+
+
+def models_like(model: Model) -> list[Model]:
+    """One model per phase of ``model.problem`` with exactly ``model``'s states (the
+    same ``fed_<s>`` states, however ``model`` was built); ``model`` itself where a
+    phase replaces no rate."""
+    problem = model.problem
+    fed = [n[len("fed_"):] for n in model.state_names if n.startswith("fed_")]
+    out = []
+    for ph in phases_of(problem):
+        if not ph.rates:
+            out.append(model)
+            continue
+        m = build_model(phase_problem(problem, ph), fed=fed)
+        m.problem = problem
+        if m.state_names != model.state_names:  # cannot happen: rates do not change the states
+            raise AssertionError("a phase changed the state vector")
+        out.append(m)
+    return out

@@ -186,7 +186,7 @@ def recipe(run_folder, unit: str | None = None, step: str = DEFAULT_STEP, start:
     if not sched_path.exists():
         raise InputError.one(str(sched_path), None, "", f"missing: the run ended '{summary.get('status', '?')}' "
                              "without a schedule")
-    original = load_schedule(sched_path, problem.feed_names, tf)
+    original = load_schedule(sched_path, problem.feed_names, tf, problem.phases)
 
     units = {f.name: _flow_unit(unit, "--unit") if unit else f.unit for f in problem.feeds}
     dt, step_unit = _time_step(step, tf)

@@ -27,6 +27,15 @@ separators. The header decides: ``;`` in it (outside the brackets) means ``;``.
 
 One rate column per feed; a ``<feed> growth`` column is optional (empty cell = 0).
 
+For a problem with phases a ``phase`` column (no unit) may name the phase each row's
+step lies in, in the problem's order; a phase whose end the schedule chooses
+(``until: {between: ...}``) ends at the time of the first row of a later phase::
+
+    time [h], glucose [mL/h], phase
+    0, 0, batch
+    5, 4, growth
+    12.5, 9, production
+
 YAML (``.yaml``/``.yml``)::
 
     interpolation: constant
@@ -34,6 +43,7 @@ YAML (``.yaml``/``.yml``)::
       glucose:
         - {time: 0 h, rate: 0 L/h}
         - {time: 4 h, rate: 10 mL/h, growth: 0.15 1/h}
+    phases: {growth: 12.5 h}       # the end of each phase the schedule chooses
 
 Internally a schedule is a list of :class:`Segment` objects over which every pump
 follows ``F_j(t) = (a_j + b_j * (t - start)) * exp(k_j * (t - start))``; the
@@ -50,7 +60,7 @@ import io
 import math
 import re
 import sys
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from decimal import Decimal
 from pathlib import Path
 
@@ -117,11 +127,15 @@ class Schedule:
     interpolation : 'constant' or 'linear'
     source : str
         File it came from ('' if built in code).
+    switch_times : dict
+        Phase name -> the time (h) it ends, for the phases whose end the schedule
+        chooses (``until: {between: ...}``); see :meth:`optfeed.simulate.Simulator.run`.
     """
 
     feeds: dict
     interpolation: str = "constant"
     source: str = ""
+    switch_times: dict = field(default_factory=dict)
 
     def segments(self, feed_names, end_time: float) -> list[Segment]:
         """Split [0, end_time] at every row time of every feed.
@@ -261,7 +275,7 @@ def round_schedule(schedule: Schedule, feeds, end_time: float | None = None, res
                     carry += (shown - float(text)) * length
             rates.append(float(text) * f_in)
         out[name] = FeedRows(tuple(rows.times), tuple(rates), tuple(rows.growth))
-    return Schedule(out, schedule.interpolation, schedule.source)
+    return Schedule(out, schedule.interpolation, schedule.source, dict(schedule.switch_times))
 
 
 def flow_factor(unit: str) -> float:
@@ -282,20 +296,32 @@ def _exact_text(internal: float, f_out: float, f_in: float) -> str:
     return repr(shown)
 
 
-def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None, note: str = "") -> None:
+def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None, note: str = "",
+                       phases=None) -> None:
     """Write ``schedule`` as CSV in the format :func:`load_schedule` reads.
 
     Rates are written in ``feed_units[name]`` (default L/h), each as the shortest
     text that reads back as exactly the same rate (see :func:`round_schedule`).
+    ``phases`` (the problem's phase names, in order) adds a ``phase`` column when
+    the schedule has ``switch_times``: rows are split at every switch time, so each
+    lies in one phase; a row lies in the first phase whose switch time comes after
+    it (a phase without a switch time gets no rows).
     """
     path = Path(path)
-    path.write_text(schedule_csv_text(schedule, feed_units, note))
+    path.write_text(schedule_csv_text(schedule, feed_units, note, phases))
 
 
-def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: str = "") -> str:
+def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: str = "", phases=None) -> str:
+    """The text :func:`write_schedule_csv` writes."""
     feed_units = feed_units or {}
     names = list(schedule.feeds)
-    times = sorted({t for rows in schedule.feeds.values() for t in rows.times})
+    times = {t for rows in schedule.feeds.values() for t in rows.times}
+    switches = dict(schedule.switch_times or {})
+    phase_names = list(phases or ())
+    with_phase = bool(phase_names and switches)
+    if with_phase:
+        times |= {float(v) for v in switches.values()}
+    times = sorted(times)
     buf = io.StringIO()
     for line in note.splitlines():
         buf.write(f"# {line}\n")
@@ -306,6 +332,8 @@ def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: 
         header.append(f"{name} [{feed_units.get(name, 'L/h')}]")
         if growth:
             header.append(f"{name} growth [1/h]")
+    if with_phase:
+        header.append("phase")
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(header)
     columns = []  # per feed: (values, growth) at every time, in one pass each
@@ -331,15 +359,27 @@ def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: 
             row.append(values[j])
             if growth:
                 row.append(repr(float(gs[j])))
+        if with_phase:
+            row.append(_phase_at(t, phase_names, switches))
         w.writerow(row)
     return buf.getvalue()
 
 
-def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = None) -> Schedule:
+def _phase_at(t: float, phase_names, switches) -> str:
+    """The phase a row at ``t`` (h) lies in: the first with a switch time after ``t``
+    (phases without one skipped), else the last."""
+    for name in phase_names[:-1]:
+        if name in switches and switches[name] > t:
+            return name
+    return phase_names[-1]
+
+
+def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = None, phases=()) -> Schedule:
     """Check a :class:`Schedule` built in code as strictly as a schedule file: a row
     table for every feed of ``feed_names`` and no other (a misspelt name is named,
     with the closest feed), times from 0 increasing and before ``end_time`` (h),
-    rates finite and not negative.
+    rates finite and not negative; ``switch_times`` as :func:`load_schedule` checks
+    a file's phase ends for a problem with ``phases``.
 
     Raises
     ------
@@ -371,6 +411,9 @@ def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = No
             issues.append(Issue(where, None, name, "times, rates and growth must be finite numbers"))
             continue
         issues += _check_rows(where, name, times, rates, growth, [None] * len(times), schedule.interpolation, end)
+    given = {str(n): (float(t), None, f"switch_times.{n}") for n, t in (schedule.switch_times or {}).items()}
+    if phases or given:
+        issues += _switch_issues(where, tuple(phases or ()), given, None, "switch_times")
     if issues:
         raise InputError(issues)
     return schedule
@@ -379,11 +422,15 @@ def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = No
 # ------------------------------------------------------------------ loading
 
 
-def load_schedule(path, feed_names, end_time: float | None = None) -> Schedule:
+def load_schedule(path, feed_names, end_time: float | None = None, phases=()) -> Schedule:
     """Read a schedule file (CSV or YAML) for a problem with ``feed_names``.
 
     Every feed must be scheduled; times must start at 0, increase, and (if
     ``end_time`` is given, h) lie before it; rates must be numbers in a flow unit.
+    ``phases`` are the problem's phases (:class:`~optfeed.problem.spec.Phase`): the
+    file must give the end of every phase whose end the schedule chooses, inside
+    its window and in the phases' order (a ``phase`` column in CSV, ``phases:`` in
+    YAML); a file that names phases for a problem without them is refused.
 
     Raises
     ------
@@ -392,9 +439,50 @@ def load_schedule(path, feed_names, end_time: float | None = None) -> Schedule:
     """
     path = str(path)
     end = math.inf if end_time is None else float(end_time)
+    phases = tuple(phases or ())
     if Path(path).suffix.lower() in (".yaml", ".yml"):
-        return _load_yaml(path, feed_names, end)
-    return _load_csv(path, feed_names, end)
+        return _load_yaml(path, feed_names, end, phases)
+    return _load_csv(path, feed_names, end, phases)
+
+
+def _switch_issues(path, phases, given: dict, default_line=None, default_key="phases") -> list:
+    """Issues with the phase ends ``given`` (name -> (time h, line, key)) for a
+    problem with ``phases``; a 'between' phase without an end is one too."""
+    names = [ph.name for ph in phases]
+    issues = []
+    if given and not phases:
+        name, (_, line, key) = next(iter(given.items()))
+        return [Issue(path, line, key, "this problem has no phases: leave the phases out of the schedule")]
+    for name, (t, line, key) in given.items():
+        if name not in names:
+            close = difflib.get_close_matches(name, names, n=2)
+            hint = f"; did you mean {', '.join(map(repr, close))}?" if close else f"; phases are {', '.join(names)}"
+            issues.append(Issue(path, line, key, f"{name!r} is not a phase of this problem{hint}"))
+            continue
+        e = phases[names.index(name)].end
+        if e.kind == "run":
+            issues.append(Issue(path, line, key, f"phase {name!r} is the last: it ends with the run"))
+        elif e.kind == "at":
+            issues.append(Issue(path, line, key, f"phase {name!r} ends {e.text}, fixed by the problem file: "
+                                                 "leave it out"))
+        elif e.kind == "when":
+            issues.append(Issue(path, line, key, f"phase {name!r} ends when {e.text}, found by simulation: "
+                                                 "leave it out"))
+        elif not e.lower <= t <= e.upper:
+            issues.append(Issue(path, line, key, f"phase {name!r} would end at {t:g} h, outside its window "
+                                                 f"({e.text})"))
+    known = sorted((names.index(n), t, line, key, n) for n, (t, line, key) in given.items() if n in names)
+    for (_, t0, _, _, n0), (_, t1, line, key, n1) in zip(known, known[1:]):
+        if t1 <= t0:
+            issues.append(Issue(path, line, key, f"phase {n1!r} would end at {t1:g} h, not after phase {n0!r} "
+                                                 f"({t0:g} h): phases end in the problem's order"))
+    for ph in phases:
+        if ph.end.kind == "between" and ph.name not in given:
+            issues.append(Issue(path, default_line, default_key,
+                                f"the schedule must give the end of phase {ph.name!r} ({ph.end.text}): a "
+                                "'phase' column in CSV (the first row of a later phase), 'phases: {"
+                                f"{ph.name}: 12 h}}' in YAML"))
+    return issues
 
 
 def _check_rows(path, name, times, rates, growth, lines, interpolation, end_time):
@@ -447,7 +535,7 @@ def _missing(path, feed_names, given, line):
     return issues
 
 
-def _load_csv(path, feed_names, end_time) -> Schedule:
+def _load_csv(path, feed_names, end_time, phases=()) -> Schedule:
     table = read_table(path)
     interpolation = "constant"
     for lineno, text in table.comments:
@@ -465,7 +553,13 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
                                                     "and a growth column per feed)")
     columns = []  # (feed name, 'rate'|'growth'|'time', factor)
     issues = []
+    phase_col = None
     for c, cell in enumerate(header):
+        if c and cell.strip().lower() == "phase":
+            if phase_col is not None:
+                issues.append(Issue(path, header_line, cell, "column appears twice"))
+            phase_col = c
+            continue
         got = header_cell(path, header_line, cell, c, "glucose [L/h]")
         if isinstance(got, Issue):
             issues.append(got)
@@ -497,12 +591,18 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
     issues = _missing(path, feed_names, given, header_line)
     if issues:
         raise InputError(issues)
+    if phase_col is not None and not phases:
+        raise InputError.one(path, header_line, header[phase_col],
+                             "this problem has no phases: leave the phase column out")
     table.check_width()
-    times, lines = [], []
+    times, lines, row_phase = [], [], []
     data = {n: ([], []) for n in feed_names}
     for lineno, cells in table.rows[1:]:
         growth_seen = {n: 0.0 for n in feed_names}
         rate_row = {}
+        if phase_col is not None:
+            row_phase.append(cells[phase_col])
+            cells = cells[:phase_col] + cells[phase_col + 1:]
         for (name, role, factor, cell), text_value in zip(columns, cells):
             if role == "growth" and text_value == "":
                 continue
@@ -528,17 +628,54 @@ def _load_csv(path, feed_names, end_time) -> Schedule:
         # a bad time shows up once per feed column: report it once
         unique = {(i.line, i.message): i for i in reversed(issues)}
         raise InputError(sorted(unique.values(), key=lambda i: (i.line or 0)))
-    return Schedule(feeds, interpolation, path)
+    switch_times = {}
+    if phases:
+        given, issues = _phase_column(path, header_line, phases, times, lines, row_phase) \
+            if phase_col is not None else ({}, [])
+        issues += _switch_issues(path, phases, given, header_line, "phase")
+        if issues:
+            raise InputError(issues)
+        switch_times = {n: v[0] for n, v in given.items()}
+    return Schedule(feeds, interpolation, path, switch_times)
 
 
-def _load_yaml(path, feed_names, end_time) -> Schedule:
+def _phase_column(path, header_line, phases, times, lines, row_phase):
+    """(phase name -> (end h, line, 'phase')) for the 'between' phases, and issues,
+    from a CSV schedule's phase column."""
+    names = [ph.name for ph in phases]
+    index, issues = [], []
+    for t, line, name in zip(times, lines, row_phase):
+        if name not in names:
+            close = difflib.get_close_matches(name, names, n=2)
+            hint = f"; did you mean {', '.join(map(repr, close))}?" if close else f"; phases are {', '.join(names)}"
+            what = f"{name!r} is not a phase of this problem" if name else "no phase named"
+            issues.append(Issue(path, line, "phase", what + hint))
+            return {}, issues
+        k = names.index(name)
+        if index and k < index[-1]:
+            issues.append(Issue(path, line, "phase", f"phase {name!r} comes before {names[index[-1]]!r} in the "
+                                                     "problem: the phase column must follow the phases' order"))
+            return {}, issues
+        index.append(k)
+    given = {}
+    for k, ph in enumerate(phases):
+        if ph.end.kind != "between":
+            continue
+        later = next((j for j, i in enumerate(index) if i > k), None)
+        if later is not None:
+            given[ph.name] = (times[later], lines[later], "phase")
+    return given, issues
+
+
+def _load_yaml(path, feed_names, end_time, phases=()) -> Schedule:
     data, lines = read_yaml(path)
     if not isinstance(data, dict):
         raise InputError.one(path, lines.get(()), "", "expected a mapping with 'feeds' (and optionally 'interpolation')")
-    unknown = set(data) - {"interpolation", "feeds", "description"}
+    unknown = set(data) - {"interpolation", "feeds", "description", "phases"}
     if unknown:
         k = sorted(unknown)[0]
-        raise InputError.one(path, lines.get((k,)), k, "unknown key; expected interpolation, feeds, description")
+        raise InputError.one(path, lines.get((k,)), k, "unknown key; expected interpolation, feeds, phases, "
+                                                       "description")
     interpolation = data.get("interpolation", "constant")
     if interpolation not in ("constant", "linear"):
         raise InputError.one(path, lines.get(("interpolation",)), "interpolation",
@@ -578,4 +715,21 @@ def _load_yaml(path, feed_names, end_time) -> Schedule:
         if issues:
             raise InputError(issues)
         feeds[name] = FeedRows(tuple(times), tuple(rates), tuple(growth))
-    return Schedule(feeds, interpolation, path)
+    given = {}
+    if "phases" in data:
+        ends = data["phases"]
+        if not isinstance(ends, dict):
+            raise InputError.one(path, lines.get(("phases",)), "phases",
+                                 "expected a mapping of phase name -> the time it ends, e.g. {growth: 12.5 h}")
+        for name, value in ends.items():
+            loc = ("phases", name)
+            try:
+                t = to_internal(parse_quantity(value, "time"))
+            except ValueError as exc:
+                raise InputError.one(path, lines.get(loc), key_text(loc), str(exc)) from None
+            given[str(name)] = (t, lines.get(loc), key_text(loc))
+    if phases or given:
+        issues = _switch_issues(path, phases, given, lines.get(("phases",), lines.get(())), "phases")
+        if issues:
+            raise InputError(issues)
+    return Schedule(feeds, interpolation, path, {n: v[0] for n, v in given.items()})

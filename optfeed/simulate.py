@@ -20,9 +20,10 @@ from dataclasses import dataclass, field
 import casadi as ca
 import numpy as np
 
-from .errors import SimulationError, TimeLimitReached
+from .errors import InputError, SimulationError, TimeLimitReached
 from .model import Model
-from .schedule import Schedule, ScheduleOverflow, Segment
+from .phases import condition_function, jump, models_like, phase_constants, phases_of
+from .schedule import IN_CODE, Schedule, ScheduleOverflow, Segment
 from .units import factor_to
 
 RTOL = 1e-10
@@ -46,6 +47,20 @@ class Trajectory:
     piece : ndarray of int, shape (n,)
         Index of the integrated piece each sample belongs to (samples of one piece
         lie on one smooth stretch of the run, without a pump change inside).
+    phase : ndarray of int, shape (n,), or None
+        For a problem with phases or additions: the index (in
+        :func:`optfeed.phases.phases_of` order) of the phase each sample lies in.
+    switches : dict
+        Phase name -> the time (h) it ended, for every phase that ended before the
+        end of the run ({} without phases).
+    unended : str or None
+        The name of a phase ended by a condition ('when') that never held before the
+        end of the run: it lasted to the end and the later phases never started.
+    additions : tuple of (Addition, float)
+        The additions applied, with the broth volume (L) right after each.
+    requested : tuple of Segment
+        With phases: the schedule's segments as it asks for them, before a phase
+        turned a pump off (for judging each phase's pump ranges).
     """
 
     t: np.ndarray
@@ -57,6 +72,13 @@ class Trajectory:
     _pieces: tuple = field(default=(), repr=False, compare=False)
     _simulator: object = field(default=None, repr=False, compare=False)
     _p: object = field(default=None, repr=False, compare=False)
+    phase: np.ndarray = field(default=None, repr=False, compare=False)
+    switches: dict = field(default_factory=dict, compare=False)
+    unended: str | None = field(default=None, compare=False)
+    additions: tuple = field(default=(), repr=False, compare=False)
+    requested: tuple = field(default=(), repr=False, compare=False)
+    _piece_phase: tuple = field(default=(), repr=False, compare=False)
+    _phase_p: tuple = field(default=(), repr=False, compare=False)
 
     def state(self, name: str) -> np.ndarray:
         return self.x[:, self.state_names.index(name)]
@@ -70,16 +92,33 @@ class Trajectory:
 
     @property
     def constants(self):
-        """The constants (``Model.p``) this run was simulated with; None if unknown."""
+        """The constants (``Model.p``) this run was simulated with; None if unknown.
+        With phases, a phase that changes parameter values ran with
+        :meth:`phase_constants` instead."""
         return self._p
+
+    def phase_constants(self, k: int):
+        """The constants phase ``k`` ran with (``constants`` with the phase's values in)."""
+        return self._phase_p[k] if self._phase_p else self._p
+
+    @property
+    def phase_models(self) -> tuple:
+        """The model each phase ran with (one entry, the simulator's model, without
+        phases); () if this trajectory was not made by a Simulator."""
+        if self._simulator is None:
+            return ()
+        return tuple(self._simulator.models)
 
     def between(self, i: int, t0: float, x0, t1: float):
         """Integrate again within sample ``i``'s piece from state ``x0`` at ``t0`` to
         ``t1`` (h) with a fine output: returns (t, x, u), ``t[0] = t0``."""
         if self._simulator is None or self.piece is None:
             raise ValueError("this trajectory was not made by a Simulator")
-        seg = self._pieces[self.piece[i]]
-        return self._simulator.between(seg, float(t0), np.asarray(x0, dtype=float), float(t1), self._p)
+        j = self.piece[i]
+        seg = self._pieces[j]
+        k = self._piece_phase[j] if self._piece_phase else 0
+        return self._simulator.between(seg, float(t0), np.asarray(x0, dtype=float), float(t1),
+                                       self.phase_constants(k), k)
 
 
 class Simulator:
@@ -97,36 +136,48 @@ class Simulator:
     def __init__(self, model: Model, points_per_piece: int = 40, rtol: float = RTOL, atol: float = ATOL):
         self.model = model
         self.points = points_per_piece
-        nu = model.nu
-        tau = ca.SX.sym("tau")
-        q = ca.SX.sym("q", 2 + 3 * nu)  # t0, h, a, b, k of the pump law
-        t0, h = q[0], q[1]
-        a, b, k = q[2:2 + nu], q[2 + nu:2 + 2 * nu], q[2 + 2 * nu:2 + 3 * nu]
-        u = (a + b * h * tau) * ca.exp(k * h * tau)
-        f = model.function_p("f", [model.rhs])
-        ode = h * f(t0 + h * tau, model.x, u, model.p)
-        grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
-        opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
-                "disable_internal_warnings": True}
-        self._integrator = ca.integrator("piece", "cvodes",
-                                         {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
-                                         0.0, grid, opts)
-        self._grid = grid
+        self._grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
+        problem = model.problem
+        self.phased = bool(problem.phases or problem.additions)
+        # one model per phase (the same object where a phase replaces no rate), each
+        # with its own integrator
+        self.models = models_like(model) if self.phased else [model]
+        self.phases = phases_of(problem) if self.phased else ()
+        made = {}
+        self._integrators = []
+        for m in self.models:
+            if id(m) not in made:
+                made[id(m)] = _integrator(m, self._grid, rtol, atol)
+            self._integrators.append(made[id(m)])
+        self._integrator = self._integrators[0]
+        self._conditions = [condition_function(m, ph.end) if ph.end.kind == "when" else None
+                            for m, ph in zip(self.models, self.phases)]
 
     def run(self, schedule: Schedule, end_time: float, min_points: int = SAMPLES, x0=None, p=None,
-            deadline: float | None = None) -> Trajectory:
+            deadline: float | None = None, switch_times: dict | None = None) -> Trajectory:
         """Integrate ``schedule`` from 0 to ``end_time`` (h) from ``x0`` (default:
         model.x0) with constants ``p`` (default: model.p0). ``deadline``
         (time.monotonic) stops it with :class:`~optfeed.errors.TimeLimitReached`.
+
+        With phases or additions the run goes phase by phase (see
+        :meth:`_run_phased`); ``switch_times`` (phase name -> h) gives the end of a
+        phase whose end a schedule chooses ('between'), before the schedule's own
+        ``switch_times``.
 
         Raises
         ------
         SimulationError
             When CVODES fails or the state stops being finite; it names the time and,
-            where it can, the quantity that blew up.
+            where it can, the quantity that blew up. Also when a sample would leave
+            no broth.
+        InputError
+            When nothing gives the end of a 'between' phase, or it lies outside its
+            window.
         """
         m = self.model
         p = m.p0 if p is None else np.asarray(p, dtype=float)
+        if self.phased:
+            return self._run_phased(schedule, end_time, min_points, x0, p, deadline, switch_times)
         try:
             segments = schedule.segments(m.feed_names, end_time)
         except ScheduleOverflow as exc:
@@ -151,13 +202,191 @@ class Simulator:
             piece=np.concatenate(index), _pieces=tuple(pieces), _simulator=self, _p=p,
         )
 
-    def between(self, seg: Segment, t0: float, x0, t1: float, p):
-        """Dense output (t, x, u) from state ``x0`` at ``t0`` to ``t1`` within ``seg``."""
-        t, xf = self._integrate(seg, t0, np.asarray(x0, dtype=float), t1, p)
+    def _run_phased(self, schedule, end_time, min_points, x0, p, deadline, switch_times) -> Trajectory:
+        """Phase by phase: each phase with its model, constants and pumps (a pump
+        whose range is (0, 0) in a phase is off there, whatever the schedule asks,
+        and its rate is recorded as 0); each addition a state jump
+        (:func:`optfeed.phases.jump`), its time sampled twice, before and after.
+
+        A phase ends at its fixed time ('at'), at the time the schedule or
+        ``switch_times`` gives ('between'), or at the first moment its condition
+        holds ('when'): the sign of the condition is watched on the dense output of
+        every piece and the crossing narrowed down by integrating again from the
+        sample before it (to under 1e-10 h, then a secant step); the next phase
+        starts from the state there. A phase whose end time has passed when it
+        starts (a condition held late) lasts no time. A 'when' phase whose condition
+        never holds lasts to the end of the run and the later phases never start
+        (``Trajectory.unended``).
+        """
+        m = self.model
+        ends = self._phase_ends(schedule, switch_times)
+        try:
+            segments = schedule.segments(m.feed_names, end_time)
+        except ScheduleOverflow as exc:
+            raise SimulationError(f"the rate of feed {exc.feed!r} grows past any finite number", exc.time) from None
+        max_len = end_time * self.points / max(min_points, 1)
+        additions = [a for a in m.problem.additions if a.time < end_time]
+        phase_p = tuple(phase_constants(m, ph, p) for ph in self.phases)
+        x = np.array(m.x0 if x0 is None else x0, dtype=float)
+        ts, xs, us, index, in_phase, pieces, piece_phase = [], [], [], [], [], [], []
+        switches, applied = {}, []
+        unended = None
+        t, si, ai = 0.0, 0, 0
+
+        def record(T, X, piece, k):
+            ts.append(T)
+            xs.append(X)
+            us.append(piece.rates(T))
+            index.append(np.full(len(T), len(pieces)))
+            in_phase.append(np.full(len(T), k))
+            pieces.append(piece)
+            piece_phase.append(k)
+
+        for k, ph in enumerate(self.phases):
+            last = k == len(self.phases) - 1
+            watch = self._conditions[k] if not last else None
+            stop = end_time if (last or watch is not None) else min(max(ends[k], t), end_time)
+            ended = None
+            if watch is not None and t < end_time:
+                while si + 1 < len(segments) and segments[si].end <= t:
+                    si += 1
+                seg = self._pumps_of(segments[si], ph)
+                if self._condition(k, seg, np.array([t]), x[None, :], phase_p[k])[0] <= 0:
+                    ended = t  # it holds already
+            while ended is None and t < stop:
+                while si + 1 < len(segments) and segments[si].end <= t:
+                    si += 1
+                t_next = min(segments[si].end, stop, additions[ai].time if ai < len(additions) else math.inf)
+                stretch = self._pumps_of(_shifted(segments[si], t, t_next, m.feed_names), ph)
+                for piece in _pieces(stretch, max_len, m.feed_names):
+                    if deadline is not None and time.monotonic() > deadline:
+                        raise TimeLimitReached("the time limit was reached before the end of the run", piece.start)
+                    tt, xf = self._integrate(piece, piece.start, x, piece.end, phase_p[k], k)
+                    T, X = np.concatenate([[piece.start], tt]), np.vstack([x, xf])
+                    if watch is not None:
+                        c = self._condition(k, piece, T, X, phase_p[k])
+                        hit = np.nonzero(c <= 0)[0]
+                        if len(hit):
+                            j = max(int(hit[0]), 1)
+                            t_star, x_star = self._crossing(piece, T[j - 1], X[j - 1], T[j], phase_p[k], k)
+                            record(np.append(T[:j], t_star), np.vstack([X[:j], x_star]), piece, k)
+                            t, x, ended = t_star, x_star, t_star
+                            break
+                    record(T, X, piece, k)
+                    x = xf[-1]
+                if ended is not None:
+                    break
+                t = t_next
+                while ai < len(additions) and additions[ai].time <= t:
+                    a = additions[ai]
+                    x = np.asarray(jump(m, a, x), dtype=float)
+                    V = x[m.index("V")]
+                    if not V > 0:
+                        raise SimulationError(f"the {a.kind} of {a.volume * 1e3:g} mL at {a.time:g} h ({a.key}) "
+                                              f"takes the broth volume to {V * 1e3:.4g} mL: nothing would be left",
+                                              a.time)
+                    applied.append((a, float(V)))
+                    ai += 1
+                    seg = self._pumps_of(segments[si], ph)
+                    if watch is not None and self._condition(k, seg, np.array([t]), x[None, :], phase_p[k])[0] <= 0:
+                        ended = t
+            if last:
+                break
+            if watch is not None and ended is None:
+                unended = ph.name
+                break
+            if ended is None and t >= end_time:
+                break  # its end lies at or after the end of the run
+            switches[ph.name] = float(t)
+        return Trajectory(
+            t=np.concatenate(ts), x=np.vstack(xs), u=np.vstack(us),
+            state_names=tuple(m.state_names), feed_names=tuple(m.feed_names),
+            piece=np.concatenate(index), _pieces=tuple(pieces), _simulator=self, _p=p,
+            phase=np.concatenate(in_phase), switches=switches, unended=unended, additions=tuple(applied),
+            requested=tuple(segments),
+            _piece_phase=tuple(piece_phase), _phase_p=phase_p,
+        )
+
+    def _phase_ends(self, schedule, switch_times) -> list:
+        """End time (h) of each 'at' and 'between' phase, None for the others."""
+        given = dict(getattr(schedule, "switch_times", None) or {})
+        given.update(switch_times or {})
+        where = getattr(schedule, "source", "") or IN_CODE
+        names = [ph.name for ph in self.phases]
+        for name in given:
+            if name not in names:
+                raise InputError.one(where, None, f"phases.{name}", f"{name!r} is not a phase of this problem "
+                                                                    f"(phases: {', '.join(names)})")
+        ends = []
+        for ph in self.phases:
+            e = ph.end
+            if e.kind == "at":
+                ends.append(e.time)
+            elif e.kind == "between":
+                if ph.name not in given:
+                    raise InputError.one(where, None, f"phases.{ph.name}",
+                                         f"the schedule must give the end of phase {ph.name!r} ({e.text}): a "
+                                         "'phase' column in a CSV schedule, 'phases: {" + ph.name +
+                                         ": 12 h}' in a YAML one")
+                value = float(given[ph.name])
+                if not (e.lower - 1e-9 <= value <= e.upper + 1e-9):
+                    raise InputError.one(where, None, f"phases.{ph.name}",
+                                         f"phase {ph.name!r} ends at {value:g} h, outside its window "
+                                         f"({e.lower:g} h to {e.upper:g} h)")
+                ends.append(value)
+            else:
+                if ph.name in given and e.kind == "when":
+                    raise InputError.one(where, None, f"phases.{ph.name}",
+                                         f"phase {ph.name!r} ends when {e.text}: its end is found by "
+                                         "simulation, a schedule cannot give it")
+                ends.append(None)
+        return ends
+
+    def _pumps_of(self, seg: Segment, phase) -> Segment:
+        """``seg`` with the pumps that ``phase`` turns off (range (0, 0)) off."""
+        off = [j for j, f in enumerate(self.model.feed_names) if phase.pumps.get(f) == (0.0, 0.0)]
+        if not off:
+            return seg
+        a = tuple(0.0 if j in off else v for j, v in enumerate(seg.a))
+        b = tuple(0.0 if j in off else v for j, v in enumerate(seg.b))
+        return Segment(seg.start, seg.end, a, b, seg.k)
+
+    def _condition(self, k: int, seg: Segment, T, X, p) -> np.ndarray:
+        """Phase ``k``'s end condition (above zero while it goes on) at times ``T``."""
+        f = self._conditions[k]
+        n = len(T)
+        out = f.map(n)(np.asarray(T)[None, :], np.asarray(X).T, seg.rates(T).T, p)
+        return np.array(out).ravel()
+
+    def _crossing(self, seg: Segment, t_lo: float, x_lo, t_hi: float, p, k: int):
+        """(time, state) where phase ``k``'s condition reaches zero in (t_lo, t_hi]."""
+        c_lo, c_hi = None, None
+        for _ in range(8):
+            T, X, _ = self.between(seg, t_lo, x_lo, t_hi, p, k)
+            c = self._condition(k, seg, T, X, p)
+            hit = np.nonzero(c <= 0)[0]
+            j = max(int(hit[0]), 1) if len(hit) else len(T) - 1
+            t_lo, x_lo, t_hi = float(T[j - 1]), X[j - 1], float(T[j])
+            c_lo, c_hi = float(c[j - 1]), float(c[j])
+            if t_hi - t_lo < 1e-10:
+                break
+        if c_hi is not None and c_lo > 0 >= c_hi and t_hi > t_lo:
+            t_star = t_lo + (t_hi - t_lo) * c_lo / (c_lo - c_hi)
+        else:
+            t_star = t_hi
+        if t_star <= t_lo:
+            return t_lo, np.array(x_lo, dtype=float)
+        _, xf = self._integrate(seg, t_lo, np.asarray(x_lo, dtype=float), t_star, p, k)
+        return t_star, xf[-1]
+
+    def between(self, seg: Segment, t0: float, x0, t1: float, p, phase: int = 0):
+        """Dense output (t, x, u) from state ``x0`` at ``t0`` to ``t1`` within ``seg``
+        (in phase number ``phase``, with its model; ``p`` its constants)."""
+        t, xf = self._integrate(seg, t0, np.asarray(x0, dtype=float), t1, p, phase)
         t = np.concatenate([[t0], t])
         return t, np.vstack([x0, xf]), seg.rates(t)
 
-    def _integrate(self, seg: Segment, t0: float, x0, t1: float, p):
+    def _integrate(self, seg: Segment, t0: float, x0, t1: float, p, phase: int = 0):
         h = t1 - t0
         d = t0 - seg.start
         try:  # a pump that is off stays off, whatever its growth rate
@@ -172,7 +401,7 @@ class Simulator:
                                   t0) from None
         q = np.concatenate([[t0, h], a, b, seg.k, p])
         try:
-            out = self._integrator(x0=x0, p=q)
+            out = self._integrators[phase](x0=x0, p=q)
         except RuntimeError as exc:
             raise SimulationError(f"the integrator failed ({_short(exc)}); {self._largest(x0, seg, t0)}",
                                   t0) from None
@@ -205,11 +434,43 @@ class Simulator:
         return text
 
 
+def _integrator(model: Model, grid, rtol: float, atol: float):
+    """CVODES over one piece in scaled time tau in [0, 1], output at ``grid``."""
+    nu = model.nu
+    tau = ca.SX.sym("tau")
+    q = ca.SX.sym("q", 2 + 3 * nu)  # t0, h, a, b, k of the pump law
+    t0, h = q[0], q[1]
+    a, b, k = q[2:2 + nu], q[2 + nu:2 + 2 * nu], q[2 + 2 * nu:2 + 3 * nu]
+    u = (a + b * h * tau) * ca.exp(k * h * tau)
+    f = model.function_p("f", [model.rhs])
+    ode = h * f(t0 + h * tau, model.x, u, model.p)
+    opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
+            "disable_internal_warnings": True}
+    return ca.integrator("piece", "cvodes", {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
+                         0.0, grid, opts)
+
+
 def simulate(model: Model, schedule: Schedule, end_time: float, **kwargs) -> Trajectory:
     """Integrate ``schedule`` over [0, end_time] h. See :class:`Simulator`."""
     min_points = kwargs.pop("min_points", SAMPLES)
     x0, p, deadline = kwargs.pop("x0", None), kwargs.pop("p", None), kwargs.pop("deadline", None)
     return Simulator(model, **kwargs).run(schedule, end_time, min_points=min_points, x0=x0, p=p, deadline=deadline)
+
+
+def _shifted(seg: Segment, start: float, end: float, feed_names=()) -> Segment:
+    """The part of ``seg`` from ``start`` to ``end`` (h), its law measured from ``start``."""
+    if start == seg.start:
+        return Segment(seg.start, end, seg.a, seg.b, seg.k)
+    d = start - seg.start
+    try:
+        grow = [math.exp(ki * d) for ki in seg.k]
+    except OverflowError:
+        j = max(range(len(seg.k)), key=lambda i: seg.k[i])
+        raise SimulationError(f"the rate of feed {feed_names[j]!r} grows past any finite number",
+                              float(start)) from None
+    a = tuple((ai + bi * d) * g if ai or bi else 0.0 for ai, bi, g in zip(seg.a, seg.b, grow))
+    b = tuple(bi * g if bi else 0.0 for bi, g in zip(seg.b, grow))
+    return Segment(float(start), float(end), a, b, seg.k)
 
 
 def _pieces(seg: Segment, max_len: float, feed_names=()):

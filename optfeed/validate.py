@@ -72,9 +72,9 @@ def validate(problem, schedule=None, end_time: float | None = None, set: dict | 
     model = build_model(problem)
     tf = run_length(problem, end_time)
     if isinstance(schedule, Schedule):
-        schedule = checked_schedule(schedule, model.feed_names, tf)
+        schedule = checked_schedule(schedule, model.feed_names, tf, problem.phases)
     elif schedule is not None:
-        schedule = load_schedule(schedule, model.feed_names, tf)
+        schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     what = f"{len(problem.species)} species, {len(problem.feeds)} feed(s), {len(problem.bounds)} extra bound(s)"
     if problem.uncertainty is not None:
         what += f", {len(problem.uncertainty.values)} uncertain value(s)"

@@ -115,7 +115,7 @@ def _run_case(task: Task) -> dict:
         sched_file = landing / f"{task.key}.{task.schedule_name}"
         sched_file.write_text(task.schedule_text)
         try:
-            schedule = load_schedule(sched_file, [f.name for f in problem.feeds], run_length(problem))
+            schedule = load_schedule(sched_file, [f.name for f in problem.feeds], run_length(problem), problem.phases)
         finally:
             sched_file.unlink()
         r = check(problem, schedule)

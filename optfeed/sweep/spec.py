@@ -248,9 +248,10 @@ def _check_schedule(schedule_path, problem, done: set) -> None:
     from ..schedule import load_schedule
 
     feeds, tf = tuple(f.name for f in problem.feeds), run_length(problem)
-    if (feeds, tf) not in done:  # the same feeds and run length need one look only
-        load_schedule(schedule_path, list(feeds), tf)
-        done.add((feeds, tf))
+    ends = tuple((ph.name, ph.end.kind, ph.end.lower, ph.end.upper) for ph in problem.phases)
+    if (feeds, tf, ends) not in done:  # the same feeds, run length and phases need one look only
+        load_schedule(schedule_path, list(feeds), tf, problem.phases)
+        done.add((feeds, tf, ends))
 
 
 def _case_key(problem, job, schedule_text) -> str:
