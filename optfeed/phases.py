@@ -136,3 +136,23 @@ def models_like(model: Model) -> list[Model]:
             raise AssertionError("a phase changed the state vector")
         out.append(m)
     return out
+
+
+def named_values(model: Model, traj, names, keep=None) -> np.ndarray:
+    """Named quantities (``model.values``: rates, OUR, ...) at the samples ``keep``
+    (indices; default all) of trajectory ``traj``, each sample with the model and
+    constants of its phase: shape (len(names), len(keep)), internal units."""
+    keep = np.arange(len(traj.t)) if keep is None else np.asarray(keep)
+    t, x, u = traj.t[keep], traj.x[keep], traj.u[keep]
+    models = traj.phase_models
+    phase = None if traj.phase is None or not models else traj.phase[keep]
+    out = np.empty((len(names), len(keep)))
+    groups = [(model, traj.constants, np.ones(len(keep), dtype=bool))] if phase is None else \
+        [(m, traj.phase_constants(k), phase == k) for k, m in enumerate(models)]
+    for m, p, sel in groups:
+        if not sel.any():
+            continue
+        fn = m.function("v", [ca.vertcat(*[m.values[n] for n in names])], p=p)
+        n = int(sel.sum())
+        out[:, sel] = np.array(fn.map(n)(t[sel][None, :], x[sel].T, u[sel].T)).reshape(len(names), n)
+    return out

@@ -297,7 +297,7 @@ def _exact_text(internal: float, f_out: float, f_in: float) -> str:
 
 
 def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None, note: str = "",
-                       phases=None) -> None:
+                       phases=None, ends: dict | None = None) -> None:
     """Write ``schedule`` as CSV in the format :func:`load_schedule` reads.
 
     Rates are written in ``feed_units[name]`` (default L/h), each as the shortest
@@ -305,22 +305,25 @@ def write_schedule_csv(schedule: Schedule, path, feed_units: dict | None = None,
     ``phases`` (the problem's phase names, in order) adds a ``phase`` column when
     the schedule has ``switch_times``: rows are split at every switch time, so each
     lies in one phase; a row lies in the first phase whose switch time comes after
-    it (a phase without a switch time gets no rows).
+    it (a phase without a switch time gets no rows). ``ends`` (phase name -> h, e.g.
+    a simulated run's ``Trajectory.switches``) adds ends to place rows by without
+    splitting them (a phase ended by a condition).
     """
     path = Path(path)
-    path.write_text(schedule_csv_text(schedule, feed_units, note, phases))
+    path.write_text(schedule_csv_text(schedule, feed_units, note, phases, ends))
 
 
-def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: str = "", phases=None) -> str:
+def schedule_csv_text(schedule: Schedule, feed_units: dict | None = None, note: str = "", phases=None,
+                      ends: dict | None = None) -> str:
     """The text :func:`write_schedule_csv` writes."""
     feed_units = feed_units or {}
     names = list(schedule.feeds)
     times = {t for rows in schedule.feeds.values() for t in rows.times}
-    switches = dict(schedule.switch_times or {})
     phase_names = list(phases or ())
-    with_phase = bool(phase_names and switches)
+    with_phase = bool(phase_names and (schedule.switch_times or ends))
     if with_phase:
-        times |= {float(v) for v in switches.values()}
+        times |= {float(v) for v in schedule.switch_times.values()}
+    switches = {**(ends or {}), **schedule.switch_times}
     times = sorted(times)
     buf = io.StringIO()
     for line in note.splitlines():

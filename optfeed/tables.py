@@ -11,11 +11,11 @@ so at a pump change it shows the new rate, as a schedule does.
 
 from __future__ import annotations
 
-import casadi as ca
 import numpy as np
 
 from .dimensions import Inference, dims_of, unit_for
 from .outcome import extensive_unit
+from .phases import named_values
 from .units import factor_to
 
 UNKNOWN = "internal: g, L, h, mmol"  # a named rate whose unit cannot be inferred
@@ -88,8 +88,7 @@ def trajectory_columns(model, traj, unique: bool = True) -> dict:
     if names:
         inf = Inference(p)
         fixed = {"OUR": "mmol/L/h", "heat_load": "W", "D": "1/h"}
-        fn = model.function("v", [ca.vertcat(*[model.values[n] for n in names])], p=traj.constants)
-        vals = np.array(fn.map(len(t))(t[None, :], x.T, u.T)).reshape(len(names), -1)
+        vals = named_values(model, traj, names, keep)
         for n, row in zip(names, vals):
             unit = fixed.get(n) or inf.unit_of_rate(n) or UNKNOWN
             cols[column(n, unit)] = row * _factor(unit)

@@ -303,13 +303,11 @@ def specific_rates(model) -> tuple[list[str], list[str]]:
 
 
 def _named_values(model, traj, names):
-    import casadi as ca
+    from ..phases import named_values
 
     if not names:
         return {}
-    fn = model.function("v", [ca.vertcat(*[model.values[n] for n in names])], p=traj.constants)
-    vals = np.array(fn.map(len(traj.t))(traj.t[None, :], traj.x.T, traj.u.T)).reshape(len(names), -1)
-    return dict(zip(names, vals))
+    return dict(zip(names, named_values(model, traj, names)))
 
 
 def _culture_figure(model, traj, points, title):

@@ -180,12 +180,26 @@ def check_summary(result) -> dict:
         "problem": result.problem.name,
         "end_time_h": result.end_time,
         "limits": [limit_dict(r) for r in result.limits],
+        **phases_dict(result),
         **outcome_dict(result.outcome),
         **extra,
         "warnings": [str(w) for w in result.problem.warnings],
         "record": result.record,
         "caution": CAUTION,
     }
+
+
+def phases_dict(result) -> dict:
+    """``phases`` (name, start/end in h, how it ended) and ``additions`` (time h, kind,
+    volume mL, amounts) of a run, for summary.json; {} for a problem with neither."""
+    out = {}
+    if result.problem.phases:
+        out["phases"] = [{"name": r.name, "start_h": r.start, "end_h": r.end, "ended_by": r.how}
+                         for r in result.phases]
+    if result.problem.additions:
+        out["additions"] = [{"time_h": a.time, "kind": a.kind, "volume_mL": a.volume, "amounts": a.amounts,
+                             "key": a.key} for a in result.additions]
+    return out
 
 
 def write_check_run(result, target, figures: bool = True) -> Path:
@@ -210,7 +224,9 @@ def write_check_run(result, target, figures: bool = True) -> Path:
         (tmp / "schedule.csv").write_text(schedule_csv_text(
             result.schedule, {f.name: f.unit for f in result.problem.feeds},
             f"The schedule checked by optfeed check ({result.status}) for {result.problem.name}, "
-            f"from {result.schedule.source or 'code'}.\nRun length: {result.end_time!r} h."))
+            f"from {result.schedule.source or 'code'}.\nRun length: {result.end_time!r} h.",
+            [ph.name for ph in result.problem.phases],
+            None if result.trajectory is None else result.trajectory.switches))
         if result.trajectory is not None:
             model = build_model(result.problem)
             header, rows = trajectory_table(model, result.trajectory, unique=True)

@@ -327,6 +327,22 @@ def outcome_section(outcome, title: str = "At the end of the run") -> Section:
 # ------------------------------------------------------------------ pages of the jobs
 
 
+def phases_section(result) -> Section | None:
+    """The phases a run went through (start, end, what ended each) and the additions
+    applied; None for a problem with neither."""
+    body = ""
+    if result.phases:
+        body += table(["phase", "start (h)", "end (h)", "ended by"],
+                      [[r.name, r.start, r.end, r.how] for r in result.phases], numeric={1, 2})
+    if result.additions:
+        rows = [[a.time, a.kind, a.volume, ", ".join(f"{k} {fmt(v)}" for k, v in a.amounts.items()) or "-"]
+                for a in result.additions]
+        body += table(["time (h)", "addition", "volume (mL)", "adds"], rows, numeric={0, 2})
+    if not body:
+        return None
+    return Section("phases", "Phases and additions", body)
+
+
 def check_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
     """The page of a :class:`~optfeed.check.CheckResult`."""
     words, tone = headline(result.status, len(result.violations))
@@ -336,6 +352,9 @@ def check_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
         sections.append(Section("objective", "Objective",
                                 f'<p class="figure-big">{esc(fmt(o.value, 6))} {esc(o.unit)}</p>'
                                 f"<p>{esc(o.label)}, over a run of {esc(fmt(result.end_time))} h.</p>"))
+    phased = phases_section(result) if result.outcome is not None else None
+    if phased is not None:
+        sections.append(phased)
     sections.append(limits_section(result.limits))
     if result.uncertainty is not None:
         sections.append(uncertainty_section(result.uncertainty, result.problem.uncertainty.values))

@@ -68,6 +68,22 @@ def limits_table(reports) -> list[str]:
     return table_lines(rows)
 
 
+def phase_lines(result) -> list[str]:
+    """The phases a run went through and the additions applied (none: no lines)."""
+    lines = []
+    if result.phases:
+        rows = [("phase", "start (h)", "end (h)", "ended by")]
+        rows += [(r.name, fmt(r.start), fmt(r.end), r.how) for r in result.phases]
+        lines += ["Phases:"] + table_lines(rows) + [""]
+    if result.additions:
+        rows = [("time (h)", "addition", "volume (mL)", "adds")]
+        for a in result.additions:
+            adds = ", ".join(f"{k} {fmt(v)}" for k, v in a.amounts.items()) or "-"
+            rows.append((fmt(a.time), a.kind, fmt(a.volume), adds))
+        lines += ["Additions:"] + table_lines(rows) + [""]
+    return lines
+
+
 def outcome_lines(outcome) -> list[str]:
     out = []
     for f in outcome.finals:
@@ -152,6 +168,7 @@ def check_text(result) -> str:
     if result.outcome is None:
         lines += ["No trajectory: the simulation did not reach the end of the run.", ""]
     else:
+        lines += phase_lines(result)
         lines += ["Limits:"] + limits_table(result.limits) + [""]
         lines += ["At the end of the run:"] + outcome_lines(result.outcome) + [""]
     if result.uncertainty is not None:
