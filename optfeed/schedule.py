@@ -635,7 +635,8 @@ def _load_csv(path, feed_names, end_time, phases=()) -> Schedule:
     if phases:
         given, issues = _phase_column(path, header_line, phases, times, lines, row_phase) \
             if phase_col is not None else ({}, [])
-        issues += _switch_issues(path, phases, given, header_line, "phase")
+        if not issues:  # a bad phase column: its own message only
+            issues = _switch_issues(path, phases, given, header_line, "phase")
         if issues:
             raise InputError(issues)
         switch_times = {n: v[0] for n, v in given.items()}
@@ -732,7 +733,7 @@ def _load_yaml(path, feed_names, end_time, phases=()) -> Schedule:
                 raise InputError.one(path, lines.get(loc), key_text(loc), str(exc)) from None
             given[str(name)] = (t, lines.get(loc), key_text(loc))
     if phases or given:
-        issues = _switch_issues(path, phases, given, lines.get(("phases",), lines.get(())), "phases")
+        issues = _switch_issues(path, phases, given, lines.get(("phases",)) or lines.get(()), "phases")
         if issues:
             raise InputError(issues)
     return Schedule(feeds, interpolation, path, {n: v[0] for n, v in given.items()})

@@ -47,6 +47,7 @@ class Case:
     message : regex searched for in the text after ``file:line: key: ``
     xfail : reason, for a case the code does not yet report clearly
     reported : the file the report must name instead (a file the case names, relative to the corpus)
+    problem : for a schedule case, the corpus problem it is paired with (default ok_problem.yaml)
     """
 
     file: str
@@ -55,6 +56,7 @@ class Case:
     message: str
     xfail: str | None = None
     reported: str | None = None
+    problem: str | None = None
 
     @property
     def is_schedule(self) -> bool:
@@ -158,6 +160,22 @@ CASES = [
          r"^growth 1000 1/h on a rate of 0 keeps the pump off \(an exponential of zero stays zero\)"),
     Case("schedule_growth_overflow.csv", 5, "glucose",
          r"^rate 0\.05 L/h growing at 150 1/h passes any finite number before 10 h"),
+    # ---- phase ends in schedules (paired with ok_phased_problem.yaml: batch until S < 0.5 g/L, fed ending
+    #      between 5 h and 8 h, late)
+    Case("schedule_phase_unknown.csv", 5, "phase", r"^'feed' is not a phase of this problem; did you mean 'fed'",
+         problem="ok_phased_problem.yaml"),
+    Case("schedule_phase_backwards.csv", 7, "phase",
+         r"^phase 'fed' comes before 'late' in the problem: the phase column must follow the phases' order",
+         problem="ok_phased_problem.yaml"),
+    Case("schedule_phase_window.csv", 6, "phase",
+         r"^phase 'fed' would end at 9 h, outside its window \(between 5 h and 8 h\)",
+         problem="ok_phased_problem.yaml"),
+    Case("schedule_phase_missing.csv", 3, "phase", r"^the schedule must give the end of phase 'fed'",
+         problem="ok_phased_problem.yaml"),
+    Case("schedule_phase_when.yaml", 8, "phases.batch",
+         r"^phase 'batch' ends when S < 0\.5 g/L, found by simulation: leave it out",
+         problem="ok_phased_problem.yaml"),
+    Case("schedule_phase_no_phases.csv", 3, "phase", r"^this problem has no phases: leave the phase column out"),
     # ---- the uncertainty section (covariance files in bad_input/covariance/)
     Case("problem_uncertain_unknown_parameter.yaml", 27, "uncertainty.parameters.mu_mx",
          r"^'mu_mx' is not a parameter of this problem; did you mean 'mu_max'"),
@@ -313,7 +331,7 @@ def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path):
     results = tmp_path / "results"
     before = _files_under(tmp_path)
     if case.is_schedule:
-        problem, schedule = OK_PROBLEM, path
+        problem, schedule = (CORPUS / case.problem if case.problem else OK_PROBLEM), path
         validate = ["validate", str(problem), "--schedule", str(schedule)]
     else:
         problem, schedule = path, OK_SCHEDULE
