@@ -381,8 +381,9 @@ def _judge_phase_pump(model, lim, traj, window) -> LimitReport:
         total, times, vols = asked_outside(traj, j, lim.lower, lim.upper, t0, t1)
     first = None
     if total > allowance:
-        k = int(np.argmax(vols > allowance))
-        first = float(times[k])
+        k = int(np.argmax(vols > allowance))  # >= 1: the running total starts at 0
+        a, b = vols[k - 1], vols[k]  # linear within the quadrature interval
+        first = float(times[k - 1] + (times[k] - times[k - 1]) * (allowance - a) / (b - a))
     return LimitReport(
         name=lim.name, kind=lim.kind, unit=unit, lower=None, upper=allowance * conv,
         min_slack=(allowance - total) * conv, time_min_slack=float(times[-1]) if len(times) else float(t0),
