@@ -229,7 +229,7 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     record = {"problem_file": problem.source, "schedule_file": schedule.source,
               "problem_digest": problem_digest(problem), **stamp()}
-    limits = build_limits(model)
+    limits = build_limits(model, phases=True)
     deadline = None if time_limit is None else time.monotonic() + time_limit
 
     def beside():  # the Monte Carlo figures stand beside the nominal verdict, never in it

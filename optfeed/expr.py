@@ -16,7 +16,7 @@ import ast
 import difflib
 import math
 import unicodedata
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import casadi as ca
 
@@ -85,8 +85,8 @@ class Expr:
     """
 
     text: str
-    names: frozenset
-    _tree: ast.AST
+    names: frozenset = field(repr=False, compare=False)  # follows from the text
+    _tree: ast.AST = field(repr=False, compare=False)
 
     def __reduce__(self):
         return (parse, (self.text,))

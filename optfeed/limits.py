@@ -179,8 +179,11 @@ def _state_index(model: Model, expr) -> int | None:
     return None
 
 
-def build_limits(model: Model) -> list[Limit]:
-    """Every limit of the model's problem, in report order."""
+def build_limits(model: Model, phases: bool = False) -> list[Limit]:
+    """Every limit of the model's problem over the whole run, in report order; with
+    ``phases`` also each phase's pump ranges (kind 'phase pump') and own limits,
+    each with its ``phase`` (what ``check`` judges; the optimizer takes a phase's
+    limits per phase, :func:`optfeed.phases.phase_limits`)."""
     p = model.problem
     out = []
 
@@ -211,16 +214,16 @@ def build_limits(model: Model) -> list[Limit]:
         unit = b.unit
         add(b.name, "end" if b.at_end else "path", model.expression(b.expression), b.lower, b.upper, unit,
             factor_to(unit) if unit else 1.0, b.at_end, b.key)
-    feeds = {f.name: (j, f) for j, f in enumerate(p.feeds)}
-    for ph in p.phases:
-        for name, (lo, hi) in ph.pumps.items():
-            j, f = feeds[name]
-            add(f"pump {name} in {ph.name}", "phase pump", model.u[j], lo, hi, f.unit, factor_to(f.unit), False,
-                f"{ph.key}.feeds", ph.name)
-        for b in ph.bounds:
-            unit = b.unit
-            add(b.name, "path", model.expression(b.expression), b.lower, b.upper, unit,
-                factor_to(unit) if unit else 1.0, False, b.key, ph.name)
+    if phases:
+        from .phases import phase_limits
+
+        feeds = {f.name: (j, f) for j, f in enumerate(p.feeds)}
+        for ph in p.phases:
+            for name, (lo, hi) in ph.pumps.items():
+                j, f = feeds[name]
+                add(f"pump {name} in {ph.name}", "phase pump", model.u[j], lo, hi, f.unit, factor_to(f.unit),
+                    False, f"{ph.key}.feeds", ph.name)
+            out += phase_limits(model, ph)
     return out
 
 
@@ -247,7 +250,7 @@ def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
             exprs = [ca.SX(l.expr) for l in limits]
         else:
             if id(m) not in rebuilt:
-                rebuilt[id(m)] = {l.name: l for l in build_limits(m)}
+                rebuilt[id(m)] = {l.name: l for l in build_limits(m, phases=True)}
             mine = rebuilt[id(m)]
             old = ca.vertcat(model.t, model.x, model.u, model.p)
             new = ca.vertcat(m.t, m.x, m.u, m.p)

@@ -285,7 +285,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
         schedule = checked_schedule(schedule, model.feed_names, tf, problem.phases)
     else:
         schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
-    limits = build_limits(model)
+    limits = build_limits(model, phases=True)
     drawn = scenario_set(problem, model, count=int(samples), seed=int(seed), method="random", nominal=False)
     if workers is None:
         workers = cpu_count()
@@ -343,7 +343,7 @@ def _chunk(job, progress=None) -> list:
 
     problem, schedule, tf, constants, x0, deadline = job
     model = build_model(problem)
-    limits = build_limits(model)
+    limits = build_limits(model, phases=True)
     sim = Simulator(model)
     out = []
     for k in range(constants.shape[1]):

@@ -23,12 +23,13 @@ from __future__ import annotations
 import itertools
 import math
 import time
+import dataclasses
 from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from . import status as st
-from .errors import InputError
+from .errors import InputError, Issue
 from .limits import REL_TOL, LimitReport, build_limits, judge, limit_function
 from .marginals import is_active
 from .outcome import Outcome, objective_label, outcome_of
@@ -42,7 +43,8 @@ from .schedule import piecewise_constant, round_schedule
 from .simulate import Simulator
 from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
                     make_guesses, models, scaling_for, solve, states_for)
-from .transcription import Grid, NLPData
+from .phases import guess_switches, phase_models
+from .transcription import Grid, NLPData, plan_stretches
 from .uncertainty import ScenarioSet, scenario_set
 from .units import factor_to
 from .verify import Verification, pump_schedule, verify
@@ -242,6 +244,10 @@ class _Job:
         # pumps that are off or at least a minimum: the search works on the relaxed
         # problem, and only the final stage holds (and verifies) the minimum settings
         self.relaxed_pumps = any(f.min_on > f.min_rate for f in problem.feeds)
+        # phases and additions: one model per phase, and the run's time line
+        self.lean_phases = phase_models(problem, "used") if problem.phases else None
+        self.switch_guess = guess_switches(problem)
+        self.stretches = None
 
     def data(self, scaling: Scaling, backoff=None, pump=None) -> NLPData:
         """The numbers of a solve; ``pump`` = (lower, upper), each (nu, M) L/h, bounds
@@ -275,7 +281,27 @@ class _Job:
         sc = self.scenarios
         return get_nlp(self.problem, self.lean, self.limits, grid, self.free,
                        scenarios=1 if sc is None else sc.count, combine="mean" if sc is None else sc.combine,
-                       smoothing=self.settings.smoothing > 0)
+                       smoothing=self.settings.smoothing > 0, stretches=self.stretches,
+                       phase_models=self.lean_phases)
+
+    def plan(self, guesses, ends: dict | None = None):
+        """Cut the run at its phase ends and additions (a run with phases or
+        additions): the phases end where ``ends`` says, else where the first
+        simulated guess's phases ended, else at their guesses."""
+        p = self.problem
+        if not (p.phases or p.additions):
+            return
+        known = dict(self.switch_guess)
+        traj = next((g.trajectory for g in guesses if g.trajectory is not None), None)
+        if traj is not None:
+            known.update(getattr(traj, "switches", {}) or {})
+        known.update(ends or {})
+        for ph in p.phases[:-1]:
+            if ph.end.kind == "at":
+                known[ph.name] = ph.end.time
+            elif ph.name not in known:  # a condition the guess never met: somewhere in the run
+                known[ph.name] = self.T * 0.5
+        self.stretches = plan_stretches(p, self.settings.pump_steps, known, self.T)
 
     def scenario_inputs(self):
         """(x0 of the full model, constants) per scenario: [(x0, p), ...]."""
@@ -294,18 +320,38 @@ class _Job:
         if not report_progress(text):
             self.progress(text, None, None)
 
-    def pack_from_schedule(self, nlp, data, steps_u, T, traj=None):
-        """NLP vector from pump steps, with the states of their simulation in every
-        scenario (``traj``: the nominal's, when already simulated)."""
+    def pack_from_schedule(self, nlp, data, steps_u, T, traj=None, t_steps=None, switches=None):
+        """NLP vector from pump steps (uniform over [0, T], or with boundaries
+        ``t_steps``), with the states of their simulation in every scenario
+        (``traj``: the nominal's, when already simulated); ``switches``: the phases'
+        end times the steps were made for."""
         M = steps_u.shape[0]
-        sched = piecewise_constant(self.full.feed_names, np.linspace(0, T, M + 1)[:-1], steps_u)
+        starts = np.linspace(0, T, M + 1)[:-1] if t_steps is None else np.asarray(t_steps)[:-1]
+        sched = piecewise_constant(self.full.feed_names, starts, steps_u)
         times, states = [], []
         for s, (x0, p) in enumerate(self.scenario_inputs()):
             tr = traj if (traj is not None and s == 0) else self.simulator.run(
-                sched, T, min_points=max(400, 4 * M), x0=x0, p=p)
+                sched, T, min_points=max(400, 4 * M), x0=x0, p=p, **self.switch_kwargs(switches))
             times.append(tr.t)
             states.append(states_for(self.lean, self.full, tr.x))
-        return nlp.pack(data, steps_u, T, times, states)
+        ends = getattr(traj if traj is not None else tr, "switches", None)
+        return nlp.pack(data, steps_u, T, times, states, switches=ends, t_steps=t_steps)
+
+    def switch_kwargs(self, switches=None) -> dict:
+        """Simulator.run's switch times for a phased run (the given ones, else the
+        guesses); nothing for a run without phases."""
+        if not self.problem.phases:
+            return {}
+        return {"switch_times": {**self.switch_guess, **(switches or {})}}
+
+    def schedule_of(self, un):
+        """The pump schedule of an unpacked answer as schedule.csv will hold it
+        (rounded, exact zeros), with its phases' end times."""
+        schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
+                                  self.problem.feeds, end_time=un.T)
+        if un.switches:
+            schedule = dataclasses.replace(schedule, switch_times=dict(un.switches))
+        return schedule
 
     def verify(self, nlp, data, start: Start) -> Verification:
         """Re-simulate the answer's schedule (as schedule.csv will hold it: rounded,
@@ -313,8 +359,7 @@ class _Job:
         nominal scenario's Verification, its message covering all of them; the
         others are kept in ``self.scenario_checks``."""
         un = nlp.unpack(start.w, data)
-        schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
-                                  self.problem.feeds, end_time=un.T)
+        schedule = self.schedule_of(un)
         tol = self.settings.verify_tolerance
         ignore = ("setting",) if self.relaxed_pumps else ()
         if self.scenarios is None:
@@ -378,7 +423,8 @@ def _seed_guesses(job, seeds) -> list:
                     steps[k] += np.trapezoid(seg.rates(tt), tt, axis=0) / (b - a)
         sched = piecewise_constant(job.full.feed_names, edges[:-1], steps)
         try:
-            traj = job.simulator.run(sched, T, min_points=max(400, 4 * M))
+            traj = job.simulator.run(sched, T, min_points=max(400, 4 * M),
+                                     **job.switch_kwargs(getattr(schedule, "switch_times", None)))
         except Exception:  # noqa: BLE001 - a seed the integrator cannot follow is left out
             continue
         J = job.full.end_value(traj.final, T, traj.u[-1])
@@ -518,6 +564,11 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
         base.update(kw)
         return OptimizeResult(**base)
 
+    if scenarios is not None and any(ph.end.kind == "when" for ph in problem.phases):
+        raise InputError([Issue(problem.source, None, "phases",
+                                "a phase that ends on a condition cannot be optimised over uncertainty scenarios "
+                                "yet (each scenario meets the condition at its own time); check the schedule "
+                                "with --uncertainty instead, or end the phase at a time")])
     blocked = _blocked_at_start(job)
     if blocked:
         return result(st.INFEASIBLE, f"before solving: {blocked}")
@@ -535,6 +586,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
         job.progress(f"warning: {diagnosis}", None, None)
     scaling = scaling_for(problem, job.lean, guesses, job.full)
     data = job.data(scaling)
+    job.plan(guesses)
     coarse = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
     fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
     # build the solvers the starts use before they fork, so no process builds its own
@@ -603,7 +655,8 @@ def _stage(task):
     s = job.settings
     if kind == "coarse":
         g = payload
-        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states))
+        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states),
+                      switches=getattr(g.trajectory, "switches", None))
         st_ = solve(nlp, data, w0, g.label, profile="cold", tolerance=s.tolerance,
                     max_iter=min(COARSE_ITER, s.max_iter), deadline=job.deadline, report=job.report,
                     guess_objective=g.objective)
@@ -619,9 +672,10 @@ def _stage(task):
     g, cs = payload
     cu = _COARSE_NLP.unpack(cs.w, data)
     try:
-        w0 = job.pack_from_schedule(nlp, data, cu.u_steps, cu.T)
+        w0 = job.pack_from_schedule(nlp, data, cu.u_steps, cu.T, t_steps=cu.t_steps, switches=cu.switches)
     except Exception:  # noqa: BLE001 - a coarse answer the integrator cannot follow: start from the guess
-        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states))
+        w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states),
+                      switches=getattr(g.trajectory, "switches", None))
     st_ = solve(nlp, data, w0, g.label, profile="near", tolerance=s.tolerance, max_iter=s.max_iter,
                 deadline=job.deadline, report=job.report, guess_objective=g.objective)
     if st_.status in ("iteration limit", "failed") and s.max_iter > st_.iterations:
@@ -801,8 +855,12 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
                         report=job.report)
         else:  # finer elements too: start from the simulated schedule, with a capped budget
             un = best.nlp.unpack(best.start.w, best.data)
-            steps = np.repeat(un.u_steps, 2, axis=0)
-            w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
+            if nlp.phased:
+                w0 = job.pack_from_schedule(nlp, best.data, un.u_steps, un.T, best.verification.trajectory,
+                                            t_steps=un.t_steps, switches=un.switches)
+            else:
+                steps = np.repeat(un.u_steps, 2, axis=0)
+                w0 = job.pack_from_schedule(nlp, best.data, steps, un.T, best.verification.trajectory)
             st_ = solve(nlp, best.data, w0, label, profile="near", tolerance=s.tolerance,
                         max_iter=min(s.max_iter, REFINE_ITER), deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:

@@ -49,17 +49,27 @@ def phase_problem(problem: Problem, phase: Phase) -> Problem:
     return dataclasses.replace(problem, rates=rates, species=species)
 
 
+def _with_phase_bounds(problem: Problem) -> Problem:
+    extra = tuple(b for ph in problem.phases for b in ph.bounds)
+    return dataclasses.replace(problem, bounds=problem.bounds + extra) if extra else problem
+
+
+def base_model(problem: Problem, fed: str = "all") -> Model:
+    """The problem's own model (no phase's changes), with a ``fed_<s>`` state for
+    every one that a phase's limits use too (``fed`` as in build_model)."""
+    m = build_model(_with_phase_bounds(problem), fed=fed)
+    m.problem = problem
+    return m
+
+
 def phase_models(problem: Problem, fed: str = "all") -> list[Model]:
     """One model per phase (the same object where a phase replaces no rate).
 
     ``fed`` as in :func:`optfeed.model.build_model`; a phase's own limits count as
     users of ``fed_<s>`` states.
     """
-    extra = tuple(b for ph in problem.phases for b in ph.bounds)
-    base_problem = dataclasses.replace(problem, bounds=problem.bounds + extra) if extra else problem
-    base = build_model(base_problem, fed=fed)
-    if extra:
-        base.problem = problem
+    base = base_model(problem, fed)
+    base_problem = _with_phase_bounds(problem)
     out = []
     for ph in phases_of(problem):
         if not ph.rates:
@@ -155,4 +165,25 @@ def named_values(model: Model, traj, names, keep=None) -> np.ndarray:
         fn = m.function("v", [ca.vertcat(*[m.values[n] for n in names])], p=p)
         n = int(sel.sum())
         out[:, sel] = np.array(fn.map(n)(t[sel][None, :], x[sel].T, u[sel].T)).reshape(len(names), n)
+    return out
+
+
+def guess_switches(problem: Problem) -> dict:
+    """Phase name -> end time (h) to start from, for each phase that ``optimize``
+    times (``until: {between: ...}``): its guess."""
+    return {ph.name: ph.end.guess for ph in problem.phases if ph.end.kind == "between"}
+
+
+def phase_limits(model: Model, phase: Phase) -> list:
+    """The limits that ``phase`` adds (its ``limits``), in ``model``'s symbols, as
+    :class:`optfeed.limits.Limit` (kind 'path', ``phase`` its name: judged over the
+    phase's window only)."""
+    from .limits import Limit, _state_index
+    from .units import factor_to
+
+    out = []
+    for b in phase.bounds:
+        expr = ca.SX(model.expression(b.expression))
+        out.append(Limit(b.name, "path", expr, b.lower, b.upper, b.unit, factor_to(b.unit) if b.unit else 1.0,
+                         False, b.key, _state_index(model, expr), bool(ca.depends_on(expr, model.u)), phase.name))
     return out

@@ -30,6 +30,7 @@ from .model import build_model
 from .problem.spec import Problem
 from .schedule import piecewise_constant
 from .simulate import Simulator
+from .phases import base_model, guess_switches, phase_limits
 from .transcription import FeedNLP, Grid, NLPData, structure_key
 
 # IPOPT's return_status -> our word for how the solver ended
@@ -195,13 +196,15 @@ CACHE_SIZE = 12
 
 
 def get_nlp(problem: Problem, model, limits, grid: Grid, free_time: bool, scenarios: int = 1,
-            combine: str = "mean", smoothing: bool = False) -> FeedNLP:
-    """The FeedNLP of this problem's structure (built on first use, then reused)."""
-    key = structure_key(problem, grid, free_time, scenarios, combine, smoothing)
+            combine: str = "mean", smoothing: bool = False, stretches: tuple | None = None,
+            phase_models: list | None = None) -> FeedNLP:
+    """The FeedNLP of this problem's structure (built on first use, then reused);
+    ``stretches`` and ``phase_models`` for a run with phases or additions."""
+    key = structure_key(problem, grid, free_time, scenarios, combine, smoothing, stretches)
     if key in _CACHE:
         _CACHE.move_to_end(key)
         return _CACHE[key]
-    nlp = FeedNLP(model, limits, grid, free_time, scenarios, combine, smoothing)
+    nlp = FeedNLP(model, limits, grid, free_time, scenarios, combine, smoothing, stretches, phase_models)
     nlp.key = key
     _CACHE[key] = nlp
     while len(_CACHE) > CACHE_SIZE:
@@ -415,10 +418,11 @@ def make_guesses(problem: Problem, model, count: int, M: int | None = None) -> l
     M = M or problem.settings.pump_steps
     sim = Simulator(model)
     out = []
+    switches = {"switch_times": guess_switches(problem)} if problem.phases else {}
     for label, steps in candidate_feeds(problem, T, M, count):
         sched = piecewise_constant(model.feed_names, np.linspace(0, T, M + 1)[:-1], steps)
         try:
-            traj = sim.run(sched, T, min_points=max(400, 4 * M))
+            traj = sim.run(sched, T, min_points=max(400, 4 * M), **switches)
         except SimulationError:
             continue
         J = model.end_value(traj.final, T, traj.u[-1]) if problem.objective is not None else None
@@ -444,6 +448,11 @@ def states_for(nlp_model, full_model, states: np.ndarray) -> np.ndarray:
 
 def models(problem: Problem):
     """(full model for simulation and reports, lean model for the NLP, its limits)."""
-    full = build_model(problem)
-    lean = build_model(problem, fed="used")
-    return full, lean, build_limits(lean)
+    full = base_model(problem)
+    lean = base_model(problem, fed="used")
+    limits = build_limits(lean)
+    names = {l.name for l in limits}
+    for ph in problem.phases:  # a phase's own limits: their bounds are data of every solve
+        limits += [l for l in phase_limits(lean, ph) if l.name not in names]
+    return full, lean, limits
+

@@ -36,8 +36,9 @@ import casadi as ca
 import numpy as np
 
 from .collocation import Block, Layout
-from .limits import Limit
+from .limits import Limit, bound_scale
 from .model import Model
+from .phases import condition_function, jump, phase_constants, phase_limits, phases_of
 
 COMBINE = ("mean", "worst", "mean_std")
 
@@ -64,6 +65,52 @@ class Grid:
     @property
     def fractions(self) -> np.ndarray:
         return np.linspace(0.0, 1.0, self.elements + 1)
+
+
+@dataclass(frozen=True)
+class Stretch:
+    """One block of a run's time line: part of one phase between two boundaries.
+
+    phase : index into the run's phases (:func:`optfeed.phases.phases_of`);
+    steps : its pump steps on the base pump grid (``Settings.pump_steps``);
+    end : what ends it: ('phase', k) the end of phase k, ('addition', j) the
+        problem's addition j (a state jump follows), or ('run', -1).
+    """
+
+    phase: int
+    steps: int
+    end: tuple
+
+
+def plan_stretches(problem, pump_steps: int, ends: dict, end_time: float) -> tuple:
+    """The run cut at every phase end and addition, in time order, as stretches.
+
+    ``ends`` gives each phase's end time (h) to order the cuts by (the nominal or a
+    start's); ``end_time`` the run's (nominal) length. The base pump steps are
+    shared out by each stretch's share of the run (at least one each).
+    """
+    phases = phases_of(problem)
+    cuts = [(a.time, 0, ("addition", j)) for j, a in enumerate(problem.additions)]
+    for k, ph in enumerate(phases[:-1]):
+        cuts.append((float(ends[ph.name]), 1, ("phase", k)))
+    cuts.sort()
+    if len(cuts) + 1 > pump_steps:
+        raise ValueError(f"the run is cut into {len(cuts) + 1} stretches by its phases and additions, more than "
+                         f"its {pump_steps} pump steps: raise solver.pump_steps")
+    times = [c[0] for c in cuts] + [end_time]
+    lengths = np.diff([0.0] + times)
+    lengths = np.maximum(lengths, 1e-3 * end_time)
+    share = lengths / lengths.sum() * (pump_steps - len(times))
+    steps = np.floor(share).astype(int)
+    rest = pump_steps - len(times) - steps.sum()
+    for i in np.argsort(-(share - steps))[:rest]:
+        steps[i] += 1
+    out, phase = [], 0
+    for i, end in enumerate([c[2] for c in cuts] + [("run", -1)]):
+        out.append(Stretch(phase, int(steps[i]) + 1, end))
+        if end[0] == "phase":
+            phase += 1
+    return tuple(out)
 
 
 @dataclass
@@ -104,6 +151,7 @@ class Unpacked:
     u_steps : (M, nu) pump rate per step, L/h
     x_end : (nx,) state at T
     T : float, h
+    switches : dict, phase name -> end time (h), for every phase but the last
     """
 
     t_points: np.ndarray
@@ -113,14 +161,18 @@ class Unpacked:
     u_steps: np.ndarray
     x_end: np.ndarray
     T: float
+    switches: dict = field(default_factory=dict)
 
 
 @dataclass
 class _RowGroup:
-    kind: str  # 'model', 'limit', 'epigraph'
+    kind: str  # 'model', 'limit', 'epigraph', 'timing'
     name: str
     rows: np.ndarray
     scenario: int = 0
+    lower: float = 0.0  # 'timing' rows: bounds, h for times (divided by t_scale)
+    upper: float = 0.0
+    in_time: bool = False  # 'timing' rows that are times
 
 
 class FeedNLP:
@@ -138,10 +190,16 @@ class FeedNLP:
         How the scenarios' objectives become one (weights from the data).
     smoothing : bool
         Include the penalty on pump-rate changes (its weight is data).
+    stretches : tuple of Stretch, optional
+        The run's time line when it has phases or additions
+        (:func:`plan_stretches`); then ``phase_models`` holds one model per phase
+        with ``model``'s states, and every stretch is one block per scenario.
+    phase_models : list of Model, optional
     """
 
     def __init__(self, model: Model, limits: list[Limit], grid: Grid, free_time: bool, scenarios: int = 1,
-                 combine: str = "mean", smoothing: bool = False):
+                 combine: str = "mean", smoothing: bool = False, stretches: tuple | None = None,
+                 phase_models: list | None = None):
         if combine not in COMBINE:
             raise ValueError(f"combine must be one of {COMBINE}")
         self.model, self.limits, self.grid = model, [l for l in limits if l.kind != "setting"], grid
@@ -149,15 +207,44 @@ class FeedNLP:
         self.copies = self.S  # copies of the model sharing decisions (solve.ipopt_options)
         self.has_smoothing = smoothing
         self.sense = -1.0 if (model.problem.objective is None or model.problem.objective.sense == "maximize") else 1.0
+        self.phases = phases_of(model.problem)
+        self.stretches = tuple(stretches) if stretches else (Stretch(0, grid.pump_steps, ("run", -1)),)
+        self.phased = len(self.stretches) > 1
+        self.phase_models = list(phase_models) if phase_models else [model] * len(self.phases)
         self._build()
         self._solvers = {}
         self._derivatives = None
 
     # ------------------------------------------------------------------ build
+    def _steps(self) -> list[int]:
+        """Pump steps of each stretch on this NLP's grid."""
+        if not self.phased:
+            return [self.grid.pump_steps]
+        base = sum(st.steps for st in self.stretches)
+        if self.grid.pump_steps % base:
+            raise ValueError(f"a phased run's pump grid must be a multiple of {base} steps")
+        r = self.grid.pump_steps // base
+        return [st.steps * r for st in self.stretches]
+
+    def _phase_limits(self, k: int) -> list[Limit]:
+        """The limits in force in phase k, in phase k's model (by name, as given)."""
+        if not self.phased:
+            return self.limits
+        from .limits import build_limits
+
+        m, ph = self.phase_models[k], self.phases[k]
+        names = {l.name for l in self.limits}
+        own = [l for l in build_limits(m) if l.name in names and l.kind != "setting"]
+        own += [l for l in phase_limits(m, ph) if l.name in names]
+        return own
+
     def _build(self):
         m, g_ = self.model, self.grid
         nx, nu, S = m.nx, m.nu, self.S
-        M, N, d, k = g_.pump_steps, g_.elements, g_.degree, g_.elements_per_step
+        N, d, k = g_.elements, g_.degree, g_.elements_per_step
+        steps = self._steps()
+        M = sum(steps)
+        self.steps = steps
         W, P = Layout("w"), Layout("p")
         self.W, self.P = W, P
         const = P.add("constants", m.n_constants, S)
@@ -166,80 +253,153 @@ class FeedNLP:
         us = P.add("u_scale", nu)
         js = P.add("j_scale")
         ws = P.add("weights", S)
-        path = [l for l in self.limits if not l.at_end and l.kind not in ("pump", "setting")]
-        rows_lim = [l for l in path if l.state is None]
-        self.bound_limits = [l for l in path if l.state is not None]
-        ends = [l for l in self.limits if l.at_end]
-        self.row_limits = rows_lim + ends
+        phase_limits = [self._phase_limits(q) for q in range(len(self.phases))]
+        # every limit with constraint rows, once by name (a phase's limits among them)
+        seen, self.row_limits = set(), []
+        for lims in phase_limits:
+            for l in lims:
+                if l.kind not in ("pump", "setting") and (l.at_end or l.state is None) and l.name not in seen:
+                    seen.add(l.name)
+                    self.row_limits.append(l)
         gs = P.add("g_scale", max(len(self.row_limits), 1))
         scale_of = {l.name: gs[i] for i, l in enumerate(self.row_limits)}
         u_s = W.add("u", nu, M)
         u = u_s * ca.repmat(us, 1, M)
-        if self.free_time:
+        if self.phased:
+            ts = P.add("t_scale")
+            Ds = W.add("D", len(self.stretches))
+            D = Ds * ts
+            T = ca.sum1(D)
+            if not self.free_time:
+                P.add("T")  # the fixed end time is a timing row's bound; kept for parameters()
+        elif self.free_time:
             ts = P.add("t_scale")
             T = W.add("T") * ts
+            D = T
         else:
             T = P.add("T")
+            D = T
         z = W.add("z") if self.combine == "worst" else None
         smooth = P.add("smoothing") if self.has_smoothing else None
         risk = P.add("risk") if self.combine == "mean_std" else None
 
-        f = m.function_p("f", [m.rhs])
-        step_of = np.arange(N) // k
-        u_pts = u[:, np.repeat(step_of, d)]
-        gfun_pts = m.function_p("g_points", [ca.vertcat(*[l.expr for l in rows_lim])]) if rows_lim else None
-        u_dep = [l for l in rows_lim if l.on_pump]
-        gfun_steps = m.function_p("g_steps", [ca.vertcat(*[l.expr for l in u_dep])]) if u_dep else None
-        gfun_end = m.function_p("g_end", [ca.vertcat(*[l.expr for l in ends])]) if ends else None
+        # per phase: the model's functions
+        funs = []
+        for q, (pm, lims) in enumerate(zip(self.phase_models, phase_limits)):
+            path = [l for l in lims if not l.at_end and l.kind not in ("pump", "setting")]
+            rows_lim = [l for l in path if l.state is None]
+            u_dep = [l for l in rows_lim if l.on_pump]
+            ends = [l for l in lims if l.at_end]
+            end = self.phases[q].end
+            funs.append(dict(
+                f=pm.function_p("f", [pm.rhs]), rows_lim=rows_lim, u_dep=u_dep, ends=ends,
+                bounds=[l for l in path if l.state is not None],
+                g_pts=pm.function_p("g_points", [ca.vertcat(*[l.expr for l in rows_lim])]) if rows_lim else None,
+                g_steps=pm.function_p("g_steps", [ca.vertcat(*[l.expr for l in u_dep])]) if u_dep else None,
+                g_end=pm.function_p("g_end", [ca.vertcat(*[l.expr for l in ends])]) if ends else None,
+                until=condition_function(pm, end) if end.kind == "when" else None,
+                until_scale=bound_scale(end.level, None) if end.kind == "when" else 1.0,
+            ))
         J_fn = m.objective_function()
 
         g, groups = [], []
         row = 0
 
-        def add_rows(expr, kind, name, scenario, stride=1, first=0):
+        def add(expr, grp_kind, name, scenario, **extra):
             nonlocal row
             n = expr.shape[0]
             g.append(expr)
             idx = np.arange(row, row + n)
-            groups.append(_RowGroup(kind, name, idx[first::stride], scenario))
+            groups.append(_RowGroup(grp_kind, name, idx, scenario, **extra))
+            row += n
             return idx
 
-        self.blocks, J_s = [], []
-        fracs = g_.fractions
+        def add_limit_rows(vals, lims, n_cols, scenario):
+            """Rows of limits ``lims`` evaluated at ``n_cols`` points (vals: L x n_cols)."""
+            nonlocal row
+            L = len(lims)
+            flat = ca.vec(vals / ca.repmat(ca.vertcat(*[scale_of[l.name] for l in lims]), 1, n_cols))
+            g.append(flat)
+            for i, lim in enumerate(lims):
+                groups.append(_RowGroup("limit", lim.name, row + i + L * np.arange(n_cols), scenario))
+            row += flat.shape[0]
+
+        self.blocks, self.block_bounds, J_s = [], [], []
+        self.stretch_blocks = []  # [scenario][stretch]
+        offsets = np.concatenate([[0], np.cumsum(steps)])
+        t_starts = [ca.MX(0.0)] if self.phased else [0.0]
+        for i in range(1, len(self.stretches)):
+            t_starts.append(t_starts[-1] + D[i - 1])
         for s in range(S):
-            blk = Block(f"s{s}", f, fracs, d, W, x0[:, s], const[:, s], T, 0.0, u_pts, xs)
-            self.blocks.append(blk)
-            r = blk.residuals
-            g.append(r)
-            groups.append(_RowGroup("model", "model equations", np.arange(row, row + r.shape[0]), s))
-            row += r.shape[0]
-            if rows_lim:
-                vals = gfun_pts.map(N * d)(blk.t_points, blk.X, u_pts, const[:, s])  # (L, N*d)
-                vals = vals / ca.repmat(ca.vertcat(*[scale_of[l.name] for l in rows_lim]), 1, N * d)
-                L = len(rows_lim)
-                flat = ca.vec(vals)
-                g.append(flat)
-                for i, lim in enumerate(rows_lim):
-                    groups.append(_RowGroup("limit", lim.name, row + i + L * np.arange(N * d), s))
-                row += flat.shape[0]
-            if u_dep:
-                cols = [q * k for q in range(M)]  # element that starts each pump step
-                vals = gfun_steps.map(M)(blk.t_start[:, cols], blk.x_start[:, cols], u, const[:, s])
-                vals = vals / ca.repmat(ca.vertcat(*[scale_of[l.name] for l in u_dep]), 1, M)
-                L = len(u_dep)
-                flat = ca.vec(vals)
-                g.append(flat)
-                for i, lim in enumerate(u_dep):
-                    groups.append(_RowGroup("limit", lim.name, row + i + L * np.arange(M), s))
-                row += flat.shape[0]
-            if ends:
-                vals = gfun_end(T, blk.x_end, u[:, M - 1], const[:, s]) / ca.vertcat(*[scale_of[l.name] for l in ends])
-                g.append(vals)
-                for i, lim in enumerate(ends):
-                    groups.append(_RowGroup("limit", lim.name, np.array([row + i]), s))
-                row += len(ends)
+            xa = x0[:, s]
+            row_blocks = []
+            for i, st in enumerate(self.stretches):
+                q = st.phase
+                fn = funs[q]
+                Mi = steps[i]
+                Ni = Mi * N // g_.pump_steps if self.phased else N
+                ki = max(Ni // Mi, 1)
+                Ni = Mi * ki
+                ui = u[:, offsets[i]:offsets[i + 1]]
+                u_pts = ui[:, np.repeat(np.arange(Ni) // ki, d)]
+                p_q = phase_constants(self.phase_models[q], self.phases[q], const[:, s])
+                name = f"s{s}" if not self.phased else f"s{s}.{i}"
+                Di = D[i] if self.phased else D
+                blk = Block(name, fn["f"], np.linspace(0.0, 1.0, Ni + 1), d, W, xa, p_q, Di, t_starts[i], u_pts, xs)
+                blk.stretch, blk.steps_cols = i, (offsets[i], offsets[i + 1])
+                self.blocks.append(blk)
+                row_blocks.append(blk)
+                self.block_bounds.append((blk, fn["bounds"]))
+                add(blk.residuals, "model", "model equations", s)
+                if fn["rows_lim"]:
+                    vals = fn["g_pts"].map(Ni * d)(blk.t_points, blk.X, u_pts, p_q)
+                    add_limit_rows(vals, fn["rows_lim"], Ni * d, s)
+                if fn["u_dep"]:
+                    cols = [j * ki for j in range(Mi)]  # element that starts each pump step
+                    vals = fn["g_steps"].map(Mi)(blk.t_start[:, cols], blk.x_start[:, cols], ui, p_q)
+                    add_limit_rows(vals, fn["u_dep"], Mi, s)
+                if fn["until"] is not None:
+                    # the phase goes on (distance >= 0) at its points, and ends where it reaches 0
+                    vals = fn["until"].map(Ni * d)(blk.t_points, blk.X, u_pts, p_q) / fn["until_scale"]
+                    add(ca.vec(vals), "timing", f"phase {self.phases[q].name} goes on", s, lower=0.0,
+                        upper=np.inf)
+                st_end = st.end
+                if st_end[0] == "phase" and fn["until"] is not None:
+                    last = fn["until"](t_starts[i] + Di, blk.x_end, ui[:, Mi - 1], p_q) / fn["until_scale"]
+                    add(last, "timing", f"phase {self.phases[q].name} ends", s)
+                if st_end[0] == "addition":
+                    xa = jump(self.phase_models[q], self.model.problem.additions[st_end[1]], blk.x_end)
+                else:
+                    xa = blk.x_end
+            self.stretch_blocks.append(row_blocks)
+            last_blk = row_blocks[-1]
+            q_last = self.stretches[-1].phase
+            fn = funs[q_last]
+            p_last = phase_constants(self.phase_models[q_last], self.phases[q_last], const[:, s])
+            if fn["ends"]:
+                vals = fn["g_end"](T, last_blk.x_end, u[:, M - 1], p_last)
+                add_limit_rows(vals, fn["ends"], 1, s)
             if J_fn is not None:
-                J_s.append(J_fn(T, blk.x_end, u[:, M - 1], const[:, s], x0[:, s]))
+                J_s.append(J_fn(T, last_blk.x_end, u[:, M - 1], p_last, x0[:, s]))
+
+        # the time line: each cut where it belongs (shared by every scenario)
+        if self.phased:
+            cum = ca.cumsum(Ds)
+            for i, st in enumerate(self.stretches):
+                kind, j = st.end
+                if kind == "addition":
+                    t_a = self.model.problem.additions[j].time
+                    add(cum[i], "timing", f"addition at {t_a:g} h", 0, lower=t_a, upper=t_a, in_time=True)
+                elif kind == "phase":
+                    e = self.phases[j].end
+                    if e.kind == "at":
+                        add(cum[i], "timing", f"phase {self.phases[j].name} ends", 0, lower=e.time, upper=e.time,
+                            in_time=True)
+                    elif e.kind == "between":
+                        add(cum[i], "timing", f"phase {self.phases[j].name} ends", 0, lower=e.lower,
+                            upper=e.upper, in_time=True)
+                else:
+                    add(cum[i], "timing", "end of the run", 0, lower=np.nan, upper=np.nan, in_time=True)
 
         if J_fn is None:
             obj = ca.MX(0)
@@ -248,9 +408,7 @@ class FeedNLP:
             # epigraph: the worst scenario's objective is z (scaled by j_scale)
             # maximize: z <= J_s/j_scale for every s; minimize: z >= J_s/j_scale
             for s, J in enumerate(J_s):
-                g.append(-self.sense * (z - J / js))  # <= 0
-                groups.append(_RowGroup("epigraph", f"scenario {s}", np.array([row]), s))
-                row += 1
+                add(-self.sense * (z - J / js), "epigraph", f"scenario {s}", s)  # <= 0
             obj = self.sense * z
             J_comb = z * js
         else:
@@ -286,9 +444,9 @@ class FeedNLP:
         P.put(v, "j_scale", data.j_scale)
         P.put(v, "weights", data.weights)
         P.put(v, "g_scale", [data.scale[l.name] for l in self.row_limits] or [1.0])
-        if self.free_time:
+        if "t_scale" in P:
             P.put(v, "t_scale", data.t_scale)
-        else:
+        if "T" in P:
             P.put(v, "T", data.end_time)
         if self.has_smoothing:
             P.put(v, "smoothing", data.smoothing)
@@ -296,29 +454,50 @@ class FeedNLP:
             P.put(v, "risk", data.risk)
         return v
 
+    def pump_bounds(self, data: NLPData):
+        """(lower, upper), each (nu, M) L/h: the data's pump ranges, narrowed step by
+        step to each phase's own range."""
+        M = sum(self.steps)
+        lo = np.broadcast_to(_per_step(data.pump_min), (self.model.nu, M)).copy()
+        hi = np.broadcast_to(_per_step(data.pump_max), (self.model.nu, M)).copy()
+        if self.phased:
+            offsets = np.concatenate([[0], np.cumsum(self.steps)])
+            for i, st in enumerate(self.stretches):
+                for name, (a, b) in self.phases[st.phase].pumps.items():
+                    j = self.model.feed_names.index(name)
+                    lo[j, offsets[i]:offsets[i + 1]] = np.maximum(lo[j, offsets[i]:offsets[i + 1]], a)
+                    hi[j, offsets[i]:offsets[i + 1]] = np.minimum(hi[j, offsets[i]:offsets[i + 1]], b)
+            lo = np.minimum(lo, hi)
+        return lo, hi
+
     def bounds(self, data: NLPData):
         """(lbx, ubx, lbg, ubg) for ``data``."""
         m, W = self.model, self.W
         lbx = np.full(self.n_w, -np.inf)
         ubx = np.full(self.n_w, np.inf)
         us = _pump_scale(data)
-        W.put(lbx, "u", _per_step(data.pump_min) / us[:, None])
-        W.put(ubx, "u", _per_step(data.pump_max) / us[:, None])
-        if self.free_time:
+        lo_u, hi_u = self.pump_bounds(data)
+        W.put(lbx, "u", lo_u / us[:, None])
+        W.put(ubx, "u", hi_u / us[:, None])
+        if "T" in W:
             W.put(lbx, "T", data.end_bounds[0] / data.t_scale)
             W.put(ubx, "T", data.end_bounds[1] / data.t_scale)
+        if "D" in W:
+            W.put(lbx, "D", 0.0)
+            W.put(ubx, "D", data.end_bounds[1] / data.t_scale)
         nspecies = len(m.problem.species)
-        xl = np.full(m.nx, -np.inf)
-        xu = np.full(m.nx, np.inf)
-        xl[:nspecies] = 0.0  # species are kept non-negative
-        xl[m.index("V")] = 1e-9
-        for lim in self.bound_limits:
-            lo, hi = data.lower[lim.name], data.upper[lim.name]
-            if lo is not None:
-                xl[lim.state] = max(xl[lim.state], lo)
-            if hi is not None:
-                xu[lim.state] = min(xu[lim.state], hi)
-        for blk in self.blocks:
+        xl0 = np.full(m.nx, -np.inf)
+        xu0 = np.full(m.nx, np.inf)
+        xl0[:nspecies] = 0.0  # species are kept non-negative
+        xl0[m.index("V")] = 1e-9
+        for blk, lims in self.block_bounds:
+            xl, xu = xl0.copy(), xu0.copy()
+            for lim in lims:
+                lo, hi = data.lower[lim.name], data.upper[lim.name]
+                if lo is not None:
+                    xl[lim.state] = max(xl[lim.state], lo)
+                if hi is not None:
+                    xu[lim.state] = min(xu[lim.state], hi)
             W.put(lbx, blk.var, (xl / data.x_scale)[:, None])
             W.put(ubx, blk.var, (xu / data.x_scale)[:, None])
         lbg = np.zeros(self.n_g)
@@ -331,6 +510,13 @@ class FeedNLP:
                 ubg[grp.rows] = np.inf if hi is None else hi / sc
             elif grp.kind == "epigraph":
                 lbg[grp.rows], ubg[grp.rows] = -np.inf, 0.0
+            elif grp.kind == "timing":
+                lo, hi = grp.lower, grp.upper
+                if np.isnan(lo):  # the end of the run
+                    lo, hi = data.end_bounds
+                if grp.in_time:
+                    lo, hi = lo / data.t_scale, hi / data.t_scale
+                lbg[grp.rows], ubg[grp.rows] = lo, hi
         return lbx, ubx, lbg, ubg
 
     def arguments(self, data: NLPData) -> dict:
@@ -339,25 +525,69 @@ class FeedNLP:
         return {"p": self.parameters(data), "lbx": lbx, "ubx": ubx, "lbg": lbg, "ubg": ubg}
 
     # ------------------------------------------------------------------ maps
-    def pack(self, data: NLPData, steps_u, T, times, states) -> np.ndarray:
+    def cut_times(self, T: float, switches: dict | None = None) -> np.ndarray:
+        """End time (h) of every stretch for a run of length T whose phases end at
+        ``switches`` (phase name -> h; default: a fixed end's time, a window's guess)."""
+        switches = switches or {}
+        out = []
+        for st in self.stretches:
+            kind, j = st.end
+            if kind == "addition":
+                out.append(self.model.problem.additions[j].time)
+            elif kind == "phase":
+                ph = self.phases[j]
+                default = ph.end.time if ph.end.kind == "at" else (ph.end.guess if ph.end.guess is not None else T / 2)
+                out.append(float(switches.get(ph.name, default)))
+            else:
+                out.append(T)
+        return np.minimum(np.maximum.accumulate(np.asarray(out, dtype=float)), T)
+
+    def step_times(self, cuts) -> np.ndarray:
+        """(M + 1,) pump-step boundaries (h) for stretch end times ``cuts``."""
+        starts = np.concatenate([[0.0], cuts[:-1]])
+        edges = [a + (b - a) * np.arange(Mi) / Mi for a, b, Mi in zip(starts, cuts, self.steps)]
+        return np.concatenate(edges + [[cuts[-1]]])
+
+    def pack(self, data: NLPData, steps_u, T, times, states, switches: dict | None = None,
+             t_steps=None) -> np.ndarray:
         """Scaled NLP vector from a physical guess: pump rates per step (M, nu), end
         time T (h), and per scenario the states sampled at ``times`` (a list of
-        (n, nx) arrays, or one array used for every scenario)."""
+        (n, nx) arrays, or one array used for every scenario). For a run with phases
+        or additions, ``steps_u`` may be on any grid over [0, T] (uniform, or with
+        boundaries ``t_steps``; it is resampled onto the stretches' steps) and
+        ``switches`` gives the phases' end times (phase name -> h)."""
         W, m = self.W, self.model
         w = W.zeros()
         us = _pump_scale(data)
-        W.put(w, "u", (np.asarray(steps_u, dtype=float) / us[None, :]).T)
-        if self.free_time:
+        steps_u = np.asarray(steps_u, dtype=float)
+        if self.phased:
+            cuts = self.cut_times(T, switches)
+            edges = self.step_times(cuts)
+            mid = 0.5 * (edges[:-1] + edges[1:])
+            Mg = steps_u.shape[0]
+            if t_steps is None:
+                k = (mid / T * Mg).astype(int)
+            else:
+                k = np.searchsorted(np.asarray(t_steps, dtype=float), mid, side="right") - 1
+            steps_u = steps_u[np.clip(k, 0, Mg - 1)]
+            W.put(w, "D", np.diff(np.concatenate([[0.0], cuts])) / data.t_scale)
+            starts = np.concatenate([[0.0], cuts[:-1]])
+            durations = np.diff(np.concatenate([[0.0], cuts]))
+        else:
+            starts, durations = [0.0], [T]
+        W.put(w, "u", (steps_u / us[None, :]).T)
+        if "T" in W:
             W.put(w, "T", T / data.t_scale)
         if not isinstance(states, list):
             states = [states] * self.S
             times = [times] * self.S
         elif not isinstance(times, list):
             times = [times] * self.S
-        for s, blk in enumerate(self.blocks):
-            tp = blk.point_times(T)
-            X = np.array([np.interp(tp, times[s], states[s][:, i]) for i in range(m.nx)])
-            W.put(w, blk.var, X / data.x_scale[:, None])
+        for s, row in enumerate(self.stretch_blocks):
+            for blk, t0, Di in zip(row, starts, durations):
+                tp = blk.point_times(Di, t0)
+                X = np.array([np.interp(tp, times[s], states[s][:, i]) for i in range(m.nx)])
+                W.put(w, blk.var, X / data.x_scale[:, None])
         if self.combine == "worst":
             J = self.scenario_objectives(w, data)
             W.put(w, "z", (J.min() if self.sense < 0 else J.max()) / data.j_scale)
@@ -371,24 +601,42 @@ class FeedNLP:
         W, m, g_ = self.W, self.model, self.grid
         us = _pump_scale(data)
         u = W.get(w, "u") * us[:, None]
-        u = np.clip(u, _per_step(data.pump_min), _per_step(data.pump_max))
-        if self.free_time:
+        u = np.clip(u, *self.pump_bounds(data))
+        if self.phased:
+            D = np.maximum(W.get(w, "D").ravel() * data.t_scale, 0.0)
+            cuts = np.cumsum(D)
+            lo, hi = data.end_bounds
+            T = float(np.clip(cuts[-1], lo, hi))
+            cuts = np.minimum(cuts, T)
+            cuts[-1] = T
+        elif self.free_time:
             T = float(np.clip(W.get(w, "T")[0, 0] * data.t_scale, *data.end_bounds))
+            cuts = np.array([T])
         else:
             T = float(data.end_time)
-        blk = self.blocks[scenario]
-        X = W.get(w, blk.var) * data.x_scale[:, None]
-        x0 = data.x0[:, scenario]
-        step_of = np.repeat(np.arange(g_.elements) // g_.elements_per_step, g_.degree)
-        u_pts = u[:, step_of]
+            cuts = np.array([T])
+        starts = np.concatenate([[0.0], cuts[:-1]])
+        offsets = np.concatenate([[0], np.cumsum(self.steps)])
+        t_pts, x_pts, u_pts = [np.array([0.0])], [data.x0[:, scenario][None, :]], [u[:, 0][None, :]]
+        for i, blk in enumerate(self.stretch_blocks[scenario]):
+            X = W.get(w, blk.var) * data.x_scale[:, None]
+            Ni = blk.N
+            ui = u[:, offsets[i]:offsets[i + 1]]
+            step_of = np.repeat(np.arange(Ni) // (Ni // ui.shape[1]), g_.degree)
+            t_pts.append(blk.point_times(cuts[i] - starts[i], starts[i]))
+            x_pts.append(X.T)
+            u_pts.append(ui[:, step_of].T)
+        switches = {self.phases[st.end[1]].name: float(cuts[i]) for i, st in enumerate(self.stretches)
+                    if st.end[0] == "phase"}
         return Unpacked(
-            t_points=np.concatenate([[0.0], blk.point_times(T)]),
-            x_points=np.vstack([x0, X.T]),
-            u_points=np.vstack([u[:, 0], u_pts.T]),
-            t_steps=np.linspace(0.0, T, g_.pump_steps + 1),
+            t_points=np.concatenate(t_pts),
+            x_points=np.vstack(x_pts),
+            u_points=np.vstack(u_pts),
+            t_steps=self.step_times(cuts) if self.phased else np.linspace(0.0, T, g_.pump_steps + 1),
             u_steps=u.T.copy(),
-            x_end=X[:, -1].copy(),
+            x_end=x_pts[-1][-1].copy(),
             T=T,
+            switches=switches,
         )
 
     def split_steps(self, finer: "FeedNLP", w, lam_g, lam_x):
@@ -401,7 +649,8 @@ class FeedNLP:
         """
         g0, g1 = self.grid, finer.grid
         if (g0.elements, g0.degree) != (g1.elements, g1.degree) or g1.pump_steps % g0.pump_steps \
-                or self.S != finer.S or self.free_time != finer.free_time or self.combine != finer.combine:
+                or self.S != finer.S or self.free_time != finer.free_time or self.combine != finer.combine \
+                or [b.N for b in self.blocks] != [b.N for b in finer.blocks]:
             return None
         r = g1.pump_steps // g0.pump_steps
         w, lam_g, lam_x = (np.asarray(v, dtype=float).ravel() for v in (w, lam_g, lam_x))
@@ -415,16 +664,15 @@ class FeedNLP:
                 W1.put(w1, name, W0.get(w, name))
                 W1.put(lx1, name, W0.get(lam_x, name))
         lg1 = np.zeros(finer.n_g)
-        old = {(grp.kind, grp.name, grp.scenario, len(grp.rows)): grp.rows for grp in self.groups}
-        for grp in finer.groups:
-            rows = old.get((grp.kind, grp.name, grp.scenario, len(grp.rows)))
-            if rows is not None:
-                lg1[grp.rows] = lam_g[rows]
-                continue
-            # a limit's rows at pump-step starts: the old steps start at every r-th new one
-            coarse = old.get((grp.kind, grp.name, grp.scenario, len(grp.rows) // r))
-            if coarse is not None and len(grp.rows) == r * len(coarse):
-                lg1[grp.rows[::r]] = lam_g[coarse]
+        # the same row groups in the same order: a group that kept its rows, or a
+        # limit's rows at pump-step starts (the old steps start at every r-th new one)
+        for g0_, g1_ in zip(self.groups, finer.groups):
+            if (g0_.kind, g0_.name, g0_.scenario) != (g1_.kind, g1_.name, g1_.scenario):
+                return None
+            if len(g1_.rows) == len(g0_.rows):
+                lg1[g1_.rows] = lam_g[g0_.rows]
+            elif len(g1_.rows) == r * len(g0_.rows):
+                lg1[g1_.rows[::r]] = lam_g[g0_.rows]
         return w1, lg1, lx1
 
     def objective_value(self, w, data: NLPData) -> float:
@@ -449,9 +697,11 @@ class FeedNLP:
             elif grp.kind == "limit":
                 v = float(excess[grp.rows].max(initial=0.0)) * data.scale[grp.name]
                 out[grp.name] = max(out.get(grp.name, 0.0), v)
+            elif grp.kind == "timing":
+                out["phase timing"] = max(out.get("phase timing", 0.0), float(excess[grp.rows].max(initial=0.0)))
         w = np.asarray(w, dtype=float).ravel()
-        for lim in self.bound_limits:
-            for blk in self.blocks:
+        for blk, lims in self.block_bounds:
+            for lim in lims:
                 idx = self.W.indices(blk.var)[lim.state]
                 sc = data.x_scale[lim.state]
                 v = float(np.maximum(np.maximum(lbx[idx] - w[idx], w[idx] - ubx[idx]), 0.0).max()) * sc
@@ -482,10 +732,10 @@ class FeedNLP:
             if grp.kind == "limit":
                 add(grp.name, lam_g[grp.rows], data.scale[grp.name])
         lbx, ubx, _, _ = self.bounds(data)
-        for lim in self.bound_limits:
+        for blk, lims in self.block_bounds:
             # a species' non-negativity is not the limit: count a multiplier only where
             # the limit's own bound is the one in force
-            for blk in self.blocks:
+            for lim in lims:
                 idx = self.W.indices(blk.var)[lim.state]
                 lam = lam_x[idx].copy()
                 own_lo = data.lower[lim.name] is not None and np.isclose(
@@ -498,7 +748,7 @@ class FeedNLP:
         idx_u = self.W.indices("u")
         for j, fd in enumerate(self.model.problem.feeds):
             add(f"pump {fd.name}", lam_x[idx_u[j]], us[j])
-        if self.free_time:
+        if "T" in self.W:
             add("end time", lam_x[self.W.indices("T").ravel()], data.t_scale)
         return {n: (_gain(self.sense, a), _gain(self.sense, b)) for n, (a, b) in sums.items()}
 
@@ -523,7 +773,7 @@ def _gain(sense: float, dJ: float) -> float:
 
 
 def structure_key(problem, grid: Grid, free_time: bool, scenarios: int = 1, combine: str = "mean",
-                  smoothing: bool = False) -> str:
+                  smoothing: bool = False, stretches: tuple | None = None) -> str:
     """Identity of the NLP's graph: problems with equal keys share one FeedNLP.
 
     It holds everything that shapes the equations (names, expressions, which
@@ -543,6 +793,10 @@ def structure_key(problem, grid: Grid, free_time: bool, scenarios: int = 1, comb
                                                None if obj.expression is None else obj.expression.text,
                                                None if obj.integral is None else obj.integral.text],
         "grid": [grid.pump_steps, grid.elements, grid.degree],
+        # phases and additions: their numbers are baked into the graph, so all of them
+        "phases": [repr(ph) for ph in p.phases],
+        "additions": [repr(a) for a in p.additions],
+        "stretches": [repr(st) for st in (stretches or ())],
         "free_time": free_time, "scenarios": scenarios, "combine": combine, "smoothing": bool(smoothing),
     }
     return hashlib.sha256(json.dumps(parts, sort_keys=True).encode()).hexdigest()[:24]

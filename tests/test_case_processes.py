@@ -226,7 +226,7 @@ def test_a_stopped_sweep_leaves_no_case_process_and_resumes(tmp_path):
             if proc.poll() is None:
                 proc.kill()
                 proc.wait()
-        assert proc.returncode == 130, (stop, stderr)
+        assert proc.returncode == 130, (stop, stdout, stderr)
         assert "Traceback" not in stderr and "stopped" in stdout, (stop, stdout, stderr)
         _, alive = psutil.wait_procs(cases, timeout=5)
         assert alive == [], f"a case process outlived the sweep stopped by {stop}"

@@ -125,14 +125,14 @@ def test_free_end_time_matches_scan_of_fixed_end_times(write):
     free = optimize(write("free.yaml", PRODUCTIVITY.format(end_time="{min: 6 h, max: 60 h, guess: 25 h}")))
     assert free.status == "optimal, verified", free.message
     scan = {}
-    for tf in np.arange(10.0, 52.0, 4.0):
+    for tf in np.arange(10.0, 52.0, 6.0):
         r = optimize(write(f"fixed_{tf:g}.yaml", PRODUCTIVITY.format(end_time=f"{tf} h")))
         assert r.status == "optimal, verified", r.message
         scan[tf] = r.objective_sim
     best_tf = max(scan, key=scan.get)
     # the free optimum is at least as good as every fixed end time (it may fall between them)
     assert free.objective_sim >= max(scan.values()) * (1 - 1e-3)
-    assert abs(free.end_time - best_tf) <= 4.0
+    assert abs(free.end_time - best_tf) <= 6.0
     # and the objective is flat there: a free end time's marginal value is ~0
     assert abs(free.record["end_time_marginal_per_h"]) < 1e-4 * free.objective_sim
 

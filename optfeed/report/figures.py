@@ -177,7 +177,9 @@ def plot_indices(t, u, max_points: int = 1500) -> np.ndarray:
 def _thin(traj, idx):
     import dataclasses
 
-    return dataclasses.replace(traj, t=traj.t[idx], x=traj.x[idx], u=traj.u[idx])
+    return dataclasses.replace(traj, t=traj.t[idx], x=traj.x[idx], u=traj.u[idx],
+                               piece=None if traj.piece is None else traj.piece[idx],
+                               phase=None if traj.phase is None else traj.phase[idx])
 
 
 def _limit_values(model, traj):
