@@ -382,7 +382,9 @@ def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = No
     table for every feed of ``feed_names`` and no other (a misspelt name is named,
     with the closest feed), times from 0 increasing and before ``end_time`` (h),
     rates finite and not negative; ``switch_times`` as :func:`load_schedule` checks
-    a file's phase ends for a problem with ``phases``.
+    a file's phase ends for a problem with ``phases`` (entries for phases that a
+    fixed time or a condition ends, as a simulated run's switches hold, are not
+    used and not checked).
 
     Raises
     ------
@@ -414,7 +416,9 @@ def checked_schedule(schedule: Schedule, feed_names, end_time: float | None = No
             issues.append(Issue(where, None, name, "times, rates and growth must be finite numbers"))
             continue
         issues += _check_rows(where, name, times, rates, growth, [None] * len(times), schedule.interpolation, end)
-    given = {str(n): (float(t), None, f"switch_times.{n}") for n, t in (schedule.switch_times or {}).items()}
+    kinds = {ph.name: ph.end.kind for ph in phases or ()}
+    given = {str(n): (float(t), None, f"switch_times.{n}") for n, t in (schedule.switch_times or {}).items()
+             if kinds.get(n, "between") == "between"}  # the ends of the others (a run's switches) are not used
     if phases or given:
         issues += _switch_issues(where, tuple(phases or ()), given, None, "switch_times")
     if issues:

@@ -162,7 +162,8 @@ class Simulator:
         With phases or additions the run goes phase by phase (see
         :meth:`_run_phased`); ``switch_times`` (phase name -> h) gives the end of a
         phase whose end a schedule chooses ('between'), before the schedule's own
-        ``switch_times``.
+        ``switch_times``; entries for phases that a fixed time or a condition ends
+        are not used (those ends come from the problem and the simulation).
 
         Raises
         ------
@@ -334,11 +335,7 @@ class Simulator:
                                          f"phase {ph.name!r} ends at {value:g} h, outside its window "
                                          f"({e.lower:g} h to {e.upper:g} h)")
                 ends.append(value)
-            else:
-                if ph.name in given and e.kind == "when":
-                    raise InputError.one(where, None, f"phases.{ph.name}",
-                                         f"phase {ph.name!r} ends when {e.text}: its end is found by "
-                                         "simulation, a schedule cannot give it")
+            else:  # a condition's end comes from the simulation (a given one is not used)
                 ends.append(None)
         return ends
 

@@ -280,7 +280,7 @@ def test_limits_see_each_phase_with_its_own_values():
     model = build_model(problem)
     sched = load_schedule(PLAN, problem.feed_names, 24.0, problem.phases)
     traj = Simulator(model).run(sched, 24.0)
-    limits = build_limits(model)
+    limits = build_limits(model, phases=True)
     g = evaluate(model, limits, traj)[:, [x.name for x in limits].index("OTR ceiling")]
     X, S = traj.state("X"), traj.state("S")
     mu_max = np.where(traj.phase == 2, 0.25, 0.55)
