@@ -162,6 +162,31 @@ class OptimizeResult:
     def trajectory(self):
         return None if self.verification is None else self.verification.trajectory
 
+    @property
+    def phases(self) -> tuple:
+        """For a problem with phases: each phase's start and end (h) in the
+        re-simulated answer and what ended it (``check.PhaseRow``)."""
+        from .check import PhaseRow, phase_rows
+
+        traj = self.trajectory
+        if traj is None or not self.problem.phases:
+            return ()
+        rows = []
+        for row, ph in zip(phase_rows(self.problem, traj, self.end_time), self.problem.phases):
+            if ph.end.kind == "between":
+                row = PhaseRow(row.name, row.start, row.end,
+                               f"chosen by optimize within {ph.end.lower:g}-{ph.end.upper:g} h")
+            rows.append(row)
+        return tuple(rows)
+
+    @property
+    def additions(self) -> tuple:
+        """The additions applied in the re-simulated answer (``check.AdditionRow``)."""
+        from .check import addition_rows
+
+        traj = self.trajectory
+        return () if traj is None else addition_rows(traj)
+
     # -- for people (optfeed.results): a one-line repr, the run as plain columns
     def trajectory_table(self) -> dict:
         """The re-simulated run as plain columns in display units, units in the names
@@ -206,6 +231,7 @@ MAX_BACKOFF_ROUNDS = 3
 # exact warm start converges in 25-60 iterations; measured: an 8-scenario refinement
 # that had not converged after 500 iterations, 100 s, with its objective settled)
 REFINE_ITER = 200
+SHORTEST_STEP = 1e-5  # of the run: a phased answer's shorter pump steps are left out of its schedule
 DISTINCT_REL = 1e-4  # coarse answers closer than this (objective and pump profile) are one optimum
 
 
@@ -230,7 +256,7 @@ class _Job:
         self.scenarios = scenarios
         self.settings = problem.settings
         self.full, self.lean, self.limits = models(problem)
-        self.full_limits = build_limits(self.full)
+        self.full_limits = build_limits(self.full, phases=True)  # judged as check judges
         self.fixed, self.t_bounds, self.T = end_time_info(problem)
         self.free = self.fixed is None
         self.progress = on_progress or (lambda *a: None)
@@ -347,7 +373,12 @@ class _Job:
     def schedule_of(self, un):
         """The pump schedule of an unpacked answer as schedule.csv will hold it
         (rounded, exact zeros), with its phases' end times."""
-        schedule = round_schedule(pump_schedule(self.full.feed_names, un.t_steps, un.u_steps),
+        t_steps, u_steps = un.t_steps, un.u_steps
+        if un.switches:  # a stretch squeezed to nothing leaves steps no pump can run: drop them
+            keep = np.diff(t_steps) > SHORTEST_STEP * un.T
+            keep[0] = True
+            t_steps, u_steps = np.append(t_steps[:-1][keep], t_steps[-1]), u_steps[keep]
+        schedule = round_schedule(pump_schedule(self.full.feed_names, t_steps, u_steps),
                                   self.problem.feeds, end_time=un.T)
         if un.switches:
             schedule = dataclasses.replace(schedule, switch_times=dict(un.switches))
@@ -401,6 +432,56 @@ def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
     keep = list(first.values())
     return replace(sc, constants=sc.constants[:, keep], x0=sc.x0[:, keep], values=sc.values[:, keep],
                    labels=tuple(sc.labels[s] for s in keep), weights=np.array([weight[k] for k in first]))
+
+
+def _choose_order(job, data, guesses, record) -> None:
+    """Where a phase end that optimize times may fall on either side of an addition
+    (an induction window holding a sampling time), the order of the two is part of
+    the NLP's shape. Try each order with a coarse solve from the first guess and keep
+    the best (recorded); with one order there is nothing to choose."""
+    p = job.problem
+    windows = []
+    for ph in p.phases:
+        if ph.end.kind != "between":
+            continue
+        cuts = [a.time for a in p.additions if ph.end.lower < a.time < ph.end.upper]
+        edges = [ph.end.lower] + cuts + [ph.end.upper]
+        windows.append([(ph.name, 0.5 * (a + b), (a, b)) for a, b in zip(edges[:-1], edges[1:])])
+    orders = list(itertools.product(*windows))
+    if len(orders) <= 1:
+        return
+    orders = orders[:12]
+    s = job.settings
+    tried = []
+    for order in orders:
+        ends = {name: mid for name, mid, _ in order}
+        job.plan(guesses, ends)
+        nlp = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
+        g = guesses[0]
+        try:
+            w0 = job.pack_from_schedule(nlp, data, g.steps_u, g.T, switches=ends)
+        except Exception:  # noqa: BLE001 - the guess cannot be followed in this order: try the next
+            continue
+        start = solve(nlp, data, w0, "phase order", profile="cold", tolerance=s.tolerance,
+                      max_iter=min(COARSE_ITER, s.max_iter), deadline=job.deadline, report=job.report)
+        ok = start.status == "converged" and start.objective is not None
+        tried.append((order, ends, start.objective if ok else None, job.stretches))
+    usable = [t for t in tried if t[2] is not None]
+    if not usable:
+        job.plan(guesses)
+        record["phase_order"] = "no order of phase ends and additions converged on the coarse grid; kept the guess's"
+        return
+    best = usable[0]
+    for t in usable[1:]:
+        if job.better(t[2], best[2]):
+            best = t
+    job.stretches = best[3]
+    words = []
+    for order, _, J, _ in tried:
+        where = ", ".join(f"{name} ending in {a:g}-{b:g} h" for name, _, (a, b) in order)
+        words.append(f"{where}: " + ("no converged solve" if J is None else f"{J * job.f_obj:.6g} {job.unit}".rstrip()))
+    record["phase_order"] = ("a phase end optimize times can fall on either side of an addition; coarse solves "
+                             "per order: " + "; ".join(words) + ". Kept the best.")
 
 
 def _seed_guesses(job, seeds) -> list:
@@ -587,6 +668,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
     scaling = scaling_for(problem, job.lean, guesses, job.full)
     data = job.data(scaling)
     job.plan(guesses)
+    _choose_order(job, data, guesses, record)
     coarse = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
     fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
     # build the solvers the starts use before they fork, so no process builds its own
@@ -795,7 +877,7 @@ def _excess(job, ver) -> dict:
     out = {}
     margin = job.problem.vessel.margin
     for lim, rep in zip(job.full_limits, ver.limits):
-        if lim.kind in ("pump", "setting"):
+        if lim.kind in ("pump", "setting", "phase pump"):
             continue
         slack = rep.min_slack / lim.factor  # to the limit itself, internal units
         bound = lim.upper if rep.side == "max" else lim.lower
@@ -1134,7 +1216,9 @@ def _blocked_at_start(job) -> str:
     """A path limit that no pump setting can meet at t = 0, described; '' if none."""
     feeds = job.problem.feeds
     corners = list(itertools.product(*[(f.min_rate, f.max_rate) for f in feeds]))[:64]
-    path = [l for l in job.full_limits if not l.at_end and l.kind not in ("pump", "setting")]
+    first = job.problem.phases[0].name if job.problem.phases else None
+    path = [l for l in job.full_limits if not l.at_end and l.kind not in ("pump", "setting", "phase pump")
+            and l.phase in (None, first)]
     if not path:
         return ""
     g = limit_function(job.full, path)
@@ -1170,7 +1254,7 @@ def _always_broken(job, guesses) -> str:
     broken = None
     for traj in trials:
         reports, _ = judge(job.full, job.full_limits, traj)
-        names = {r.name: r for r in reports if r.violated and r.kind not in ("pump", "setting")}
+        names = {r.name: r for r in reports if r.violated and r.kind not in ("pump", "setting", "phase pump")}
         if broken is None:
             broken = {n: [r] for n, r in names.items()}
         else:

@@ -18,6 +18,7 @@ from optfeed.report import write_optimize_run
 from conftest import CONFIGS, ROOT
 
 PROBLEMS = [CONFIGS / "inhibited_product.yaml", CONFIGS / "animal_cell.yaml", CONFIGS / "fast_microbe.yaml",
+            CONFIGS / "induced_protein.yaml",
             *sorted((ROOT / "tests" / "published").glob("*.yaml"))]
 
 

@@ -272,6 +272,7 @@ def optimize_summary(result) -> dict:
             "relative_difference": None if ver is None else ver.objective_rel_diff,
         },
         "end_time_h": result.end_time,
+        **phases_dict(result),
         "verification": None if ver is None else {
             "verified": ver.verified, "message": ver.message,
             "worst_limit_excess_relative": ver.worst_violation, "worst_limit": ver.worst_limit,
@@ -341,6 +342,7 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
         if result.trajectory is not None:
             model = build_model(result.problem)
             units = {f.name: f.unit for f in result.problem.feeds}
+            phase_names = [ph.name for ph in result.problem.phases]
             end = f" --end-time {result.end_time!r}" if result.problem.horizon.free else ""
             answer = result.objective_nlp is not None  # a converged solve, verified or not
             name = "schedule.csv" if answer else "closest-schedule.csv"
@@ -349,18 +351,21 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
                        "why the problem failed.\n") +
                     f"Run length: {result.end_time!r} h. Check it with: "
                     f"optfeed check PROBLEM --schedule {name}{end}")
-            (tmp / name).write_text(schedule_csv_text(result.schedule, units, note))
+            (tmp / name).write_text(schedule_csv_text(result.schedule, units, note, phase_names,
+                                                      result.trajectory.switches))
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
         nominal = result.nominal
+        phase_names = [ph.name for ph in result.problem.phases]
         if nominal is not None and nominal.schedule is not None:
             end = f" --end-time {nominal.end_time!r}" if result.problem.horizon.free else ""
             (tmp / "nominal-schedule.csv").write_text(schedule_csv_text(nominal.schedule, {
                 f.name: f.unit for f in result.problem.feeds},
                 f"NOT THE ANSWER: the optimum of the nominal problem alone ({nominal.status}) for "
                 f"{result.problem.name}, kept for comparison with schedule.csv.\nRun length: {nominal.end_time!r} h. "
-                f"Check it with: optfeed check PROBLEM --schedule nominal-schedule.csv{end}"))
+                f"Check it with: optfeed check PROBLEM --schedule nominal-schedule.csv{end}", phase_names,
+                None if nominal.trajectory is None else nominal.trajectory.switches))
         mc = result.uncertainty
         if mc is not None:
             write_csv(tmp / "montecarlo.csv", *montecarlo_rows(mc))

@@ -391,6 +391,9 @@ def optimize_page(result, drawings=(), svgs=(), figure_note: str = "") -> Page:
                     f"<p class=note>{esc(spread)}</p>")
     sections.append(Section("objective", "Objective", "".join(body)))
     reports = [v.report for v in result.limits]
+    phased = phases_section(result) if result.trajectory is not None else None
+    if phased is not None:
+        sections.append(phased)
     sections.append(limits_section(reports, list(result.limits), unit, result.objective_nlp,
                                    "Limits at the optimum (re-simulated)"))
     if result.record.get("scenarios"):

@@ -212,6 +212,7 @@ def optimize_text(result) -> str:
             lines.append(f"  spread over converged starts: {result.spread:.2%} of the best")
         lines.append("")
     if result.limits:
+        lines += phase_lines(result)
         lines += ["Limits at the optimum (re-simulated):"] + limits_table([v.report for v in result.limits]) + [""]
         lines.append(f"Marginal values (gain in objective, {unit}, per unit relaxation of a limit;")
         lines.append("ACTIVE = it holds the optimum back, its marginal value is not zero):")
