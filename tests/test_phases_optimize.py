@@ -127,3 +127,32 @@ def test_free_induction_time_matches_a_scan_of_fixed_times(tmp_path):
     best_t = max(scan, key=scan.get)
     assert free.objective_sim >= max(scan.values()) * (1 - 1e-3), (free.objective_sim, scan)
     assert abs(t_free - best_t) <= 2.0 + 1e-9, (t_free, scan)
+
+
+def test_a_sweep_reports_when_each_phase_ended(tmp_path):
+    # Reference: the same schedule checked on its own (its phases' ends), and the
+    # proposed plan's own induction time (its phase column says 12 h).
+    import csv
+    import shutil
+
+    from conftest import CONFIGS
+    from optfeed.sweep import run_sweep
+
+    for name in ("induced_protein.yaml", "induced_protein_plan.csv"):
+        shutil.copy(CONFIGS / name, tmp_path / name)
+    (tmp_path / "s.yaml").write_text("problems: induced_protein.yaml\njob: check\nschedule: induced_protein_plan.csv\n"
+                                     "grid:\n  parameters.mu_max: [0.5 1/h, 0.6 1/h]\n")
+    r = run_sweep(tmp_path / "s.yaml", tmp_path / "out", workers=1)
+    assert r.status == "finished", r.message
+    # its figures read the cases' schedules, phase column and all
+    assert not (tmp_path / "out" / "figures" / "figure-not-drawn.txt").exists()
+    rows = list(csv.DictReader(open(tmp_path / "out" / "summary.csv")))
+    for row in rows:
+        mu = float(row["parameters.mu_max [1/h]"])
+        alone = check(load_problem(tmp_path / "induced_protein.yaml", set={"parameters.mu_max": f"{mu} 1/h"}),
+                      tmp_path / "induced_protein_plan.csv")
+        assert float(row["end of phase batch [h]"]) == pytest.approx(alone.trajectory.switches["batch"], rel=1e-9)
+        assert float(row["end of phase growth [h]"]) == pytest.approx(12.0)
+    # a faster culture spends its batch glucose sooner
+    ends = sorted((float(r_["parameters.mu_max [1/h]"]), float(r_["end of phase batch [h]"])) for r_ in rows)
+    assert ends[1][1] < ends[0][1]

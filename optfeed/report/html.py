@@ -707,6 +707,7 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
                 svgs.append(svg_text(d, f"f{k}-"))
         except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figures a convenience
             note = f"The figures could not be drawn: {exc}"
+            png_folder.mkdir(parents=True, exist_ok=True)
             (png_folder / "figure-not-drawn.txt").write_text(note + "\n")
             for d in drawings:
                 (png_folder / f"{d.name}.png").unlink(missing_ok=True)

@@ -54,6 +54,7 @@ def limit_figures(reports) -> dict:
 
 
 LIMITS_KEY = "limit slacks"
+PHASE_END = "end of phase "  # a case's figure: when that phase ended, h
 
 
 def summary_table(sweep, rows) -> tuple[list[str], list[list]]:
@@ -72,7 +73,8 @@ def summary_table(sweep, rows) -> tuple[list[str], list[list]]:
     header += [_head("objective", next(iter(objective_units), "")) if one_objective_unit else "objective"]
     if not one_objective_unit:
         header.append("objective unit")
-    header += ["end time [h]", "run time [s]"]
+    phase_ends = list(dict.fromkeys(k for r in rows for k in (r.get("figures") or {}) if k.startswith(PHASE_END)))
+    header += ["end time [h]"] + [_head(k, "h") for k in phase_ends] + ["run time [s]"]
     header += [_head(f"smallest slack: {name}", unit) for name, unit in limit_units.items()]
     header += ["message", "run_dir"]
     table = []
@@ -82,7 +84,8 @@ def summary_table(sweep, rows) -> tuple[list[str], list[list]]:
         row += [r["status"], _num(r["objective"])]
         if not one_objective_unit:
             row.append(r.get("objective_unit") or "")
-        row += [_num(r["end_time_h"]), _num(r["seconds"])]
+        row += [_num(r["end_time_h"])] + [_num((r.get("figures") or {}).get(k)) for k in phase_ends]
+        row += [_num(r["seconds"])]
         slacks = {lim["name"]: lim for lim in _limits_of(r)}
         for name, unit in limit_units.items():
             lim = slacks.get(name)
@@ -264,7 +267,9 @@ def _best_feed(row):
         return None
     lines = [l for l in src.read_text().splitlines() if l and not l.startswith("#")]
     header = next(csv.reader([lines[0]]))
-    data = np.array([[float(x) for x in next(csv.reader([l]))] for l in lines[1:]])
+    numeric = [i for i, h in enumerate(header) if h.strip() != "phase"]  # a phased run's phase column is words
+    header = [header[i] for i in numeric]
+    data = np.array([[float(x) for k, x in enumerate(next(csv.reader([l]))) if k in numeric] for l in lines[1:]])
     feed_cols = [i for i, h in enumerate(header[1:], 1) if "growth" not in h]
     if src is traj:
         feed_cols = [i for i, h in enumerate(header) if h.endswith("/h]") and "mmol" not in h and i > 0][:4]

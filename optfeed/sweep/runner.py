@@ -91,7 +91,7 @@ def _run_case(task: Task) -> dict:
     from ..provenance import problem_digest
     from ..report import write_check_run, write_optimize_run
     from ..schedule import load_schedule
-    from .outputs import limit_figures
+    from .outputs import PHASE_END, limit_figures
 
     t0 = time.perf_counter()
     target = Path(task.run_dir)
@@ -125,6 +125,8 @@ def _run_case(task: Task) -> dict:
         figures.update(limit_figures(r.limits))
         objective = None if r.outcome is None or r.outcome.objective is None else r.outcome.objective.value
         end_time = r.end_time
+    # when each phase ended (the induction time a sweep may be about), h
+    figures.update({f"{PHASE_END}{row.name}": row.end for row in r.phases if row.how != "end of run"})
     unit = getattr(r, "objective_unit", None)
     if unit is None and getattr(r, "outcome", None) is not None and r.outcome.objective is not None:
         unit = r.outcome.objective.unit
