@@ -22,12 +22,12 @@ PROBLEMS = [CONFIGS / "inhibited_product.yaml", CONFIGS / "animal_cell.yaml", CO
             *sorted((ROOT / "tests" / "published").glob("*.yaml"))]
 
 
-@pytest.mark.parametrize("path", PROBLEMS, ids=lambda p: p.stem)
 # fast_microbe without pump-grid refinement: its refinement to 320 steps stops at the
 # iteration limit after ~35 s, and the written schedule is what is judged here
 SETTINGS = {"fast_microbe": {"solver.refine_grid": False}}
 
 
+@pytest.mark.parametrize("path", PROBLEMS, ids=lambda p: p.stem)
 def test_every_written_schedule_passes_check_as_written(path, optimized, tmp_path):
     r = optimized(path, SETTINGS.get(path.stem))
     assert r.status == "optimal, verified", r.message
