@@ -607,7 +607,15 @@ class FeedNLP:
             cuts = np.cumsum(D)
             lo, hi = data.end_bounds
             T = float(np.clip(cuts[-1], lo, hi))
-            cuts = np.minimum(cuts, T)
+            for i, st in enumerate(self.stretches):  # IPOPT meets timing rows to ~1e-7 h: put each cut in place
+                kind, j = st.end
+                if kind == "addition":
+                    cuts[i] = self.model.problem.additions[j].time
+                elif kind == "phase" and self.phases[j].end.kind == "at":
+                    cuts[i] = self.phases[j].end.time
+                elif kind == "phase" and self.phases[j].end.kind == "between":
+                    cuts[i] = np.clip(cuts[i], self.phases[j].end.lower, self.phases[j].end.upper)
+            cuts = np.minimum(np.maximum.accumulate(cuts), T)
             cuts[-1] = T
         elif self.free_time:
             T = float(np.clip(W.get(w, "T")[0, 0] * data.t_scale, *data.end_bounds))
