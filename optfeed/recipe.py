@@ -208,6 +208,9 @@ def recipe(run_folder, unit: str | None = None, step: str = DEFAULT_STEP, start:
     changes = [0] + [i for i in range(1, len(set_rates)) if not np.array_equal(set_rates[i], set_rates[i - 1])]
     internal = set_rates[changes] / np.array([factor_to(units[n]) for n in problem.feed_names])[None, :]
     rounded = piecewise_constant(problem.feed_names, edges[changes], internal, source=str(folder / "recipe.csv"))
+    if getattr(original, "switch_times", None):  # the phases end where the run's schedule says
+        import dataclasses
+        rounded = dataclasses.replace(rounded, switch_times=dict(original.switch_times))
 
     ref = check(problem, original, end_time=tf if problem.horizon.free else None)
     new = check(problem, rounded, end_time=tf if problem.horizon.free else None)
