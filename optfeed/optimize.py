@@ -310,10 +310,11 @@ class _Job:
                        smoothing=self.settings.smoothing > 0, stretches=self.stretches,
                        phase_models=self.lean_phases)
 
-    def plan(self, guesses, ends: dict | None = None):
+    def plan(self, guesses, ends: dict | None = None, end_time: float | None = None):
         """Cut the run at its phase ends and additions (a run with phases or
         additions): the phases end where ``ends`` says, else where the first
-        simulated guess's phases ended, else at their guesses."""
+        simulated guess's phases ended, else at their guesses; the run ends near
+        ``end_time`` (default: the nominal; it decides which additions happen)."""
         p = self.problem
         if not (p.phases or p.additions):
             return
@@ -327,7 +328,10 @@ class _Job:
                 known[ph.name] = ph.end.time
             elif ph.name not in known:  # a condition the guess never met: somewhere in the run
                 known[ph.name] = self.T * 0.5
-        self.stretches = plan_stretches(p, self.settings.pump_steps, known, self.T)
+        try:
+            self.stretches = plan_stretches(p, self.settings.pump_steps, known, end_time or self.T)
+        except ValueError as exc:
+            raise InputError([Issue(p.source, None, "solver.pump_steps", str(exc))]) from None
 
     def scenario_inputs(self):
         """(x0 of the full model, constants) per scenario: [(x0, p), ...]."""
@@ -436,9 +440,10 @@ def merge_identical(sc: ScenarioSet | None) -> ScenarioSet | None:
 
 def _choose_order(job, data, guesses, record) -> None:
     """Where a phase end that optimize times may fall on either side of an addition
-    (an induction window holding a sampling time), the order of the two is part of
-    the NLP's shape. Try each order with a coarse solve from the first guess and keep
-    the best (recorded); with one order there is nothing to choose."""
+    (an induction window holding a sampling time), or a free end of the run before
+    or after one (whether that addition happens at all), the order is part of the
+    NLP's shape. Try each order with a coarse solve from the first guess and keep the
+    best (recorded); with one order there is nothing to choose."""
     p = job.problem
     windows = []
     for ph in p.phases:
@@ -447,6 +452,11 @@ def _choose_order(job, data, guesses, record) -> None:
         cuts = [a.time for a in p.additions if ph.end.lower < a.time < ph.end.upper]
         edges = [ph.end.lower] + cuts + [ph.end.upper]
         windows.append([(ph.name, 0.5 * (a + b), (a, b)) for a, b in zip(edges[:-1], edges[1:])])
+    if job.free:  # additions the free end may come before or after: which happen is part of the shape
+        lo, hi = job.t_bounds
+        cuts = [a.time for a in p.additions if lo < a.time < hi]
+        edges = [lo] + cuts + [hi]
+        windows.append([(None, 0.5 * (a + b), (a, b)) for a, b in zip(edges[:-1], edges[1:])])
     orders = list(itertools.product(*windows))
     if len(orders) <= 1:
         return
@@ -454,8 +464,9 @@ def _choose_order(job, data, guesses, record) -> None:
     s = job.settings
     tried = []
     for order in orders:
-        ends = {name: mid for name, mid, _ in order}
-        job.plan(guesses, ends)
+        ends = {name: mid for name, mid, _ in order if name is not None}
+        end_time = next((mid for name, mid, _ in order if name is None), None)
+        job.plan(guesses, ends, end_time)
         nlp = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
         g = guesses[0]
         try:
@@ -478,10 +489,10 @@ def _choose_order(job, data, guesses, record) -> None:
     job.stretches = best[3]
     words = []
     for order, _, J, _ in tried:
-        where = ", ".join(f"{name} ending in {a:g}-{b:g} h" for name, _, (a, b) in order)
+        where = ", ".join(f"{name or 'the run'} ending in {a:g}-{b:g} h" for name, _, (a, b) in order)
         words.append(f"{where}: " + ("no converged solve" if J is None else f"{J * job.f_obj:.6g} {job.unit}".rstrip()))
-    record["phase_order"] = ("a phase end optimize times can fall on either side of an addition; coarse solves "
-                             "per order: " + "; ".join(words) + ". Kept the best.")
+    record["phase_order"] = ("a phase end or the end of the run that optimize times can fall on either side of "
+                             "an addition; coarse solves per order: " + "; ".join(words) + ". Kept the best.")
 
 
 def _seed_guesses(job, seeds) -> list:
@@ -596,6 +607,12 @@ def optimize(problem, workers: int | None = None, on_progress=None, time_limit: 
 
         scenarios = scenario_set(problem, build_model(problem))
     scenarios = merge_identical(scenarios)
+    when = next((ph for ph in problem.phases if ph.end.kind == "when"), None)
+    if scenarios is not None and when is not None:
+        raise InputError([Issue(problem.source, None, f"{when.key}.until",
+                                "a phase that ends on a condition cannot be optimised over uncertainty scenarios "
+                                "yet (each scenario meets the condition at its own time); check the schedule "
+                                "with --uncertainty instead, or end the phase at a time")])
     say = on_progress or (lambda *a: None)
     with interrupt_guard():
         if scenarios is None:
@@ -645,11 +662,6 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
         base.update(kw)
         return OptimizeResult(**base)
 
-    if scenarios is not None and any(ph.end.kind == "when" for ph in problem.phases):
-        raise InputError([Issue(problem.source, None, "phases",
-                                "a phase that ends on a condition cannot be optimised over uncertainty scenarios "
-                                "yet (each scenario meets the condition at its own time); check the schedule "
-                                "with --uncertainty instead, or end the phase at a time")])
     blocked = _blocked_at_start(job)
     if blocked:
         return result(st.INFEASIBLE, f"before solving: {blocked}")
@@ -1181,7 +1193,7 @@ def _no_answer(job, result, starts, summaries, coarse, fine, data, diagnosis) ->
         if broken:
             lim, rep = max(broken, key=lambda lr: lr[0].relative_excess(lr[1]))
             where = (f"; the closest schedule the solver found breaks '{lim.name}' from {rep.first_violation:.4g} h "
-                     f"by up to {rep.worst_violation:.4g} {lim.unit}".rstrip() +
+                     f"by up to {rep.worst_violation:.4g} {rep.unit}".rstrip() +
                      " (its figures and limit table are in the run folder)")
         elif name:
             where = f"; the solver's closest point misses '{name}' by {amount}"
@@ -1213,8 +1225,20 @@ def _worst_violation(job, nlp, data, w):
 
 
 def _blocked_at_start(job) -> str:
-    """A path limit that no pump setting can meet at t = 0, described; '' if none."""
+    """A path limit that no pump setting can meet at t = 0, or a first phase that
+    would end as it starts, described; '' if none."""
     feeds = job.problem.feeds
+    first = job.problem.phases[0] if job.problem.phases else None
+    if first is not None and first.end.kind == "when":
+        from .phases import condition_function, models_like, phase_constants
+
+        m = models_like(job.full)[0]
+        u = np.array([first.pumps.get(f.name, (f.min_rate, f.max_rate))[0] for f in feeds])
+        left = float(condition_function(m, first.end)(0.0, job.full.x0, u, phase_constants(m, first, m.p0)))
+        if left <= 0:
+            return (f"phase '{first.name}' would end as the run starts: '{first.end.text}' already holds at t = 0 "
+                    f"(key {first.key}.until); start it from initial values on the other side, or leave the "
+                    "phase out")
     corners = list(itertools.product(*[(f.min_rate, f.max_rate) for f in feeds]))[:64]
     first = job.problem.phases[0].name if job.problem.phases else None
     path = [l for l in job.full_limits if not l.at_end and l.kind not in ("pump", "setting", "phase pump")

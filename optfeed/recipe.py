@@ -208,9 +208,15 @@ def recipe(run_folder, unit: str | None = None, step: str = DEFAULT_STEP, start:
     changes = [0] + [i for i in range(1, len(set_rates)) if not np.array_equal(set_rates[i], set_rates[i - 1])]
     internal = set_rates[changes] / np.array([factor_to(units[n]) for n in problem.feed_names])[None, :]
     rounded = piecewise_constant(problem.feed_names, edges[changes], internal, source=str(folder / "recipe.csv"))
-    if getattr(original, "switch_times", None):  # the phases end where the run's schedule says
+    if getattr(original, "switch_times", None):
+        # the phases end where the run's schedule says, a time the run chose (induction)
+        # on the controller's step too, so that pump changes and the phase change coincide
         import dataclasses
-        rounded = dataclasses.replace(rounded, switch_times=dict(original.switch_times))
+
+        chosen = {ph.name for ph in problem.phases if ph.end.kind == "between"}
+        ends = {n: (float(edges[np.argmin(np.abs(edges - t))]) if n in chosen else t)
+                for n, t in original.switch_times.items()}
+        rounded = dataclasses.replace(rounded, switch_times=ends)
 
     ref = check(problem, original, end_time=tf if problem.horizon.free else None)
     new = check(problem, rounded, end_time=tf if problem.horizon.free else None)
@@ -460,6 +466,15 @@ def recipe_schedule_text(result: RecipeResult) -> str:
     """The rounded recipe in the CSV format ``optfeed check --schedule`` reads: a
     row per step where a setpoint changes, rates in the pump units as set."""
     names = result.problem.feed_names
+    if result.problem.phases:  # with the phase column, in hours, split where each phase ends
+        from .schedule import schedule_csv_text
+
+        traj = result.check.trajectory
+        return schedule_csv_text(
+            result.schedule, {n: result.units[n] for n in names},
+            f"Rounded pump recipe from {result.run_folder} for {result.problem.name}.\n"
+            f"Run length: {result.end_time!r} h. Check it with: optfeed check PROBLEM --schedule schedule.csv",
+            [ph.name for ph in result.problem.phases], None if traj is None else traj.switches)
     first = 3 + (result.start is not None)
     lines = [f"# Rounded pump recipe from {result.run_folder} for {result.problem.name}.",
              f"# Run length: {result.end_time!r} h. Check it with: optfeed check PROBLEM --schedule schedule.csv",

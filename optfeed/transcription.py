@@ -90,7 +90,9 @@ def plan_stretches(problem, pump_steps: int, ends: dict, end_time: float) -> tup
     shared out by each stretch's share of the run (at least one each).
     """
     phases = phases_of(problem)
-    cuts = [(a.time, 0, ("addition", j)) for j, a in enumerate(problem.additions)]
+    # an addition at or after the run's end never happens (a free end time's plan
+    # holds the end before the first one left out, see FeedNLP.end_window)
+    cuts = [(a.time, 0, ("addition", j)) for j, a in enumerate(problem.additions) if a.time < end_time]
     for k, ph in enumerate(phases[:-1]):
         cuts.append((float(ends[ph.name]), 1, ("phase", k)))
     cuts.sort()
@@ -211,11 +213,40 @@ class FeedNLP:
         self.stretches = tuple(stretches) if stretches else (Stretch(0, grid.pump_steps, ("run", -1)),)
         self.phased = len(self.stretches) > 1
         self.phase_models = list(phase_models) if phase_models else [model] * len(self.phases)
+        self.end_window = self._end_window()
         self._build()
         self._solvers = {}
         self._derivatives = None
 
     # ------------------------------------------------------------------ build
+    def _end_window(self) -> tuple:
+        """(earliest, latest) end of the run (h) that this time line allows: after
+        the last addition it holds and before the first it leaves out."""
+        adds = self.model.problem.additions
+        held = {st.end[1] for st in self.stretches if st.end[0] == "addition"}
+        after = [a.time for j, a in enumerate(adds) if j in held]
+        left = [a.time for j, a in enumerate(adds) if j not in held]
+        return (max(after) + 1e-6 if after else 0.0), (min(left) if left else np.inf)
+
+    def fixed_durations(self, data: "NLPData") -> dict:
+        """Stretch index -> its duration (h) where both its ends are fixed times (an
+        addition, a fixed phase end, a fixed end of the run)."""
+        out, prev = {}, 0.0
+        for i, st in enumerate(self.stretches):
+            kind, j = st.end
+            if kind == "addition":
+                t = self.model.problem.additions[j].time
+            elif kind == "phase" and self.phases[j].end.kind == "at":
+                t = self.phases[j].end.time
+            elif kind == "run" and data.end_time is not None:
+                t = data.end_time
+            else:
+                t = None
+            if t is not None and prev is not None:
+                out[i] = t - prev
+            prev = t
+        return out
+
     def _steps(self) -> list[int]:
         """Pump steps of each stretch on this NLP's grid."""
         if not self.phased:
@@ -485,6 +516,11 @@ class FeedNLP:
         if "D" in W:
             W.put(lbx, "D", 0.0)
             W.put(ubx, "D", data.end_bounds[1] / data.t_scale)
+            # a stretch between two fixed times has a fixed length: a fixed variable,
+            # not a free one held by equality rows (IPOPT then leaves it out)
+            idx = W.indices("D").ravel()
+            for i, length in self.fixed_durations(data).items():
+                lbx[idx[i]] = ubx[idx[i]] = max(length, 0.0) / data.t_scale
         nspecies = len(m.problem.species)
         xl0 = np.full(m.nx, -np.inf)
         xu0 = np.full(m.nx, np.inf)
@@ -512,8 +548,8 @@ class FeedNLP:
                 lbg[grp.rows], ubg[grp.rows] = -np.inf, 0.0
             elif grp.kind == "timing":
                 lo, hi = grp.lower, grp.upper
-                if np.isnan(lo):  # the end of the run
-                    lo, hi = data.end_bounds
+                if np.isnan(lo):  # the end of the run, within what this time line allows
+                    lo, hi = max(data.end_bounds[0], self.end_window[0]), min(data.end_bounds[1], self.end_window[1])
                 if grp.in_time:
                     lo, hi = lo / data.t_scale, hi / data.t_scale
                 lbg[grp.rows], ubg[grp.rows] = lo, hi
@@ -606,7 +642,7 @@ class FeedNLP:
             D = np.maximum(W.get(w, "D").ravel() * data.t_scale, 0.0)
             cuts = np.cumsum(D)
             lo, hi = data.end_bounds
-            T = float(np.clip(cuts[-1], lo, hi))
+            T = float(np.clip(cuts[-1], max(lo, self.end_window[0]), min(hi, self.end_window[1])))
             for i, st in enumerate(self.stretches):  # IPOPT meets timing rows to ~1e-7 h: put each cut in place
                 kind, j = st.end
                 if kind == "addition":
@@ -754,10 +790,26 @@ class FeedNLP:
                 add(lim.name, lam, data.x_scale[lim.state])
         us = _pump_scale(data)
         idx_u = self.W.indices("u")
+        # a pump's own range: only the steps where its own bound is the one in force
+        # (not where a phase narrows it, e.g. turns it off in a batch)
+        M = idx_u.shape[1]
+        own_lo = np.broadcast_to(_per_step(data.pump_min), (self.model.nu, M))
+        own_hi = np.broadcast_to(_per_step(data.pump_max), (self.model.nu, M))
+        lo_u, hi_u = self.pump_bounds(data)
         for j, fd in enumerate(self.model.problem.feeds):
-            add(f"pump {fd.name}", lam_x[idx_u[j]], us[j])
+            lam = lam_x[idx_u[j]]
+            lam = np.where(lam < 0, np.where(lo_u[j] == own_lo[j], lam, 0.0), np.where(hi_u[j] == own_hi[j], lam, 0.0))
+            add(f"pump {fd.name}", lam, us[j])
         if "T" in self.W:
             add("end time", lam_x[self.W.indices("T").ravel()], data.t_scale)
+        elif self.phased and self.free_time:
+            rows = next(g.rows for g in self.groups if g.kind == "timing" and g.name == "end of the run")
+            lam = lam_g[rows]
+            if len(self.stretches) > 1 and self.stretches[-2].end[0] == "addition":
+                # the last stretch's length >= 0 is the end's lower bound at that addition's time
+                last = lam_x[self.W.indices("D").ravel()[-1]]
+                lam = np.append(lam, min(last, 0.0))
+            add("end time", lam, data.t_scale)
         return {n: (_gain(self.sense, a), _gain(self.sense, b)) for n, (a, b) in sums.items()}
 
 

@@ -5,8 +5,10 @@ copy of ``ok_schedule.csv`` (or a small YAML schedule) with exactly one defect; 
 header comment of each file says which. Two binary files, two very large ones, two
 FIFOs and a link to /dev/zero are made at run time.
 
-For every case both ``optfeed validate`` and ``optfeed check`` run as subprocesses
-(side by side, to keep the suite quick) and must:
+For every case both ``optfeed validate`` and ``optfeed check`` run, through the
+command line's own entry point, in one separate Python process for the whole corpus
+(tests/cli_batch.py; the FIFO and device cases each in their own processes), and
+must:
 
 * exit with code 2 (bad input);
 * print ``optfeed: bad input`` as the first line of stderr, and no traceback;
@@ -160,6 +162,19 @@ CASES = [
          r"^growth 1000 1/h on a rate of 0 keeps the pump off \(an exponential of zero stays zero\)"),
     Case("schedule_growth_overflow.csv", 5, "glucose",
          r"^rate 0\.05 L/h growing at 150 1/h passes any finite number before 10 h"),
+    # ---- phases and additions in problem files (each the ok phased problem with one defect)
+    Case("problem_phase_last_until.yaml", 30, "phases[2].until", r"^the last phase ends with the run"),
+    Case("problem_phase_unknown_parameter.yaml", 29, "phases[2].parameters.mu_mx",
+         r"^'mu_mx' is not a parameter of this problem .*did you mean 'mu_max'"),
+    Case("problem_phase_condition_unit.yaml", 25, "phases[0].until", r"^the level '0.5 h' has dimension \[time\]"),
+    Case("problem_phase_window_order.yaml", 27, "phases[1].until.between",
+         r"^the earliest time '8 h' must be below the latest '5 h'"),
+    Case("problem_phase_uncertain_parameter.yaml", 29, "phases[2].parameters.mu_max",
+         r"^'mu_max' is uncertain .* this phase sets it to one value"),
+    Case("problem_addition_outside.yaml", 31, "additions[0]", r"^an addition at 12 h lies outside the run"),
+    Case("problem_addition_both.yaml", 31, "additions[0]", r"^give 'sample' .* or 'bolus'"),
+    Case("problem_bolus_amount_unit.yaml", 31, "additions[0].amounts.S",
+         r"an amount of 'S' is its concentration times a volume"),
     # ---- phase ends in schedules (paired with ok_phased_problem.yaml: batch until S < 0.5 g/L, fed ending
     #      between 5 h and 8 h, late)
     Case("schedule_phase_unknown.csv", 5, "phase", r"^'feed' is not a phase of this problem; did you mean 'fed'",
@@ -325,11 +340,9 @@ def _params():
     return out
 
 
-@pytest.mark.parametrize("case", _params())
-def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path):
-    path = _input_path(case, tmp_path)
-    results = tmp_path / "results"
-    before = _files_under(tmp_path)
+def _commands(case: Case, path: Path, folder: Path):
+    """(validate argv, check argv, the check's results folder) for a case's file."""
+    results = folder / "results"
     if case.is_schedule:
         problem, schedule = (CORPUS / case.problem if case.problem else OK_PROBLEM), path
         validate = ["validate", str(problem), "--schedule", str(schedule)]
@@ -337,14 +350,55 @@ def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path):
         problem, schedule = path, OK_SCHEDULE
         validate = ["validate", str(problem)]
     check = ["check", str(problem), "--schedule", str(schedule), "--results", str(results)]
+    return validate, check, results
 
-    (v_code, v_out, v_err), (c_code, c_out, c_err) = _run_all([validate, check], cwd=tmp_path)
+
+def _in_own_process(case: Case) -> bool:
+    """FIFOs and device links run as separate processes (a regression there could
+    block a reader for good); every other case runs in the one batch process."""
+    return case.file in MADE
+
+
+@pytest.fixture(scope="module")
+def batch(tmp_path_factory):
+    """Every case not run in its own process, run through tests/cli_batch.py (one
+    interpreter for all): case file -> (folder, path, files before, [(code, out, err)] x 2)."""
+    import json
+
+    cases = [c for c in CASES if not _in_own_process(c)]
+    prepared, jobs = {}, []
+    for case in cases:
+        folder = tmp_path_factory.mktemp("case")
+        path = _input_path(case, folder)
+        validate, check, _ = _commands(case, path, folder)
+        prepared[case.file] = (folder, path, _files_under(folder))
+        jobs += [{"argv": validate, "cwd": str(folder)}, {"argv": check, "cwd": str(folder)}]
+    out = tmp_path_factory.mktemp("batch") / "results.json"
+    done = subprocess.run([sys.executable, str(Path(__file__).parent / "cli_batch.py"), str(out)],
+                          input=json.dumps(jobs), env=_env(), text=True, capture_output=True,
+                          timeout=TIMEOUT * 5)
+    assert done.returncode == 0, done.stderr[-4000:]
+    results = json.loads(out.read_text())
+    return {c.file: (*prepared[c.file], results[2 * i:2 * i + 2]) for i, c in enumerate(cases)}
+
+
+@pytest.mark.parametrize("case", _params())
+def test_bad_input_is_refused_cleanly(case: Case, tmp_path: Path, batch):
+    if _in_own_process(case):
+        path = _input_path(case, tmp_path)
+        folder = tmp_path
+        before = _files_under(tmp_path)
+        validate, check, results = _commands(case, path, tmp_path)
+        (v_code, v_out, v_err), (c_code, c_out, c_err) = _run_all([validate, check], cwd=tmp_path)
+    else:
+        folder, path, before, ((v_code, v_out, v_err), (c_code, c_out, c_err)) = batch[case.file]
+        results = folder / "results"
 
     named = CORPUS / case.reported if case.reported else path
     _assert_clean_refusal("validate", v_code, v_out, v_err, named, case)
     _assert_clean_refusal("check", c_code, c_out, c_err, named, case)
     assert not results.exists() or not any(results.iterdir()), f"files written: {sorted(_files_under(results))}"
-    assert _files_under(tmp_path) == before, f"new files: {sorted(_files_under(tmp_path) - before)}"
+    assert _files_under(folder) == before, f"new files: {sorted(_files_under(folder) - before)}"
 
 
 # ---------------------------------------------------------------- the corpus itself

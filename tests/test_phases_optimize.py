@@ -156,3 +156,44 @@ def test_a_sweep_reports_when_each_phase_ended(tmp_path):
     # a faster culture spends its batch glucose sooner
     ends = sorted((float(r_["parameters.mu_max [1/h]"]), float(r_["end of phase batch [h]"])) for r_ in rows)
     assert ends[1][1] < ends[0][1]
+
+
+def test_a_phased_runs_recipe_is_checked_with_its_phases(tmp_path, optimized):
+    # Reference: the check job run on the recipe's own schedule.csv, read back from disk
+    # (the rounded recipe must keep the phase ends the run was optimised with).
+    from conftest import CONFIGS
+    from optfeed.recipe import recipe, write_recipe_run
+
+    r = optimized(CONFIGS / "induced_protein.yaml")
+    run = write_optimize_run(r, tmp_path / "run", figures=False)
+    rec = recipe(run, unit="mL/h", step="1 min", problem=CONFIGS / "induced_protein.yaml")
+    out = write_recipe_run(rec, tmp_path / "recipe", figures=False)
+    again = check(load_problem(CONFIGS / "induced_protein.yaml"), out / "schedule.csv")
+    # the file judged as the recipe job judged it: same verdict, phase ends and objective
+    assert again.status == rec.check.status, (again.message, rec.check.message)
+    assert again.trajectory.switches == pytest.approx(rec.check.trajectory.switches, abs=1e-9)
+    assert again.outcome.objective.value == pytest.approx(rec.check.outcome.objective.value, rel=1e-9)
+    # induction moved onto the controller's 1-minute clock, within half a step of the run's
+    assert abs(rec.check.trajectory.switches["growth"] - r.schedule.switch_times["growth"]) <= 0.5 / 60 + 1e-9
+
+
+def test_a_free_end_stops_before_additions_it_does_not_need(tmp_path):
+    # Reference: finite differences of the optimum in the earliest end time (its
+    # marginal value), and the simulation's own count of additions applied. Taking
+    # product costs time here, so the best run ends as early as allowed, and the
+    # samples after that end never happen (they must not hold the run open).
+    base = INDUCTION.format(tag="free_end", until="{between: [3 h, 8 h]}")
+    base = base.replace("horizon: {end_time: 16 h}", "horizon: {end_time: {min: MIN h, max: 20 h, guess: 15 h}}")
+    base = base.replace("objective: {maximize: product_mass, product: P}",
+                        "objective: {maximize: expression, expression: P * V - 3 * t}\n"
+                        "additions:\n  - {sample: 10 mL, every: 3 h}")
+    runs = {}
+    for lo in (10.0, 10.2):
+        r = optimize(load_problem(_write(tmp_path, f"min{lo:g}", base.replace("MIN", f"{lo:g}"))))
+        assert r.status.startswith("optimal"), r.message
+        runs[lo] = r
+    r = runs[10.0]
+    assert r.end_time == pytest.approx(10.0, abs=1e-6)
+    assert [a.time for a in r.additions] == [3.0, 6.0, 9.0]
+    slope = (runs[10.2].objective_sim - r.objective_sim) / 0.2
+    assert r.record["end_time_marginal_per_h"] == pytest.approx(slope, rel=0.1), (r.record["end_time_marginal_per_h"], slope)

@@ -266,6 +266,15 @@ class _Builder:
         settings = self._settings(horizon)
         uncertainty = check_uncertainty(r, self.source, self.lines, self.fail, self.issues)
         phases, additions = check_phases(self, species_dims, end_env, horizon, [b.name for b in bounds])
+        if uncertainty is not None:
+            uncertain = {v.ref for v in uncertainty.values if v.target == "constant"}
+            for i, ph in enumerate(r.phases):
+                for name in ph.parameters:
+                    if name in uncertain:
+                        self.fail(("phases", i, "parameters", name),
+                                  f"{name!r} is uncertain (the uncertainty section) and this phase sets it to one "
+                                  "value, which would drop its spread in the phase; make the phase's value a "
+                                  "parameter of its own (e.g. mu_max_induced) and give it a spread too")
 
         if not self.issues:
             self._dry_build(parameters, species, rates, vessel, bounds, objective)

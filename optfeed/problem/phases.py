@@ -29,6 +29,7 @@ file, line and key.
 
 from __future__ import annotations
 
+import difflib
 import math
 import re
 
@@ -111,8 +112,10 @@ def _phases(loader, raw, species_dims, env, horizon, bound_names):
         for name, value in ph.parameters.items():
             ploc = loc + ("parameters", name)
             if name not in raw.parameters:
+                close = difflib.get_close_matches(name, list(raw.parameters), n=3)
+                hint = f"; did you mean {', '.join(map(repr, close))}?" if close else ""
                 fail(ploc, f"{name!r} is not a parameter of this problem (a phase changes values the file "
-                           "gives under 'parameters')")
+                           f"gives under 'parameters'){hint}")
                 ok = False
                 continue
             got = loader.quantity(value, "any", ploc)
