@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 from . import status as st
 from .errors import InputError, SimulationError, TimeLimitReached
 from .limits import LimitReport, build_limits, judge
+from .phases import require_decided
 from .model import build_model
 from .montecarlo import MonteCarloResult, monte_carlo
 from .outcome import Outcome, outcome_of
@@ -212,6 +213,7 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
         For a bad problem or schedule file.
     """
     problem = as_problem(problem, set)
+    require_decided(problem, "check")
     if not uncertainty:
         for option, value in (("--samples", samples), ("--seed", seed), ("--workers", workers)):
             if value is not None:

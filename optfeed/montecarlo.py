@@ -268,6 +268,9 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     from .uncertainty import scenario_set
 
     problem = as_problem(problem)
+    from .phases import require_decided
+
+    require_decided(problem, "Monte Carlo")
     u = problem.uncertainty
     if u is None:
         raise InputError.one(problem.source, None, "uncertainty",

@@ -43,7 +43,7 @@ from .schedule import piecewise_constant, round_schedule
 from .simulate import Simulator
 from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
                     make_guesses, models, scaling_for, solve, states_for)
-from .phases import guess_switches, phase_models
+from .phases import base_model, decide, guess_switches, phase_models
 from .transcription import Grid, NLPData, plan_stretches
 from .uncertainty import ScenarioSet, scenario_set
 from .units import factor_to
@@ -256,7 +256,13 @@ class _Job:
         self.scenarios = scenarios
         self.settings = problem.settings
         self.full, self.lean, self.limits = models(problem)
+        # amounts of additions that optimize chooses: simulated (guesses) in the middle
+        # of their ranges; each answer verified with its own (see decided())
+        self.choosing = any(not a.decided for a in problem.additions)
+        if self.choosing:
+            self.full = base_model(decide(problem))
         self.full_limits = build_limits(self.full, phases=True)  # judged as check judges
+        self._decided = {}
         self.fixed, self.t_bounds, self.T = end_time_info(problem)
         self.free = self.fixed is None
         self.progress = on_progress or (lambda *a: None)
@@ -367,6 +373,18 @@ class _Job:
         ends = getattr(traj if traj is not None else tr, "switches", None)
         return nlp.pack(data, steps_u, T, times, states, switches=ends, t_steps=t_steps)
 
+    def decided(self, amounts: dict):
+        """(problem, full model, its limits, simulator) with the additions' chosen
+        ``amounts`` written in (addition index -> {species: amount})."""
+        key = tuple(sorted((j, sp, v) for j, d in amounts.items() for sp, v in d.items()))
+        if key not in self._decided:
+            problem = decide(self.problem, amounts)
+            full = base_model(problem)
+            self._decided[key] = (problem, full, build_limits(full, phases=True), Simulator(full))
+            while len(self._decided) > 8:
+                self._decided.pop(next(iter(self._decided)))
+        return self._decided[key]
+
     def switch_kwargs(self, switches=None) -> dict:
         """Simulator.run's switch times for a phased run (the given ones, else the
         guesses); nothing for a run without phases."""
@@ -398,6 +416,9 @@ class _Job:
         tol = self.settings.verify_tolerance
         ignore = ("setting",) if self.relaxed_pumps else ()
         if self.scenarios is None:
+            if self.choosing:
+                _, full, limits, sim = self.decided(un.amounts)
+                return verify(full, limits, schedule, un.T, start.objective, tol, sim, ignore=ignore)
             return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator,
                           ignore=ignore)
         J_nlp = nlp.scenario_objectives(start.w, data)
@@ -1120,11 +1141,18 @@ def _final(job, result, ans: _Answer | None, summaries, spread, record, diagnosi
             "weights": [float(w) for w in sc.weights],
             "values": _scenario_values(job.problem, sc),
         }
+    extra = {}
+    if job.choosing:  # the answer's problem: the additions' amounts as chosen (planned.yaml)
+        extra["problem"] = job.decided(un.amounts)[0]
+        record["chosen_amounts"] = [
+            {"addition": job.problem.additions[j].key, "time_h": job.problem.additions[j].time, "species": sp,
+             "amount": v, "min": job.problem.additions[j].chosen[sp][0], "max": job.problem.additions[j].chosen[sp][1]}
+            for j, d in sorted(un.amounts.items()) for sp, v in sorted(d.items())]
     return result(
         status, message, objective_nlp=best.objective * job.f_obj,
         objective_sim=objective_sim,
         end_time=un.T, limits=tuple(values_out), starts=summaries, spread=spread, verification=ver,
-        outcome=outcome, points=points,
+        outcome=outcome, points=points, **extra,
     )
 
 

@@ -98,9 +98,10 @@ def phase_constants(model: Model, phase: Phase, p):
     return p
 
 
-def jump(model: Model, addition: Addition, x):
+def jump(model: Model, addition: Addition, x, chosen: dict | None = None):
     """State right after ``addition`` from the state ``x`` right before it (numeric
-    or CasADi; see the module docstring)."""
+    or CasADi; see the module docstring). ``chosen``: species -> amount (number or
+    CasADi) for the amounts the addition leaves to optimize."""
     V_i = model.index("V")
     V = x[V_i]
     symbolic = isinstance(x, (ca.MX, ca.SX))
@@ -109,10 +110,11 @@ def jump(model: Model, addition: Addition, x):
         entries[V_i] = V - addition.volume
     else:
         V_new = V + addition.volume
+        amounts = {**addition.amounts, **(chosen or {})}
         for i, s in enumerate(model.problem.species):
             if s.dilute:
-                entries[i] = (x[i] * V + addition.amounts.get(s.name, 0.0)) / V_new
-        for name, amount in addition.amounts.items():
+                entries[i] = (x[i] * V + amounts.get(s.name, 0.0)) / V_new
+        for name, amount in amounts.items():
             key = f"fed_{name}"
             if key in model.state_names:
                 k = model.index(key)
@@ -187,3 +189,71 @@ def phase_limits(model: Model, phase: Phase) -> list:
         out.append(Limit(b.name, "path", expr, b.lower, b.upper, b.unit, factor_to(b.unit) if b.unit else 1.0,
                          False, b.key, _state_index(model, expr), bool(ca.depends_on(expr, model.u)), phase.name))
     return out
+
+
+def decide(problem: Problem, amounts: dict | None = None) -> Problem:
+    """``problem`` with every amount its additions leave to optimize written in:
+    ``amounts`` maps an addition's index to {species: amount} (internal units);
+    an amount not given takes the low end of its range (what the guesses are
+    simulated with: adding the least keeps a start inside the limits)."""
+    if all(a.decided for a in problem.additions):
+        return problem
+    out = []
+    for j, a in enumerate(problem.additions):
+        if a.decided:
+            out.append(a)
+            continue
+        given = (amounts or {}).get(j, {})
+        fixed = {s: float(given.get(s, lo)) for s, (lo, hi) in a.chosen.items()}
+        out.append(dataclasses.replace(a, amounts={**a.amounts, **fixed}, chosen={}))
+    return dataclasses.replace(problem, additions=tuple(out))
+
+
+def require_decided(problem: Problem, job: str) -> None:
+    """Bad input for a job that simulates (check, Monte Carlo) when an addition's
+    amount is still a range for optimize to choose."""
+    from .errors import InputError, Issue
+
+    issues = [Issue(problem.source, a.line, f"{a.key}.amounts.{s}",
+                    f"this amount is a range for optimize to choose; {job} needs a number: check the problem "
+                    "optimize wrote with the amounts it chose (planned.yaml in its run folder), or write one here")
+              for a in problem.additions for s in a.chosen]
+    if issues:
+        raise InputError(issues[:1])
+
+
+def planned_data(problem: Problem, chosen: list) -> dict:
+    """The problem file's data with the amounts optimize chose written in (for
+    planned.yaml): each addition entry that left an amount to optimize becomes one
+    entry per time (``at``), holding the amount chosen for that time, in the unit
+    its range was written in. ``chosen`` is the record's list of
+    {addition, time_h, species, amount}."""
+    import copy
+
+    from .units import factor_to, written_unit
+
+    data = copy.deepcopy(problem.data)
+    entries = data.get("additions") or []
+    by_entry: dict = {}
+    for c in chosen:
+        i = int(c["addition"].split("[")[1].rstrip("]"))
+        by_entry.setdefault(i, {}).setdefault(c["time_h"], {})[c["species"]] = c["amount"]
+    out = []
+    for i, entry in enumerate(entries):
+        if i not in by_entry:
+            out.append(entry)
+            continue
+        for t, amounts in sorted(by_entry[i].items()):
+            new = {k: v for k, v in entry.items() if k not in ("at", "every", "start", "stop", "amounts")}
+            new["amounts"] = {}
+            for sp, value in (entry.get("amounts") or {}).items():
+                if isinstance(value, dict):
+                    unit = written_unit(value.get("max"), "any")
+                    v = amounts[sp] * (factor_to(unit) if unit else 1.0)
+                    new["amounts"][sp] = f"{v!r} {unit}".strip()  # every digit: checked as verified
+                else:
+                    new["amounts"][sp] = value
+            new["at"] = f"{t:g} h"
+            out.append(new)
+    data["additions"] = out
+    return data

@@ -154,6 +154,7 @@ class Unpacked:
     x_end : (nx,) state at T
     T : float, h
     switches : dict, phase name -> end time (h), for every phase but the last
+    amounts : dict, addition index -> {species: amount} for the amounts optimize chooses
     """
 
     t_points: np.ndarray
@@ -164,6 +165,7 @@ class Unpacked:
     x_end: np.ndarray
     T: float
     switches: dict = field(default_factory=dict)
+    amounts: dict = field(default_factory=dict)  # addition index -> {species: amount optimize chose}
 
 
 @dataclass
@@ -310,6 +312,15 @@ class FeedNLP:
         else:
             T = P.add("T")
             D = T
+        # amounts of the additions that optimize chooses (held by this time line), scaled by their maxima
+        adds = self.model.problem.additions
+        held = [st.end[1] for st in self.stretches if st.end[0] == "addition"]
+        self.chosen = [(j, sp, lo, hi) for j in held for sp, (lo, hi) in sorted(adds[j].chosen.items())]
+        chosen_of = {}
+        if self.chosen:
+            a_s = W.add("amounts", len(self.chosen))
+            for k, (j, sp, lo, hi) in enumerate(self.chosen):
+                chosen_of.setdefault(j, {})[sp] = a_s[k] * max(hi, 1e-12)
         z = W.add("z") if self.combine == "worst" else None
         smooth = P.add("smoothing") if self.has_smoothing else None
         risk = P.add("risk") if self.combine == "mean_std" else None
@@ -399,7 +410,8 @@ class FeedNLP:
                     last = fn["until"](t_starts[i] + Di, blk.x_end, ui[:, Mi - 1], p_q) / fn["until_scale"]
                     add(last, "timing", f"phase {self.phases[q].name} ends", s)
                 if st_end[0] == "addition":
-                    xa = jump(self.phase_models[q], self.model.problem.additions[st_end[1]], blk.x_end)
+                    xa = jump(self.phase_models[q], self.model.problem.additions[st_end[1]], blk.x_end,
+                              chosen_of.get(st_end[1]))
                 else:
                     xa = blk.x_end
             self.stretch_blocks.append(row_blocks)
@@ -521,6 +533,9 @@ class FeedNLP:
             idx = W.indices("D").ravel()
             for i, length in self.fixed_durations(data).items():
                 lbx[idx[i]] = ubx[idx[i]] = max(length, 0.0) / data.t_scale
+        if self.chosen:
+            W.put(lbx, "amounts", [lo / max(hi, 1e-12) for _, _, lo, hi in self.chosen])
+            W.put(ubx, "amounts", [hi / max(hi, 1e-12) for _, _, lo, hi in self.chosen])
         nspecies = len(m.problem.species)
         xl0 = np.full(m.nx, -np.inf)
         xu0 = np.full(m.nx, np.inf)
@@ -614,6 +629,8 @@ class FeedNLP:
         W.put(w, "u", (steps_u / us[None, :]).T)
         if "T" in W:
             W.put(w, "T", T / data.t_scale)
+        if self.chosen:  # the low end of each range (the guesses were simulated with it, phases.decide)
+            W.put(w, "amounts", [lo / max(hi, 1e-12) for _, _, lo, hi in self.chosen])
         if not isinstance(states, list):
             states = [states] * self.S
             times = [times] * self.S
@@ -672,6 +689,11 @@ class FeedNLP:
             u_pts.append(ui[:, step_of].T)
         switches = {self.phases[st.end[1]].name: float(cuts[i]) for i, st in enumerate(self.stretches)
                     if st.end[0] == "phase"}
+        amounts = {}
+        if self.chosen:
+            values = W.get(w, "amounts").ravel()
+            for v, (j, sp, lo, hi) in zip(values, self.chosen):
+                amounts.setdefault(j, {})[sp] = float(np.clip(v * max(hi, 1e-12), lo, hi))
         return Unpacked(
             t_points=np.concatenate(t_pts),
             x_points=np.vstack(x_pts),
@@ -681,6 +703,7 @@ class FeedNLP:
             x_end=x_pts[-1][-1].copy(),
             T=T,
             switches=switches,
+            amounts=amounts,
         )
 
     def split_steps(self, finer: "FeedNLP", w, lam_g, lam_x):

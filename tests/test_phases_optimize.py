@@ -197,3 +197,50 @@ def test_a_free_end_stops_before_additions_it_does_not_need(tmp_path):
     assert [a.time for a in r.additions] == [3.0, 6.0, 9.0]
     slope = (runs[10.2].objective_sim - r.objective_sim) / 0.2
     assert r.record["end_time_marginal_per_h"] == pytest.approx(slope, rel=0.1), (r.record["end_time_marginal_per_h"], slope)
+
+
+BOLUS = """
+name: bolus_amount
+species:
+  X: {initial: 0.5 g/L}
+  S: {initial: 2 g/L}
+  P: {initial: 0 g/L}
+parameters: {mu_max: 0.4 1/h, K_s: 0.1 g/L, Y_XS: 0.5 g/g, alpha: 0.3 g/g}
+rates:
+  mu: monod(S, mu_max, K_s)
+reactions: {X: mu * X, S: -mu / Y_XS * X, P: alpha * mu * X}
+feeds:
+  glucose: {composition: {S: 300 g/L}, max_rate: 1 mL/h}
+vessel: {initial_volume: 1 L, working_volume: 1.5 L}
+limits:
+  - {name: glucose ceiling, expression: S, max: 8 g/L}
+additions:
+  - {bolus: 50 mL, amounts: {S: {max: 30 g}}, at: 3 h}
+horizon: {end_time: 10 h}
+objective: {maximize: product_mass, product: P}
+solver: {pump_steps: 10, refine_grid: false}
+"""
+
+
+def test_a_bolus_amount_optimize_chooses_fills_to_the_ceiling(tmp_path):
+    # Reference: the dilution balance of a bolus, (C V + m) / (V + v) = S after (hand
+    # computation): growth here is limited by glucose, so the best bolus is the most
+    # the glucose ceiling allows right after it, m = 8 g/L (V + v) - C V with C and V
+    # just before it (within the back-off the verification keeps between points).
+    # And planned.yaml, with the chosen amount written in, passes check as written.
+    path = _write(tmp_path, "bolus", BOLUS)
+    r = optimize(load_problem(path))
+    assert r.status == "optimal, verified", r.message
+    [c] = r.record["chosen_amounts"]
+    traj = r.trajectory
+    k = int(np.flatnonzero(traj.t == 3.0)[0])  # the sample just before the jump (the time appears twice)
+    C, V = traj.state("S")[k], traj.state("V")[k]
+    ceiling = (8.0 * (V + 0.05) - C * V)
+    assert c["amount"] <= ceiling + 1e-6
+    assert c["amount"] == pytest.approx(ceiling, rel=0.015), (c["amount"], ceiling)
+    out = write_optimize_run(r, tmp_path / "run", figures=False)
+    with pytest.raises(Exception, match="range for optimize to choose"):
+        check(load_problem(path), out / "schedule.csv")
+    again = check(load_problem(out / "planned.yaml"), out / "schedule.csv")
+    assert again.status == "within limits", again.message
+    assert again.outcome.objective.value == pytest.approx(r.objective_sim, rel=1e-9)

@@ -34,7 +34,7 @@ import math
 import re
 
 from ..units import describe, parse_quantity, written_unit
-from .schema import BetweenIn
+from .schema import AmountRangeIn, BetweenIn
 from .spec import Addition, Phase, PhaseEnd
 
 MAX_PHASES = 20
@@ -303,7 +303,7 @@ def _additions(loader, raw, species_dims, horizon):
         if kind == "bolus" and vol[0] < 0:
             fail(loc + (kind,), "a bolus volume cannot be negative")
             continue
-        amounts = {}
+        amounts, chosen = {}, {}
         if a.amounts and kind == "sample":
             fail(loc + ("amounts",), "a sample takes out broth as it is: 'amounts' belongs to a bolus")
             continue
@@ -319,26 +319,44 @@ def _additions(loader, raw, species_dims, horizon):
                            "false): a bolus cannot add to it")
                 bad = True
                 continue
-            got = loader.quantity(value, "any", aloc)
-            if not got:
-                bad = True
+            ranged = isinstance(value, AmountRangeIn)
+            sides = [("min", value.min), ("max", value.max)] if ranged else [(None, value)]
+            got_sides = {}
+            for side, v in sides:
+                if v is None:
+                    got_sides[side] = 0.0
+                    continue
+                sloc = aloc + ((side,) if side else ())
+                got = loader.quantity(v, "any", sloc)
+                if not got:
+                    bad = True
+                    break
+                dims = species_dims.get(sname)
+                if dims is not None and written_unit(v, "any"):
+                    want = dims * parse_quantity("1 L", "volume").dimensionality
+                    if got[2] != want:
+                        fail(sloc, f"{v!r} has dimension {describe(got[2])}; an amount of {sname!r} is its "
+                                   f"concentration times a volume ({describe(want)})")
+                        bad = True
+                        break
+                if not got[0] >= 0:
+                    fail(sloc, "an amount added cannot be negative")
+                    bad = True
+                    break
+                got_sides[side] = got[0]
+            if bad:
                 continue
-            dims = species_dims.get(sname)
-            if dims is not None and written_unit(value, "any"):
-                want = dims * parse_quantity("1 L", "volume").dimensionality
-                if got[2] != want:
-                    fail(aloc, f"{value!r} has dimension {describe(got[2])}; an amount of {sname!r} is its "
-                               f"concentration times a volume ({describe(want)})")
+            if ranged:
+                if not got_sides["min"] <= got_sides["max"]:
+                    fail(aloc, "min is above max")
                     bad = True
                     continue
-            if not got[0] >= 0:
-                fail(aloc, "an amount added cannot be negative")
-                bad = True
-                continue
-            amounts[sname] = got[0]
+                chosen[sname] = (got_sides["min"], got_sides["max"])
+            else:
+                amounts[sname] = got_sides[None]
         if bad:
             continue
-        if kind == "bolus" and vol[0] == 0 and not any(amounts.values()):
+        if kind == "bolus" and vol[0] == 0 and not any(amounts.values()) and not any(hi for _, hi in chosen.values()):
             fail(loc, "this bolus adds nothing: give a volume above zero or amounts")
             continue
         times = _times(loader, a, loc, end)
@@ -347,7 +365,8 @@ def _additions(loader, raw, species_dims, horizon):
         if len(out) + len(times) > MAX_ADDITIONS:
             fail(loc, f"more than {MAX_ADDITIONS} additions over the run")
             return []
-        out += [Addition(kind, t, vol[0], dict(amounts), f"additions[{i}]") for t in times]
+        out += [Addition(kind, t, vol[0], dict(amounts), f"additions[{i}]", dict(chosen), loader.lines.get(loc))
+                for t in times]
     out.sort(key=lambda a: a.time)
     for a, b in zip(out, out[1:]):
         if b.time - a.time < 1e-9:

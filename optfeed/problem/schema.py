@@ -171,7 +171,8 @@ class PumpRangeIn(_Strict):
 class AdditionIn(_Strict):
     sample: Optional[Scalar] = None  # volume taken out
     bolus: Optional[Scalar] = None  # volume added
-    amounts: dict[str, Scalar] = Field(default_factory=dict)  # bolus: species -> amount it holds
+    # bolus: species -> amount it holds, or {min, max}: an amount optimize chooses
+    amounts: dict[str, Union[Scalar, "AmountRangeIn"]] = Field(default_factory=dict)
     at: Optional[Union[Scalar, list[Scalar]]] = None
     every: Optional[Scalar] = None
     start: Optional[Scalar] = None  # with every: first time (default: one interval in)
@@ -179,7 +180,13 @@ class AdditionIn(_Strict):
     description: Text = ""
 
 
+class AmountRangeIn(_Strict):
+    min: Optional[Scalar] = None
+    max: Scalar
+
+
 PhaseIn.model_rebuild()
+AdditionIn.model_rebuild()
 
 
 class ProblemIn(_Strict):

@@ -409,6 +409,10 @@ class Addition:
         of concentration x volume, e.g. g; every other diluted species is diluted).
     time : float, h.
     key : str, where it is written (``additions[0]``).
+    chosen : dict, species -> (min, max) internal units: amounts that ``optimize``
+        chooses within a range (``amounts: {S: {max: 20 g}}``), one per addition
+        time; ``amounts`` then leaves them out. ``check`` needs them as numbers (the
+        problem ``optimize`` writes back, planned.yaml, holds them).
     """
 
     kind: str
@@ -416,6 +420,13 @@ class Addition:
     volume: float
     amounts: dict = field(default_factory=dict)
     key: str = ""
+    chosen: dict = field(default_factory=dict)  # species -> (min, max): amounts optimize chooses
+    line: int | None = None  # of its entry in the problem file
+
+    @property
+    def decided(self) -> bool:
+        """True when every amount is a number (none left for optimize to choose)."""
+        return not self.chosen
 
 
 @dataclass(frozen=True)

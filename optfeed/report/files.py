@@ -248,6 +248,27 @@ def write_check_run(result, target, figures: bool = True) -> Path:
     return Path(target)
 
 
+def planned_yaml_text(result, chosen) -> str:
+    """The problem file with the amounts optimize chose for its additions written in,
+    read back and checked: ``optfeed check planned.yaml --schedule schedule.csv``
+    judges the answer as it was verified."""
+    import yaml
+
+    from ..phases import planned_data
+    from ..problem.load import problem_from_data
+
+    words = ", ".join(f"{c['species']} {c['amount']:.6g} at {c['time_h']:g} h ({c['addition']})" for c in chosen)
+    head = (f"# {result.problem.name} as planned by optfeed optimize ({result.status}): the amounts it chose\n"
+            f"# for the additions are written in ({words}; internal units: g or mmol).\n"
+            "# Check the answer with: optfeed check planned.yaml --schedule schedule.csv\n")
+    text = head + yaml.safe_dump(planned_data(result.problem, chosen), sort_keys=False, allow_unicode=False,
+                                 width=100)
+    back = problem_from_data(yaml.safe_load(text), "planned.yaml")
+    if any(not a.decided for a in back.additions):  # pragma: no cover - planned_data writes every amount
+        raise AssertionError("planned.yaml still leaves an amount to choose")
+    return text
+
+
 def optimize_summary(result) -> dict:
     """The machine-readable record of an optimize run (summary.json)."""
     ver = result.verification
@@ -356,6 +377,9 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             write_csv(tmp / "trajectory.csv", *trajectory_table(model, result.trajectory, unique=True))
             pts = result.points
             write_csv(tmp / "points.csv", *_table(points_columns(model, pts)))
+        chosen = result.record.get("chosen_amounts")
+        if chosen and result.trajectory is not None:
+            (tmp / "planned.yaml").write_text(planned_yaml_text(result, chosen))
         nominal = result.nominal
         phase_names = [ph.name for ph in result.problem.phases]
         if nominal is not None and nominal.schedule is not None:

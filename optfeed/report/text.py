@@ -213,6 +213,12 @@ def optimize_text(result) -> str:
         lines.append("")
     if result.limits:
         lines += phase_lines(result)
+        chosen = result.record.get("chosen_amounts")
+        if chosen:
+            lines += ["Amounts optimize chose for the additions (written into planned.yaml; check the answer with",
+                      "'optfeed check planned.yaml --schedule schedule.csv'):"]
+            lines += [f"  {c['addition']} at {fmt(c['time_h'])} h: {c['species']} {fmt(c['amount'], 6)} "
+                      f"(range {fmt(c['min'])}..{fmt(c['max'])}, internal units)" for c in chosen] + [""]
         lines += ["Limits at the optimum (re-simulated):"] + limits_table([v.report for v in result.limits]) + [""]
         lines.append(f"Marginal values (gain in objective, {unit}, per unit relaxation of a limit;")
         lines.append("ACTIVE = it holds the optimum back, its marginal value is not zero):")
