@@ -422,7 +422,9 @@ class _Job:
             return verify(self.full, self.full_limits, schedule, un.T, start.objective, tol, self.simulator,
                           ignore=ignore)
         J_nlp = nlp.scenario_objectives(start.w, data)
-        checks = [verify(self.full, self.full_limits, schedule, un.T, float(J_nlp[s]), tol, self.simulator,
+        full, limits, sim = self.decided(un.amounts)[1:] if self.choosing else \
+            (self.full, self.full_limits, self.simulator)
+        checks = [verify(full, limits, schedule, un.T, float(J_nlp[s]), tol, sim,
                          x0=x0, p=p, ignore=ignore) for s, (x0, p) in enumerate(self.scenario_inputs())]
         self.scenario_checks = checks
         bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
@@ -662,7 +664,8 @@ def _judged_over_samples(result, problem, samples, seed, workers, say, deadline,
     def progress(text, done, total):
         say(f"Monte Carlo, {what}: {text}", done, total)
 
-    mc = monte_carlo(problem, result.schedule, result.end_time, samples=samples, seed=seed, workers=workers,
+    # the answer's own problem: with the amounts optimize chose for its additions written in
+    mc = monte_carlo(result.problem, result.schedule, result.end_time, samples=samples, seed=seed, workers=workers,
                      on_progress=progress, deadline=deadline)
     return replace(result, uncertainty=mc)
 
