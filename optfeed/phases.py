@@ -68,19 +68,7 @@ def phase_models(problem: Problem, fed: str = "all") -> list[Model]:
     ``fed`` as in :func:`optfeed.model.build_model`; a phase's own limits count as
     users of ``fed_<s>`` states.
     """
-    base = base_model(problem, fed)
-    base_problem = _with_phase_bounds(problem)
-    out = []
-    for ph in phases_of(problem):
-        if not ph.rates:
-            out.append(base)
-            continue
-        m = build_model(phase_problem(base_problem, ph), fed=fed)
-        m.problem = problem
-        if m.state_names != base.state_names:  # cannot happen: rates do not change the states
-            raise AssertionError("a phase changed the state vector")
-        out.append(m)
-    return out
+    return models_like(base_model(problem, fed))
 
 
 def phase_constants(model: Model, phase: Phase, p):

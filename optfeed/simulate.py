@@ -477,16 +477,7 @@ def _pieces(seg: Segment, max_len: float, feed_names=()):
         return
     edges = np.linspace(seg.start, seg.end, n + 1)
     for s, e in zip(edges[:-1], edges[1:]):
-        d = s - seg.start
-        try:
-            grow = [math.exp(ki * d) for ki in seg.k]
-        except OverflowError:
-            j = max(range(len(seg.k)), key=lambda i: seg.k[i])
-            raise SimulationError(f"the rate of feed {feed_names[j]!r} grows past any finite number",
-                                  float(s)) from None
-        a = tuple((ai + bi * d) * g if ai or bi else 0.0 for ai, bi, g in zip(seg.a, seg.b, grow))
-        b = tuple(bi * g if bi else 0.0 for bi, g in zip(seg.b, grow))
-        yield Segment(float(s), float(e), a, b, seg.k)
+        yield _shifted(seg, float(s), float(e), feed_names)
 
 
 # CVODES return flags in words
