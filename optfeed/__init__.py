@@ -23,6 +23,17 @@ optimize, OptimizeResult``, ``from optfeed.fit import fit, load_runs``; the fit 
 is a package, ``optfeed/fit/``); at the top level the names are the functions.
 """
 
+import os as _os
+
+# One BLAS thread per process. CasADi's OpenBLAS (and numpy's) start a thread pool whose
+# idle threads spin: on an 8-scenario NLP they doubled the CPU an iteration costs without
+# making it faster (measured: 627 -> 347 ms CPU per iteration, the same wall time; the
+# whole robust demo 206 -> 147 s CPU), and they steal the cores that optfeed's own worker
+# processes (starts, sweep cases, Monte Carlo) run on. Set before CasADi is loaded; a
+# value the user set wins.
+_os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+
 __version__ = "0.1.0"
 
 # The job functions share their names with the modules that hold them
