@@ -389,7 +389,11 @@ def test_losing_the_dask_scheduler_leaves_the_cases_to_run_again(tmp_path):
         r = run_sweep(path, out, scheduler=cluster.scheduler_address, no_worker_timeout=10)
         th.join()
     finally:
-        cluster.close()
+        import dask
+
+        # the cluster without its scheduler: closing it waits out the connect timeout (30 s)
+        with dask.config.set({"distributed.comm.timeouts.connect": "2s"}):
+            cluster.close()
     assert r.status == "incomplete"
     assert {x["status"] for x in r.rows} == {"not run"}
     assert "scheduler" in r.rows[0]["message"]
