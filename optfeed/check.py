@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import re
 import time
 from dataclasses import dataclass, field
 
@@ -47,15 +46,19 @@ class AdditionRow:
     key: str
 
 
-def phase_rows(problem: Problem, traj: Trajectory, end_time: float) -> tuple:
-    """:class:`PhaseRow` per phase that ran in ``traj``."""
+def phase_rows(problem: Problem, traj: Trajectory, end_time: float, window: str = "schedule") -> tuple:
+    """:class:`PhaseRow` per phase that ran in ``traj``; ``window``: what a phase
+    ended in a window was ended by (the schedule; for optimize, its own choice)."""
     if not problem.phases:
         return ()
     rows, start = [], 0.0
     for ph in problem.phases:
         if ph.name in traj.switches:
             end = traj.switches[ph.name]
-            how = {"at": "fixed time", "between": "schedule", "when": f"condition {ph.end.text}"}[ph.end.kind]
+            if ph.end.kind == "between":
+                how = window.format(lower=ph.end.lower, upper=ph.end.upper)
+            else:
+                how = {"at": "fixed time", "when": f"condition {ph.end.text}"}[ph.end.kind]
         elif ph.name == traj.unended:
             end, how = end_time, "never ended"
         elif ph.end.kind == "run":
@@ -76,10 +79,9 @@ def addition_rows(traj: Trajectory) -> tuple:
 def never_ended(problem: Problem, name: str, end_time: float) -> str:
     """One sentence: the 'when' phase ``name`` did not end before ``end_time`` h."""
     ph = next(p for p in problem.phases if p.name == name)
-    m = re.match(r"^(?P<expr>.+?)\s*(?:<=|>=|<|>)\s*(?P<level>.+)$", ph.end.text)
-    expr, level = (m["expr"], m["level"]) if m else (ph.end.text, "its level")
     side = "above" if ph.end.falling else "below"
-    return f"phase {name!r} never ended: {expr} stayed {side} {level} until {end_time:g} h"
+    return (f"phase {name!r} never ended: {ph.end.condition.text.strip()} stayed {side} {ph.end.level_text} "
+            f"until {end_time:g} h")
 
 
 @dataclass(frozen=True)

@@ -43,7 +43,8 @@ from .schedule import piecewise_constant, round_schedule
 from .simulate import Simulator
 from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard, interrupted,
                     make_guesses, models, scaling_for, solve, states_for)
-from .phases import base_model, decide, guess_switches, phase_models
+from .phases import (base_model, condition_function, decide, guess_switches, models_like, phase_constants,
+                     phase_models)
 from .transcription import Grid, NLPData, plan_stretches
 from .uncertainty import ScenarioSet, scenario_set
 from .units import factor_to
@@ -166,18 +167,12 @@ class OptimizeResult:
     def phases(self) -> tuple:
         """For a problem with phases: each phase's start and end (h) in the
         re-simulated answer and what ended it (``check.PhaseRow``)."""
-        from .check import PhaseRow, phase_rows
+        from .check import phase_rows
 
         traj = self.trajectory
         if traj is None or not self.problem.phases:
             return ()
-        rows = []
-        for row, ph in zip(phase_rows(self.problem, traj, self.end_time), self.problem.phases):
-            if ph.end.kind == "between":
-                row = PhaseRow(row.name, row.start, row.end,
-                               f"chosen by optimize within {ph.end.lower:g}-{ph.end.upper:g} h")
-            rows.append(row)
-        return tuple(rows)
+        return phase_rows(self.problem, traj, self.end_time, "chosen by optimize within {lower:g}-{upper:g} h")
 
     @property
     def additions(self) -> tuple:
@@ -1261,8 +1256,6 @@ def _blocked_at_start(job) -> str:
     feeds = job.problem.feeds
     first = job.problem.phases[0] if job.problem.phases else None
     if first is not None and first.end.kind == "when":
-        from .phases import condition_function, models_like, phase_constants
-
         m = models_like(job.full)[0]
         u = np.array([first.pumps.get(f.name, (f.min_rate, f.max_rate))[0] for f in feeds])
         left = float(condition_function(m, first.end)(0.0, job.full.x0, u, phase_constants(m, first, m.p0)))

@@ -36,7 +36,7 @@ import casadi as ca
 import numpy as np
 
 from .collocation import Block, Layout
-from .limits import Limit, bound_scale
+from .limits import Limit, bound_scale, build_limits
 from .model import Model
 from .phases import condition_function, jump, phase_constants, phase_limits, phases_of
 
@@ -230,20 +230,25 @@ class FeedNLP:
         left = [a.time for j, a in enumerate(adds) if j not in held]
         return (max(after) + 1e-6 if after else 0.0), (min(left) if left else np.inf)
 
+    def fixed_cut(self, st: Stretch, end_time: float | None = None) -> float | None:
+        """The time (h) a stretch ends at when it is fixed: an addition's time, a
+        fixed phase end, or the run's end when ``end_time`` (a fixed one) is given;
+        None for an end the NLP chooses."""
+        kind, j = st.end
+        if kind == "addition":
+            return self.model.problem.additions[j].time
+        if kind == "phase" and self.phases[j].end.kind == "at":
+            return self.phases[j].end.time
+        if kind == "run":
+            return end_time
+        return None
+
     def fixed_durations(self, data: "NLPData") -> dict:
         """Stretch index -> its duration (h) where both its ends are fixed times (an
         addition, a fixed phase end, a fixed end of the run)."""
         out, prev = {}, 0.0
         for i, st in enumerate(self.stretches):
-            kind, j = st.end
-            if kind == "addition":
-                t = self.model.problem.additions[j].time
-            elif kind == "phase" and self.phases[j].end.kind == "at":
-                t = self.phases[j].end.time
-            elif kind == "run" and data.end_time is not None:
-                t = data.end_time
-            else:
-                t = None
+            t = self.fixed_cut(st, data.end_time)
             if t is not None and prev is not None:
                 out[i] = t - prev
             prev = t
@@ -263,8 +268,6 @@ class FeedNLP:
         """The limits in force in phase k, in phase k's model (by name, as given)."""
         if not self.phased:
             return self.limits
-        from .limits import build_limits
-
         m, ph = self.phase_models[k], self.phases[k]
         names = {l.name for l in self.limits}
         own = [l for l in build_limits(m) if l.name in names and l.kind != "setting"]
@@ -582,15 +585,11 @@ class FeedNLP:
         switches = switches or {}
         out = []
         for st in self.stretches:
-            kind, j = st.end
-            if kind == "addition":
-                out.append(self.model.problem.additions[j].time)
-            elif kind == "phase":
-                ph = self.phases[j]
-                default = ph.end.time if ph.end.kind == "at" else (ph.end.guess if ph.end.guess is not None else T / 2)
-                out.append(float(switches.get(ph.name, default)))
-            else:
-                out.append(T)
+            t = self.fixed_cut(st, T)
+            if t is None:  # a phase end the NLP chooses
+                ph = self.phases[st.end[1]]
+                t = float(switches.get(ph.name, ph.end.guess if ph.end.guess is not None else T / 2))
+            out.append(t)
         return np.minimum(np.maximum.accumulate(np.asarray(out, dtype=float)), T)
 
     def step_times(self, cuts) -> np.ndarray:
@@ -661,13 +660,12 @@ class FeedNLP:
             lo, hi = data.end_bounds
             T = float(np.clip(cuts[-1], max(lo, self.end_window[0]), min(hi, self.end_window[1])))
             for i, st in enumerate(self.stretches):  # IPOPT meets timing rows to ~1e-7 h: put each cut in place
-                kind, j = st.end
-                if kind == "addition":
-                    cuts[i] = self.model.problem.additions[j].time
-                elif kind == "phase" and self.phases[j].end.kind == "at":
-                    cuts[i] = self.phases[j].end.time
-                elif kind == "phase" and self.phases[j].end.kind == "between":
-                    cuts[i] = np.clip(cuts[i], self.phases[j].end.lower, self.phases[j].end.upper)
+                fixed = self.fixed_cut(st)
+                if fixed is not None:
+                    cuts[i] = fixed
+                elif st.end[0] == "phase" and self.phases[st.end[1]].end.kind == "between":
+                    e = self.phases[st.end[1]].end
+                    cuts[i] = np.clip(cuts[i], e.lower, e.upper)
             cuts = np.minimum(np.maximum.accumulate(cuts), T)
             cuts[-1] = T
         elif self.free_time:

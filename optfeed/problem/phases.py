@@ -215,7 +215,8 @@ def _until(loader, until, loc, species_dims, env, end, after):
     if not math.isfinite(level[0]):
         fail(loc, "the level must be a finite number")
         return None
-    return PhaseEnd("when", condition=e, level=level[0], falling=m["op"].startswith("<"), text=text.strip())
+    return PhaseEnd("when", condition=e, level=level[0], falling=m["op"].startswith("<"), text=text.strip(),
+                    level_text=m["level"].strip())
 
 
 def _inside(loader, loc, lo, hi, end, after) -> bool:

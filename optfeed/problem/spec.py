@@ -368,6 +368,7 @@ class PhaseEnd:
     level: float | None = None
     falling: bool = True
     text: str = ""
+    level_text: str = ""  # for 'when': the level as written ('0.5 g/L')
 
 
 @dataclass(frozen=True)
