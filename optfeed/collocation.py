@@ -23,13 +23,17 @@ flat vectors so that no other code indexes them by hand.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import casadi as ca
 import numpy as np
 
 
+@lru_cache(maxsize=None)
 def radau_coefficients(degree: int):
     """(tau, C, D): collocation points [0, radau...], derivative matrix C[r, j] =
-    dL_r/dtau at tau_j, and end-point weights D[r] = L_r(1)."""
+    dL_r/dtau at tau_j, and end-point weights D[r] = L_r(1). Computed once per
+    degree (a calibration NLP has a block per sampling interval); read-only."""
     tau = np.append(0.0, ca.collocation_points(degree, "radau"))
     n = degree + 1
     C = np.zeros((n, n))
@@ -43,7 +47,38 @@ def radau_coefficients(degree: int):
         dp = np.polyder(p)
         for j in range(n):
             C[r, j] = dp(tau[j])
+    for a in (tau, C, D):
+        a.setflags(write=False)
     return tau, C, D
+
+
+def element_function(f: ca.Function, degree: int, nu: int) -> ca.Function:
+    """The collocation equations of one finite element, as a Function
+    (x0, X, U, t, h, p, x_scale) -> R:
+
+    x0 (nx) the element's start state, X (nx x degree) the states at its Radau
+    points, U (nu x degree) and t (1 x degree) the pump rates and times there, h
+    its length (h), p the constants, x_scale (nx) the states' nominal magnitudes;
+    R (nx x degree) the residuals (polynomial slope - h f) / x_scale, zero at a
+    solution. Every block is a map of this function over its elements.
+    """
+    nx = f.size1_in(1)
+    d = degree
+    _, C, _ = radau_coefficients(d)
+    xs_e = ca.SX.sym("xs", nx)
+    x0_e = ca.SX.sym("x0", nx)
+    X_e = ca.SX.sym("X", nx, d)
+    U_e = ca.SX.sym("U", nu, d)
+    t_e = ca.SX.sym("t", 1, d)
+    h_e = ca.SX.sym("h")
+    p_e = ca.SX.sym("p", f.size1_in(3))
+    nodes = [x0_e] + [X_e[:, j] for j in range(d)]
+    res = []
+    for j in range(1, d + 1):
+        slope = sum(C[r, j] * nodes[r] for r in range(d + 1))
+        res.append((slope - h_e * f(t_e[j - 1], nodes[j], U_e[:, j - 1], p_e)) / xs_e)
+    return ca.Function("element", [x0_e, X_e, U_e, t_e, h_e, p_e, xs_e], [ca.horzcat(*res)],
+                       ["x0", "X", "U", "t", "h", "p", "x_scale"], ["R"])
 
 
 class Layout:
@@ -138,7 +173,7 @@ class Block:
         N, d = len(fractions) - 1, degree
         self.N, self.d, self.nx = N, d, nx
         self.fractions = fractions
-        tau, C, _ = radau_coefficients(d)
+        tau, _, _ = radau_coefficients(d)
         self.tau = tau
         self.var = f"{name}.x"
         Xs = variables.add(self.var, nx, N * d)
@@ -150,21 +185,7 @@ class Block:
         offsets = ca.DM(np.tile(tau[1:], N)).T
         t_points = ca.repmat(t_start, d, 1).reshape((1, N * d)) + offsets * ca.repmat(h, d, 1).reshape((1, N * d))
 
-        # one element: residuals of the collocation equations
-        nu = u_points.shape[0]
-        xs_e = ca.SX.sym("xs", nx)
-        x0_e = ca.SX.sym("x0", nx)
-        X_e = ca.SX.sym("X", nx, d)
-        U_e = ca.SX.sym("U", nu, d)
-        t_e = ca.SX.sym("t", 1, d)
-        h_e = ca.SX.sym("h")
-        p_e = ca.SX.sym("p", f.size1_in(3))
-        nodes = [x0_e] + [X_e[:, j] for j in range(d)]
-        res = []
-        for j in range(1, d + 1):
-            slope = sum(C[r, j] * nodes[r] for r in range(d + 1))
-            res.append((slope - h_e * f(t_e[j - 1], nodes[j], U_e[:, j - 1], p_e)) / xs_e)
-        element = ca.Function("element", [x0_e, X_e, U_e, t_e, h_e, p_e, xs_e], [ca.horzcat(*res)])
+        element = element_function(f, d, u_points.shape[0])
         R = element.map(N)(x_start, X, u_points, t_points, h, p, x_scale)
 
         self.X = X
