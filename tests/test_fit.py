@@ -261,3 +261,54 @@ def test_shipped_example_fit_optimize_check(tmp_path):
     done = _cli("check", fit_dir / "fitted.yaml", "--schedule", opt_dir / "schedule.csv", "--out", check_dir,
                 "--quiet", "--no-figures", cwd=tmp_path)
     assert done.returncode == 0, done.stdout + done.stderr
+
+
+# ---------------------------------------------------------------- the NLP's derivatives
+
+
+def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
+    """The exact derivatives handed to IPOPT are assembled from each element's and
+    each measured value's own; reference: CasADi's automatic differentiation of the
+    whole NLP as the collocation blocks write it. Two runs (a batch; a fed-batch with
+    a pump change and sample volumes), a named rate (q_S) measured at some samples
+    only, at a point off the solution with random multipliers."""
+    import dataclasses
+
+    import casadi as ca
+
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.fit.transcription import FitNLP
+
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=3, estimate=("mu_max", "K_s", "Y_XS", "m_S"))
+    from optfeed.problem.dotted import as_problem
+
+    problem = as_problem(problem, None)
+    runs = load_runs(runs_file, problem, build_model(problem))
+    fed = runs.runs[1]
+    q_S = np.where(np.arange(len(fed.times)) % 3 == 0, 0.4, np.nan)
+    runs = dataclasses.replace(runs, runs=(runs.runs[0], dataclasses.replace(fed, values={**fed.values, "q_S": q_S})))
+    job = _Fitter(problem, runs)
+    theta = job.start
+    first = job.simulate(theta)
+    nlp = FitNLP(job.model, runs.runs, job.names, elements_per_run=12)
+    errors = dict(runs.errors, q_S=runs.errors["S"])
+    data = nlp.data(runs.runs, lambda q, y: np.sqrt(errors[q].absolute ** 2 + (errors[q].relative * np.asarray(y)) ** 2),
+                    job.lower, job.upper, job.scale,
+                    np.max([np.abs(t.x).max(axis=0) for t in first], axis=0) + 1.0)
+    rng = np.random.default_rng(0)
+    w = nlp.pack(data, runs.runs, theta, first) * (1 + 0.1 * rng.standard_normal(nlp.n_w))
+    p = nlp.parameters(data)
+    lam = rng.standard_normal(nlp.n_g)
+    x, pp, f, g = nlp.nlp["x"], nlp.nlp["p"], nlp.nlp["f"], nlp.nlp["g"]
+    reference = ca.Function("ref", [x, pp], [f, ca.gradient(f, x), g, ca.jacobian(g, x),
+                                             ca.triu(ca.hessian(0.7 * f + ca.dot(ca.DM(lam), g), x)[0])])
+    f0, grad0, g0, jac0, hess0 = (np.array(ca.densify(v)) for v in reference(w, p))
+    d = nlp._derivatives
+    f1, grad1 = d["grad_f"](w, p)
+    g1, jac1 = d["jac_g"](w, p)
+    hess1 = d["hess_lag"](w, p, 0.7, lam)
+    for got, want in ((f1, f0), (grad1, grad0), (g1, g0), (jac1, jac0), (hess1, hess0)):
+        got = np.array(ca.densify(got))
+        assert got.shape == want.shape
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())

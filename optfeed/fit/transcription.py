@@ -30,8 +30,9 @@ from dataclasses import dataclass
 import casadi as ca
 import numpy as np
 
-from ..collocation import Block, Layout
+from ..collocation import Block, Layout, element_function
 from ..model import Model
+from .derivatives import Assembled, Kind
 
 
 @dataclass
@@ -142,6 +143,7 @@ class FitNLP:
         W, P = Layout("w"), Layout("p")
         self.W, self.P = W, P
         theta_s = W.add("theta", len(self.estimated))
+        theta_index = W.indices("theta").ravel()
         theta_scale = P.add("theta_scale", len(self.estimated))
         theta = theta_s * theta_scale
         xs = P.add("x_scale", m.nx)
@@ -155,11 +157,18 @@ class FitNLP:
         v_index = m.index("V")
         collocation, model_values, self.blocks = [], [], []
         values = {n: m.function_p(f"v_{n}", [e]) for n, e in m.values.items()}
+        # what the exact derivatives need (see _assemble): per element and per measured value
+        elements = {"index": [], "x0": [], "first": [], "jump": [], "U": [], "t": [], "h": [], "run": []}
+        points = []
+        self._run_x0, self._run_constants = [], []
         for r, run in enumerate(runs):
             const = P.add(f"r{r}.constants", m.n_constants)
             x0 = P.add(f"r{r}.x0", m.nx)
+            self._run_x0.append(x0)
+            self._run_constants.append(const)
             p_run = const * ca.DM(keep) + ca.mtimes(ca.DM(select), theta)
             x_start = x0
+            prev_end, jump = None, np.zeros(m.nx)
             blocks = []
             for k, (a, b, n, seg, sample) in enumerate(stretches(run, m.feed_names, run.end_time / elements_per_run)):
                 fr = np.linspace(0.0, 1.0, n + 1)
@@ -170,12 +179,29 @@ class FitNLP:
                 blk.span = (a, b)
                 blocks.append(blk)
                 collocation.append(blk.residuals)
+                cols = W.indices(blk.var)  # (nx, n * degree)
+                h = (b - a) * np.diff(fr)
+                t_points = (a + (b - a) * fr[:-1])[:, None] + tau[None, 1:] * h[:, None]
+                u = np.array(u_pts)
+                for e in range(n):
+                    own = cols[:, e * degree:(e + 1) * degree]
+                    before = prev_end if e == 0 else cols[:, e * degree - 1]
+                    elements["index"].append(np.concatenate([
+                        np.full(m.nx, -1) if before is None else before, own.ravel(order="F"), theta_index]))
+                    elements["first"].append(float(before is None))
+                    elements["jump"].append(jump if e == 0 else np.zeros(m.nx))
+                    elements["U"].append(u[:, e * degree:(e + 1) * degree].ravel(order="F"))
+                    elements["t"].append(t_points[e])
+                    elements["h"].append(h[e])
+                    elements["run"].append(r)
+                prev_end, jump = cols[:, -1], np.zeros(m.nx)
                 if sample is not None:
                     u_end = ca.DM(seg.rates(np.array([b]))[0])
                     for q, y in run.values.items():
                         if np.isfinite(y[sample]):
                             model_values.append(blk.x_end[m.index(q)] if q in m.state_names
                                                 else values[q](b, blk.x_end, u_end, p_run))
+                            points.append((q, np.concatenate([prev_end, theta_index]), b, np.array(u_end).ravel(), r))
                 x_start = blk.x_end
                 if sample is not None and run.sample_volume:
                     jump = np.zeros(m.nx)
@@ -189,10 +215,57 @@ class FitNLP:
         weight = P.add("weight", self.n_res)
         g = ca.vertcat(*collocation)
         res = (ca.vertcat(*model_values) - y) * weight
+        # the NLP as the blocks write it (the definition; CasADi's derivatives of it
+        # are the reference the tests compare the assembled ones with)
         self.nlp = {"x": W.symbol(), "p": P.symbol(), "f": 0.5 * ca.sumsqr(res), "g": g}
         self.n_w, self.n_g = W.size, g.shape[0]
         self._res_fun = ca.Function("res", [self.nlp["x"], self.nlp["p"]], [res])
-        self._solvers, self._derivatives = {}, None
+        # what optfeed.solve hands to IPOPT: the same NLP with exact derivatives
+        # assembled from the pieces' own (see optfeed.fit.derivatives)
+        assembled = self._assemble(f, values, elements, points, keep, select, theta_scale, xs, y, weight)
+        self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": assembled.f, "g": assembled.g}
+        self._solvers, self._derivatives = {}, assembled.functions
+
+    def _assemble(self, f, values, elements, points, keep, select, theta_scale, xs, y, weight) -> Assembled:
+        """The NLP as a sum of pieces (each element's collocation equations, each
+        measured value's squared weighted residual), for optfeed.fit.derivatives."""
+        m, d, n_theta = self.model, self.degree, len(self.estimated)
+        nx, nu, nc = m.nx, m.nu, m.n_constants
+        runs_x0, runs_c = self._run_x0, self._run_constants
+        element = element_function(f, d, nu)
+
+        def constants(c, th, ts):
+            return c * ca.DM(keep) + ca.mtimes(ca.DM(select), th * ts)
+
+        z = ca.SX.sym("z", nx + nx * d + n_theta)
+        x0r, first, jump = ca.SX.sym("x0", nx), ca.SX.sym("first"), ca.SX.sym("jump", nx)
+        U, t, h = ca.SX.sym("U", nu * d), ca.SX.sym("t", d), ca.SX.sym("h")
+        c, xs_e, ts = ca.SX.sym("c", nc), ca.SX.sym("xs", nx), ca.SX.sym("ts", n_theta)
+        before, own, th = z[:nx], ca.reshape(z[nx:nx + nx * d], nx, d), z[nx + nx * d:]
+        x_start = first * x0r + (1 - first) * (before * xs_e - jump)
+        R = element(x_start, own * ca.repmat(xs_e, 1, d), ca.reshape(U, nu, d), t.T, h, constants(c, th, ts), xs_e)
+        piece = ca.Function("collocation", [z, x0r, first, jump, U, t, h, c, xs_e, ts], [ca.vec(R)])
+        E = len(elements["run"])
+        run_of = elements["run"]
+        kinds = [Kind(piece, np.array(elements["index"]).T, [
+            ca.horzcat(*[runs_x0[r] for r in run_of]), ca.DM(elements["first"]).T, ca.DM(np.array(elements["jump"]).T),
+            ca.DM(np.array(elements["U"]).T), ca.DM(np.array(elements["t"]).T), ca.DM(elements["h"]).T,
+            ca.horzcat(*[runs_c[r] for r in run_of]), ca.repmat(xs, 1, E), ca.repmat(theta_scale, 1, E)],
+            rows=np.arange(E * nx * d).reshape(E, nx * d).T)]
+        terms = []
+        for q in dict.fromkeys(p[0] for p in points):
+            which = [k for k, p in enumerate(points) if p[0] == q]
+            zq = ca.SX.sym("z", nx + n_theta)
+            tq, uq, yq, wq = ca.SX.sym("t"), ca.SX.sym("u", nu), ca.SX.sym("y"), ca.SX.sym("w")
+            x_end, th = zq[:nx] * xs_e, zq[nx:]
+            model_value = x_end[m.index(q)] if q in m.state_names else values[q](tq, x_end, uq, constants(c, th, ts))
+            term = ca.Function("term", [zq, tq, uq, c, xs_e, ts, yq, wq], [0.5 * ((model_value - yq) * wq) ** 2])
+            n = len(which)
+            terms.append(Kind(term, np.array([points[k][1] for k in which]).T, [
+                ca.DM([points[k][2] for k in which]).T, ca.DM(np.array([points[k][3] for k in which]).reshape(n, nu).T),
+                ca.horzcat(*[runs_c[points[k][4]] for k in which]), ca.repmat(xs, 1, n), ca.repmat(theta_scale, 1, n),
+                y[which].T, weight[which].T]))
+        return Assembled(self.nlp["x"], self.nlp["p"], self.n_g, terms, kinds)
 
     def data(self, runs, sigma, lower, upper, scale, x_scale) -> FitData:
         """The numbers of a solve for ``runs`` (of this NLP's structure);
