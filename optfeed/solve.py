@@ -224,7 +224,7 @@ def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int):
     key = (profile, tolerance, max_iter)
     if key in nlp._solvers:
         return nlp._solvers[key]
-    if nlp._derivatives is None:
+    if nlp._derivatives is None:  # expanded once; the first solver makes the derivatives
         F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
         x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
         p = ca.SX.sym("p", nlp.nlp["p"].shape[0])
@@ -232,6 +232,7 @@ def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int):
         nlp._sx = {"x": x, "p": p, "f": f, "g": g}
         nlp._derivatives = {}
     opts = ipopt_options(tolerance, profile, nlp.copies)
+    opts.update(getattr(nlp, "ipopt_options", {}))  # an NLP's own settings (the fit's)
     opts["ipopt.max_iter"] = int(max_iter)
     opts.update(nlp._derivatives)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
