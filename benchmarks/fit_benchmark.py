@@ -8,7 +8,8 @@ inoculum, substrate and feed) is sampled every 1.5 h ("samples: 1x") or every 0.
 the same start (the problem file's values):
 
 * optfeed: ``optfeed.fit`` with ``starts: 1`` (one NLP solve, then the polish on the
-  CVODES re-simulation), its calibration NLP built fresh for each design;
+  CVODES re-simulation), its calibration NLP built fresh for each design (the
+  process's cache of built NLPs is cleared before each fit, the warm-up's too);
 * scipy: ``tests/fitcase.scipy_fit``: solve_ivp (LSODA, rtol 1e-10) inside
   scipy.optimize.least_squares (trf, 3-point finite-difference Jacobian, tolerances
   1e-12), covariance from its Jacobian.
@@ -28,6 +29,7 @@ gets), for the ratio against one start.
 from __future__ import annotations
 
 import argparse
+import importlib
 import sys
 import tempfile
 import time
@@ -71,6 +73,7 @@ def design(n_runs: int, density: int):
 def one(n_runs: int, density: int, folder: Path, starts: int = 1) -> dict:
     runs_design = design(n_runs, density)
     problem, runs, measured = fitcase.write_case(folder, seed=7, design=runs_design, starts=starts)
+    importlib.import_module("optfeed.fit.transcription").clear_cache()
     t0 = time.process_time()
     r = optfeed.fit(problem, runs)
     t_fit = time.process_time() - t0

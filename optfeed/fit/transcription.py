@@ -120,6 +120,11 @@ def get_fit_nlp(model: Model, runs, estimated, elements_per_run: int, degree: in
     return nlp
 
 
+def clear_cache() -> None:
+    """Forget the built calibration NLPs (a benchmark times building them too)."""
+    _CACHE.clear()
+
+
 class FitNLP:
     """Weighted least squares over every run, one NLP.
 
