@@ -65,6 +65,13 @@ def gather(w: ca.MX, index: np.ndarray) -> ca.MX:
     return ca.reshape(w[flat.tolist()], index.shape[0], index.shape[1])
 
 
+def mapped(fn: ca.Function, count: int, *args) -> list:
+    """The outputs of ``fn.map(count)(*args)`` as a list (each argument has one
+    column per piece)."""
+    out = fn.map(count)(*args)
+    return list(out) if isinstance(out, (list, tuple)) else [out]
+
+
 def _nonzeros(expr: ca.SX):
     """(nonzero values as a column, their (rows, cols))."""
     sp = expr.sparsity()
@@ -90,8 +97,10 @@ class Assembled:
         n_w = w.shape[0]
         lam_f = ca.MX.sym("lam_f")
         lam_g = ca.MX.sym("lam_g", n_g)
-        f_terms, grad_vals, grad_rows = [], [], []
-        g_vals, g_rows, jac_vals, jac_r, jac_c = [], [], [], [], []
+        # a mapped call computes all its outputs: the values alone (what the line
+        # search asks for) come from their own calls
+        f_terms, f_terms_d, grad_vals, grad_rows = [], [], [], []
+        g_vals, g_vals_d, g_rows, jac_vals, jac_r, jac_c = [], [], [], [], [], []
         hess_vals, hess_r, hess_c = [], [], []
         for kind in objective:
             z = ca.SX.sym("z", kind.function.size1_in(0))
@@ -102,9 +111,11 @@ class Assembled:
             hv, hr, hc = _nonzeros(ca.triu(hz))
             count = kind.index.shape[1]
             zs = gather(w, kind.index)
-            t, gv = ca.Function("term", [z, *args], [term, grad]).map(count)(zs, *kind.inputs)
-            hvv = ca.Function("term_hess", [z, *args], [hv]).map(count)(zs, *kind.inputs)
+            t, = mapped(ca.Function("term", [z, *args], [term]), count, zs, *kind.inputs)
+            t_d, gv = mapped(ca.Function("term_grad", [z, *args], [term, grad]), count, zs, *kind.inputs)
+            hvv, = mapped(ca.Function("term_hess", [z, *args], [hv]), count, zs, *kind.inputs)
             f_terms.append(ca.sum2(t))
+            f_terms_d.append(ca.sum2(t_d))
             grad_vals.append(ca.vec(gv))
             grad_rows.append(kind.index.ravel(order="F"))
             hess_vals.append(lam_f * ca.vec(hvv))
@@ -122,9 +133,11 @@ class Assembled:
             count = kind.index.shape[1]
             zs = gather(w, kind.index)
             lam_k = ca.reshape(lam_g[kind.rows.ravel(order="F").tolist()], n_out, count)
-            o, jvv = ca.Function("piece", [z, *args], [out, jv]).map(count)(zs, *kind.inputs)
-            hvv = ca.Function("piece_hess", [z, lam, *args], [hv]).map(count)(zs, lam_k, *kind.inputs)
+            o, = mapped(ca.Function("piece", [z, *args], [out]), count, zs, *kind.inputs)
+            o_d, jvv = mapped(ca.Function("piece_jac", [z, *args], [out, jv]), count, zs, *kind.inputs)
+            hvv, = mapped(ca.Function("piece_hess", [z, lam, *args], [hv]), count, zs, lam_k, *kind.inputs)
             g_vals.append(ca.vec(o))
+            g_vals_d.append(ca.vec(o_d))
             g_rows.append(kind.rows.ravel(order="F"))
             jac_vals.append(ca.vec(jvv))
             jac_r.append(kind.rows[jr, :].ravel(order="F"))
@@ -132,7 +145,7 @@ class Assembled:
             hess_vals.append(ca.vec(hvv))
             hess_r.append(kind.index[hr, :].ravel(order="F"))
             hess_c.append(kind.index[hc, :].ravel(order="F"))
-        f = sum(f_terms[1:], f_terms[0])
+        f, f_d = sum(f_terms[1:], f_terms[0]), sum(f_terms_d[1:], f_terms_d[0])
         # gradient: a column of the n_w x 1 matrix; rows are variables
         rows = np.concatenate(grad_rows)
         sp_g, S_g = summing_matrix(n_w, 1, rows, np.zeros_like(rows))
@@ -140,7 +153,7 @@ class Assembled:
         g_rows_all = np.concatenate(g_rows)
         order = np.argsort(g_rows_all, kind="stable")
         assert np.array_equal(g_rows_all[order], np.arange(n_g)), "every row of g exactly once"
-        g = ca.vertcat(*g_vals)[order.tolist()]
+        g, g_d = ca.vertcat(*g_vals)[order.tolist()], ca.vertcat(*g_vals_d)[order.tolist()]
         sp_j, S_j = summing_matrix(n_g, n_w, np.concatenate(jac_r), np.concatenate(jac_c))
         jac = ca.MX(sp_j, ca.mtimes(S_j, ca.vertcat(*jac_vals)))
         hr, hc = np.concatenate(hess_r), np.concatenate(hess_c)
@@ -150,8 +163,8 @@ class Assembled:
         hess = ca.MX(sp_h, ca.mtimes(S_h, ca.vertcat(*hess_vals)))
         self.f, self.g = f, g
         self.functions = {
-            "grad_f": ca.Function("nlp_grad_f", [w, p], [f, grad], ["x", "p"], ["f", "grad_f_x"]),
-            "jac_g": ca.Function("nlp_jac_g", [w, p], [g, jac], ["x", "p"], ["g", "jac_g_x"]),
+            "grad_f": ca.Function("nlp_grad_f", [w, p], [f_d, grad], ["x", "p"], ["f", "grad_f_x"]),
+            "jac_g": ca.Function("nlp_jac_g", [w, p], [g_d, jac], ["x", "p"], ["g", "jac_g_x"]),
             "hess_lag": ca.Function("nlp_hess_l", [w, p, lam_f, lam_g], [hess],
                                     ["x", "p", "lam_f", "lam_g"], ["triu_hess_gamma_x_x"]),
         }
