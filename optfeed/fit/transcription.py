@@ -34,7 +34,7 @@ import casadi as ca
 import numpy as np
 
 from ..collocation import Block, Layout, element_function
-from ..model import Model
+from ..model import Model, build_model
 from .derivatives import Assembled, Kind
 
 
@@ -131,7 +131,10 @@ class FitNLP:
     Parameters
     ----------
     model : Model
-        The full model (its state layout is the runs' initial states').
+        The full model (its state layout is the runs' initial states'). The NLP
+        itself leaves out its cumulative-feed states (``fed_<s>``): no data column
+        can name one and no other state depends on them (8 runs: a fifth fewer
+        variables and rows, IPOPT's iterations about as much cheaper).
     runs : sequence of optfeed.fit.runs.Run
         The runs whose structure (sampling times, measured values, schedules) the
         NLP takes; their numbers come with each solve's :class:`FitData`.
@@ -143,11 +146,13 @@ class FitNLP:
     """
 
     def __init__(self, model: Model, runs, estimated, elements_per_run: int = 100, degree: int = 3):
-        self.model, self.estimated = model, list(estimated)
+        self.full = model
+        self.model = m = build_model(model.problem, fed=[])
+        self.states = np.array([model.index(n) for n in m.state_names])  # their places in the full model's layout
+        self.estimated = list(estimated)
         self.n_runs = len(runs)
         self.copies = self.n_runs  # copies of the model sharing decisions (solve.ipopt_options)
         self.degree = degree
-        m = model
         W, P = Layout("w"), Layout("p")
         self.W, self.P = W, P
         theta_s = W.add("theta", len(self.estimated))
@@ -295,12 +300,13 @@ class FitNLP:
 
     def data(self, runs, sigma, lower, upper, scale, x_scale) -> FitData:
         """The numbers of a solve for ``runs`` (of this NLP's structure);
-        ``sigma(quantity, measured values)`` gives the standard deviations."""
+        ``sigma(quantity, measured values)`` gives the standard deviations;
+        ``x_scale`` in the full model's state layout."""
         y = np.array([runs[r].values[q][k] for r, k, q in self.measured])
         s = np.array([float(sigma(q, [runs[r].values[q][k]])[0]) for r, k, q in self.measured])
         return FitData(np.asarray(lower, float), np.asarray(upper, float), np.asarray(scale, float),
-                       np.asarray(x_scale, float), [np.asarray(r.constants, float) for r in runs],
-                       [np.asarray(r.x0, float) for r in runs], y, 1.0 / s)
+                       np.asarray(x_scale, float)[self.states], [np.asarray(r.constants, float) for r in runs],
+                       [np.asarray(r.x0, float)[self.states] for r in runs], y, 1.0 / s)
 
     # -- the interface optfeed.solve.solve uses
     def parameters(self, data: FitData) -> np.ndarray:
@@ -353,7 +359,7 @@ class FitNLP:
 
     def pack(self, data: FitData, runs, theta, trajectories) -> np.ndarray:
         """NLP vector from parameter values and one simulated trajectory per run (at
-        those values; states of ``self.model``), with every measured species taken
+        those values; states of the full model), with every measured species taken
         from the run's data instead (straight lines between the samples, from the
         run's initial value, negative readings as zero).
 
@@ -375,11 +381,11 @@ class FitNLP:
                 if q in m.state_names and q != "V" and ok.any():
                     i = m.index(q)
                     measured[i] = (np.concatenate([[0.0], run.times[ok]]),
-                                   np.concatenate([[run.x0[i]], np.maximum(y[ok], 0.0)]))
+                                   np.concatenate([[run.x0[self.states[i]]], np.maximum(y[ok], 0.0)]))
             for blk in blocks:
                 a, b = blk.span
                 times = blk.point_times(b - a, a)
-                X = np.array([np.interp(times, *measured[i]) if i in measured else np.interp(times, traj.t, traj.x[:, i])
+                X = np.array([np.interp(times, *measured[i]) if i in measured else np.interp(times, traj.t, traj.x[:, self.states[i]])
                               for i in range(m.nx)])
                 self.W.put(w, blk.var, X / data.x_scale[:, None])
         lbx, ubx, _, _ = self.bounds(data)
