@@ -52,6 +52,7 @@ def radau_coefficients(degree: int):
     return tau, C, D
 
 
+@lru_cache(maxsize=32)  # blocks of one NLP share their model's f: built once, not per block
 def element_function(f: ca.Function, degree: int, nu: int) -> ca.Function:
     """The collocation equations of one finite element, as a Function
     (x0, X, U, t, h, p, x_scale) -> R:
