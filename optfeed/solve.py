@@ -83,11 +83,15 @@ def ipopt_options(tolerance: float, profile: str, copies: int = 1) -> dict:
         "ipopt.acceptable_iter": 10,
         # approximate minimum fill ordering: on one collocation block it keeps the
         # time per iteration linear in the element count, where MUMPS' automatic
-        # choice grew about 4x faster (benchmarks/optimize_benchmark.py). Scenario
-        # blocks sharing one pump profile are ordered far better by nested
-        # dissection (METIS): at 4 scenarios x 160 elements 41 ms per iteration
-        # against 98 ms, at 8 scenarios minutes per iteration with AMF
+        # choice grew about 4x faster (benchmarks/optimize_benchmark.py). Several
+        # blocks sharing decisions: nested dissection (METIS), and MUMPS' iterative
+        # row and column scaling named outright. With its automatic scaling choice
+        # the factorization grew far faster than the blocks (8 scenarios: 22x the
+        # CPU per iteration of one, 1.1 s of system time per solve; with scaling 7,
+        # 9.6x; benchmarks/scenario_benchmark.py); any explicit scaling, or none,
+        # measured alike, and the ordering then matters little (AMF 89, METIS 73 ms)
         "ipopt.mumps_pivot_order": 2 if copies == 1 else 5,
+        **({} if copies == 1 else {"ipopt.mumps_scaling": 7}),
         **PROFILES[profile],
     }
 
