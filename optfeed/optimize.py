@@ -992,7 +992,7 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
         data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
-                    deadline=job.deadline, report=job.report)
+                    deadline=job.deadline, report=job.report, expected_iterations=ans.start.iterations)
         if st_.status != "converged" or st_.objective is None:
             break
         st_.iterations += ans.start.iterations
@@ -1044,7 +1044,7 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
             w0, lam_g, lam_x = moved
             st_ = solve(nlp, best.data, w0, label, profile="warm", tolerance=s.tolerance,
                         max_iter=min(s.max_iter, REFINE_ITER), warm=(lam_g, lam_x), deadline=job.deadline,
-                        report=job.report)
+                        report=job.report, expected_iterations=best.start.iterations)
         else:  # finer elements too: start from the simulated schedule, with a capped budget
             un = best.nlp.unpack(best.start.w, best.data)
             if nlp.phased:
