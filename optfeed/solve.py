@@ -4,7 +4,10 @@ Build once, solve many. :func:`get_nlp` returns the :class:`~optfeed.transcripti
 of a problem's structure from a per-process cache, so starts, back-off rounds and the
 cases of a sweep that differ only in numbers reuse one graph. For each IPOPT option
 profile (a cold start, a warm start...) the NLP builds its solver once; the
-profiles share the expanded NLP and its derivatives, which are most of the cost.
+profiles share the expanded NLP and its derivatives, which are most of the cost. A
+solve expected to be short (a warm start next to the answer, :data:`SHORT_SOLVE`) on an
+NLP not yet expanded gets a solver on the NLP's graph instead, which is built in a
+tenth of the time and costs about twice as much per iteration.
 
 Every solve is watched after each IPOPT iteration (:class:`Watch`): it reports
 progress, stops at a deadline (``--time-limit``) and stops at once on Ctrl-C, so an
@@ -83,11 +86,15 @@ def ipopt_options(tolerance: float, profile: str, copies: int = 1) -> dict:
         "ipopt.acceptable_iter": 10,
         # approximate minimum fill ordering: on one collocation block it keeps the
         # time per iteration linear in the element count, where MUMPS' automatic
-        # choice grew about 4x faster (benchmarks/optimize_benchmark.py). Scenario
-        # blocks sharing one pump profile are ordered far better by nested
-        # dissection (METIS): at 4 scenarios x 160 elements 41 ms per iteration
-        # against 98 ms, at 8 scenarios minutes per iteration with AMF
+        # choice grew about 4x faster (benchmarks/optimize_benchmark.py). Several
+        # blocks sharing decisions: nested dissection (METIS), and MUMPS' iterative
+        # row and column scaling named outright. With its automatic scaling choice
+        # the factorization grew far faster than the blocks (8 scenarios: 22x the
+        # CPU per iteration of one, 1.1 s of system time per solve; with scaling 7,
+        # 9.6x; benchmarks/scenario_benchmark.py); any explicit scaling, or none,
+        # measured alike, and the ordering then matters little (AMF 89, METIS 73 ms)
         "ipopt.mumps_pivot_order": 2 if copies == 1 else 5,
+        **({} if copies == 1 else {"ipopt.mumps_scaling": 7}),
         **PROFILES[profile],
     }
 
@@ -220,10 +227,30 @@ def clear_cache() -> None:
     _CACHE.clear()
 
 
-def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int):
-    key = (profile, tolerance, max_iter)
+# A solve expected to take fewer iterations than this, on an NLP whose expanded
+# derivatives are not built yet, gets a solver on the NLP's own graph: expanding and
+# differentiating costs about as much CPU as 50 of the graph's slower iterations
+# (measured on Park-Ramirez, 80 pump steps x 160 elements: 0.67 against 0.09 s to
+# build, about 9.5 against 20 ms per iteration). Pump-grid refinements from an exact
+# warm start take 13-40 iterations on the published problems.
+SHORT_SOLVE = 50
+
+
+def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int, graph: bool = False):
+    """The built solver of ``nlp`` for this profile: on the expanded NLP (the
+    default), or on its graph (``graph``, when the expanded one is not built)."""
+    graph = graph and nlp._derivatives is None
+    key = (profile, tolerance, max_iter, graph)
     if key in nlp._solvers:
         return nlp._solvers[key]
+    if graph:
+        opts = ipopt_options(tolerance, profile, nlp.copies)
+        opts["ipopt.max_iter"] = int(max_iter)
+        watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
+        opts["iteration_callback"] = watch
+        solver = ca.nlpsol(f"optfeed_{profile}_graph", "ipopt", nlp.nlp, opts)
+        nlp._solvers[key] = (solver, watch)
+        return solver, watch
     if nlp._derivatives is None:  # expanded once; the first solver makes the derivatives
         F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
         x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
@@ -283,16 +310,18 @@ class Start:
 
 def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold", tolerance: float = 1e-8,
           max_iter: int = 3000, warm=None, deadline: float | None = None, report=None,
-          guess_objective=None) -> Start:
+          guess_objective=None, expected_iterations: int | None = None) -> Start:
     """One IPOPT solve from ``w0``; never raises for a solver failure.
 
     ``warm`` = (lam_g, lam_x), multipliers of a nearby solution (use with profile
     'warm'). ``deadline`` (time.monotonic) stops the solve ('time limit');
     ``report(label, iteration, objective, infeasibility)`` is called every few
     seconds with the NLP's own (scaled) objective and its largest constraint
-    violation (scaled rows).
+    violation (scaled rows). ``expected_iterations`` (e.g. those of the last solve
+    from a point as close): below SHORT_SOLVE, a new NLP is not expanded.
     """
-    solver, watch = _solver(nlp, profile, tolerance, max_iter)
+    short = expected_iterations is not None and expected_iterations < SHORT_SOLVE
+    solver, watch = _solver(nlp, profile, tolerance, max_iter, graph=short)
     args = nlp.arguments(data)
     watch.reset(deadline, report, label=label, lbg=args["lbg"], ubg=args["ubg"])
     if warm is not None:

@@ -144,6 +144,30 @@ def test_a_kept_solver_answers_a_changed_parameter_as_a_fresh_one(tmp_path, monk
     assert abs(kept.objective_nlp - optfeed.optimize(path, workers=1).objective_nlp) > 1e-3 * kept.objective_nlp
 
 
+def test_a_solver_on_the_nlp_graph_answers_as_the_expanded_one(tmp_path):
+    # the same NLP, its derivatives taken on the graph or on the expansion: IPOPT
+    # meets the same optimum (tolerance 1e-8)
+    from optfeed.optimize import _Job
+    from optfeed.transcription import Grid
+
+    path = tmp_path / "tiny.yaml"
+    path.write_text(TINY)
+    problem = optfeed.load_problem(path)
+    solve.clear_cache()
+    job = _Job(problem, None, None)
+    guess = solve.make_guesses(problem, job.full, 1)[0]
+    data = job.data(solve.scaling_for(problem, job.lean, [guess], job.full))
+    nlp = job.nlp(Grid(10, 20, 3))
+    w0 = nlp.pack(data, guess.steps_u, guess.T, guess.times, solve.states_for(job.lean, job.full, guess.states))
+    on_graph = solve.solve(nlp, data, w0, "graph", expected_iterations=1)
+    assert nlp._derivatives is None  # nothing was expanded
+    expanded = solve.solve(nlp, data, w0, "expanded")
+    assert nlp._derivatives is not None
+    assert on_graph.status == expanded.status == "converged"
+    assert on_graph.objective == pytest.approx(expanded.objective, rel=1e-8)
+    assert np.max(np.abs(on_graph.w - expanded.w)) <= 1e-6  # scaled variables, near 1
+
+
 _NLPSOL = casadi.nlpsol
 
 

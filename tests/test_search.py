@@ -29,6 +29,23 @@ def test_the_demo_reaches_its_better_optimum_from_defaults(optimized):
     assert r.status == "optimal, verified", r.message
     assert r.objective_sim >= 62.99  # the better local optimum; the earlier default found 62.03
     assert r.record["local_optima_coarse"] >= 2  # it met more than one local optimum on the way
+    # coarse optima too far below the best to overtake it were not refined, and say so
+    left_out = [s for s in r.starts if "coarse grid only: too far below" in s.label]
+    assert len(left_out) == r.record.get("coarse_optima_not_refined", 0) >= 1
+    assert all(s.objective < r.objective_nlp for s in left_out)
+
+
+def test_the_next_grid_doubling_is_predicted_from_two_shrinking_changes():
+    # common practice (Richardson): an error C*h^p falls by 2^p per halving of h, so
+    # the changes between successive grids form a geometric series
+    from optfeed.optimize import next_change
+
+    J = [100.0 - 3.0 * (1.0 / 2 ** k) ** 2 for k in range(4)]  # h = 1, 1/2, 1/4, 1/8; p = 2
+    changes = [abs(b - a) / abs(b) for a, b in zip(J, J[1:])]
+    # (to 1 %: each change is relative to its own grid's objective)
+    assert next_change(changes[:2]) == pytest.approx(changes[2], rel=1e-2)
+    assert next_change(changes[:1]) is None  # one change says nothing about the rate
+    assert next_change([0.001, 0.002]) is None  # changes that grow: no estimate, solve the next grid
 
 
 def test_more_starts_never_give_a_worse_answer(optimized):
