@@ -264,7 +264,6 @@ def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int, graph: 
         nlp._sx = {"x": x, "p": p, "f": f, "g": g}
         nlp._derivatives = {}
     opts = ipopt_options(tolerance, profile, nlp.copies)
-    opts.update(getattr(nlp, "ipopt_options", {}))  # an NLP's own settings (the fit's)
     opts["ipopt.max_iter"] = int(max_iter)
     opts.update(nlp._derivatives)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)

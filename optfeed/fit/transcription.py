@@ -246,9 +246,6 @@ class FitNLP:
         assembled = self._assemble(f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index)
         self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": assembled.f, "g": assembled.g}
         self._solvers, self._derivatives = {}, assembled.functions
-        # MUMPS' work space: 100 % more than its estimate rather than IPOPT's 1000 %,
-        # whose allocation cost 0.3 s of system CPU time in one 8-run solve (0.03 s now)
-        self.ipopt_options = {"ipopt.mumps_mem_percent": 100}
 
     def _assemble(self, f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index) -> Assembled:
         """The NLP as a sum of pieces (each element's collocation equations, each
