@@ -238,25 +238,54 @@ def evaluate(model: Model, limits, traj: Trajectory) -> np.ndarray:
     return _values(_phase_functions(model, limits, traj), traj, len(limits))
 
 
+class _LimitValues:
+    """(t, x, u) -> g of every limit at given constants: one CasADi Function in
+    (t, x, u, p) per model and list of limits, built once and kept on the model
+    (with its mapped copies, one per number of samples), so that judging another
+    sample costs no Function construction."""
+
+    def __init__(self, model: Model, limits, exprs, p):
+        key = tuple(id(l) for l in limits)
+        cache = model.__dict__.setdefault("_limit_values", {})
+        if key not in cache:  # the limits are kept with it so that their ids stay theirs
+            fn = model.function_p("g", [ca.vertcat(*exprs())])
+            cache[key] = (list(limits), fn, {})
+        _, self._fn, self._maps = cache[key]
+        self._p = np.asarray(model.p0 if p is None else p, dtype=float)
+        self.n_limits = len(limits)
+
+    def __call__(self, t, x, u) -> np.ndarray:
+        """g at samples (t, x, u): shape (len(t), n_limits), internal units."""
+        t = np.asarray(t, dtype=float)
+        n = len(t)
+        f = self._maps.get(n)
+        if f is None:
+            f = self._maps[n] = self._fn.map(n)
+        values = f(t[None, :], np.asarray(x, dtype=float).T, np.asarray(u, dtype=float).T, self._p)
+        return np.asarray(values).reshape(self.n_limits, n).T
+
+
 def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
-    """(t, x, u) -> g of every limit, one Function per phase of ``traj`` (one without
-    phases), each with that phase's model and constants."""
+    """(t, x, u) -> g of every limit, one :class:`_LimitValues` per phase of ``traj``
+    (one without phases), each with that phase's model and constants."""
     models = traj.phase_models
     if traj.phase is None or not models:
-        return [limit_function(model, limits, traj.constants)]
+        return [_LimitValues(model, limits, lambda: [ca.SX(l.expr) for l in limits], traj.constants)]
     out, rebuilt = [], {}
     for k, m in enumerate(models):
         if m is model:
-            exprs = [ca.SX(l.expr) for l in limits]
+            def exprs():
+                return [ca.SX(l.expr) for l in limits]
         else:
-            if id(m) not in rebuilt:
-                rebuilt[id(m)] = {l.name: l for l in build_limits(m, phases=True)}
-            mine = rebuilt[id(m)]
-            old = ca.vertcat(model.t, model.x, model.u, model.p)
-            new = ca.vertcat(m.t, m.x, m.u, m.p)
-            exprs = [ca.SX(mine[l.name].expr) if l.name in mine else ca.substitute(ca.SX(l.expr), old, new)
-                     for l in limits]
-        out.append(m.function("g", [ca.vertcat(*exprs)], p=traj.phase_constants(k)))
+            def exprs(m=m):
+                if id(m) not in rebuilt:
+                    rebuilt[id(m)] = {l.name: l for l in build_limits(m, phases=True)}
+                mine = rebuilt[id(m)]
+                old = ca.vertcat(model.t, model.x, model.u, model.p)
+                new = ca.vertcat(m.t, m.x, m.u, m.p)
+                return [ca.SX(mine[l.name].expr) if l.name in mine else ca.substitute(ca.SX(l.expr), old, new)
+                        for l in limits]
+        out.append(_LimitValues(m, limits, exprs, traj.phase_constants(k)))
     return out
 
 
@@ -306,10 +335,9 @@ def asked_outside(traj: Trajectory, j: int, lower: float, upper: float, t0: floa
     return total, np.array(times), np.array(vols)
 
 
-def _apply(f, t, x, u, n_limits) -> np.ndarray:
-    n = len(t)
-    values = f.map(n)(np.asarray(t)[None, :], np.asarray(x).T, np.asarray(u).T)
-    return np.array(values).reshape(n_limits, n).T
+def _apply(f, t, x, u, n_limits=None) -> np.ndarray:
+    """g of every limit at samples (t, x, u) with evaluator ``f`` (a :class:`_LimitValues`)."""
+    return f(t, x, u)
 
 
 def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> tuple:
@@ -444,7 +472,7 @@ def _between_samples(traj, fs, i, lim, values, window=None):
         f = _fn(fs, traj, lo)
         for _ in range(REFINE_ROUNDS):
             t, x, u = traj.between(lo, t_lo, x_lo, t_hi)
-            v = _apply(f, t, x, u, f.size1_out(0))[:, i]
+            v = _apply(f, t, x, u)[:, i]
             s, _ = lim.slack(v)
             j = int(np.argmin(s))
             ts.append(t[j]), vs.append(v[j])
@@ -482,7 +510,7 @@ def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None
     f = _fn(fs, traj, k)
     for _ in range(CROSSING_ROUNDS):
         t, x, u = traj.between(k, t_lo, x_lo, t_hi)
-        s, _ = lim.slack(_apply(f, t, x, u, f.size1_out(0))[:, i])
+        s, _ = lim.slack(_apply(f, t, x, u)[:, i])
         j = int(np.argmax(s < -tol))
         if not s[j] < -tol or j == 0:
             break
