@@ -340,15 +340,16 @@ def _apply(f, t, x, u, n_limits=None) -> np.ndarray:
     return f(t, x, u)
 
 
-def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> tuple:
+def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, values=None) -> tuple:
     """A :class:`LimitReport` per limit for trajectory ``traj``; also returns the
     per-sample use (% of the upper bound) as a dict name -> array. A limit counts as
     broken where it is exceeded by more than ``rel_tol`` of its bound; extrema and
     first crossings between samples are found as the module docstring says. A
     limit of one phase is judged over that phase's samples only (its use is NaN
-    elsewhere); a phase's pump range by the volume asked outside it."""
+    elsewhere); a phase's pump range by the volume asked outside it. ``values``:
+    :func:`evaluate` of the same trajectory, if computed already."""
     fs = _phase_functions(model, limits, traj)
-    g = _values(fs, traj, len(limits))
+    g = _values(fs, traj, len(limits)) if values is None else np.asarray(values, dtype=float)
     reports, use = [], {}
     for i, lim in enumerate(limits):
         window = None if lim.phase is None else phase_window(traj, lim.phase)

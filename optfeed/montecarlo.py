@@ -322,14 +322,15 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=N
     try:
         if traj is None:
             traj = sim.run(schedule, tf, x0=x0, p=p, deadline=deadline)
-        reports, _ = judge(model, limits, traj)
+        g = evaluate(model, limits, traj)
+        reports, _ = judge(model, limits, traj, values=g)
     except TimeLimitReached:
         return {"status": NOT_RUN, "message": "the time limit was reached first"}
     except SimulationError as exc:
         return {"status": st.SIMULATION_FAILED, "message": str(exc)}
     outcome = outcome_of(model, traj, tf)
     idx = plot_indices(traj.t, traj.u, BAND_POINTS)
-    g = evaluate(model, limits, traj)[idx]
+    g = g[idx]
     broken = tuple(r.name for r in reports if r.violated)
     return {
         "status": st.LIMIT_BROKEN if broken else st.WITHIN_LIMITS, "message": "",
