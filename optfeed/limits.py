@@ -463,25 +463,39 @@ def _between_samples(traj, fs, i, lim, values, window=None):
     twins = [k + 1 for k in chosen if k + 1 < n and traj.t[k + 1] == traj.t[k]]
     twins += [k - 1 for k in chosen if k > 0 and traj.t[k - 1] == traj.t[k]]
     chosen = np.union1d(chosen, np.array(twins, dtype=int))
-    ts, vs = [], []
+    # every chosen minimum's interval is narrowed round by round; each round
+    # integrates all the intervals still open side by side (Trajectory.between_many)
+    open_ = []  # [sample index, t_lo, x_lo, t_hi, found (t, v) pairs]
     for k in chosen:
         lo = k - 1 if k > 0 and traj.piece[k - 1] == traj.piece[k] else k
         hi = k + 1 if k + 1 < len(traj.t) and traj.piece[k + 1] == traj.piece[k] else k
         if hi == lo:
             continue
-        t_lo, x_lo, t_hi = traj.t[lo], traj.x[lo], traj.t[hi]
-        f = _fn(fs, traj, lo)
-        for _ in range(REFINE_ROUNDS):
-            t, x, u = traj.between(lo, t_lo, x_lo, t_hi)
-            v = _apply(f, t, x, u)[:, i]
+        open_.append([lo, traj.t[lo], traj.x[lo], traj.t[hi], []])
+    found = [item[4] for item in open_]
+    for _ in range(REFINE_ROUNDS):
+        if not open_:
+            break
+        runs = traj.between_many([(lo, t_lo, x_lo, t_hi) for lo, t_lo, x_lo, t_hi, _ in open_])
+        fns = [_fn(fs, traj, item[0]) for item in open_]
+        if all(f is fns[0] for f in fns):  # one evaluation of the limits for the whole round
+            g = _apply(fns[0], np.concatenate([r[0] for r in runs]), np.vstack([r[1] for r in runs]),
+                       np.vstack([r[2] for r in runs]))[:, i]
+            values = np.split(g, np.cumsum([len(r[0]) for r in runs])[:-1])
+        else:
+            values = [_apply(f, *r)[:, i] for f, r in zip(fns, runs)]
+        still = []
+        for item, (t, x, u), v in zip(open_, runs, values):
             s, _ = lim.slack(v)
             j = int(np.argmin(s))
-            ts.append(t[j]), vs.append(v[j])
+            item[4].append((t[j], v[j]))
             a, b = max(j - 1, 0), min(j + 1, len(t) - 1)
-            t_lo, x_lo, t_hi = t[a], x[a], t[b]
-            if t_hi <= t_lo:
-                break
-    return np.array(ts), np.array(vs)
+            item[1], item[2], item[3] = t[a], x[a], t[b]
+            if item[3] > item[1]:
+                still.append(item)
+        open_ = still
+    pairs = [pair for per in found for pair in per]  # minimum by minimum, round by round
+    return np.array([t for t, _ in pairs]), np.array([v for _, v in pairs])
 
 
 def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None) -> float:

@@ -120,6 +120,25 @@ class Trajectory:
         return self._simulator.between(seg, float(t0), np.asarray(x0, dtype=float), float(t1),
                                        self.phase_constants(k), k)
 
+    def between_many(self, requests) -> list:
+        """:meth:`between` for many ``(i, t0, x0, t1)`` at once, integrated side by side
+        as one system per phase (:meth:`Simulator.between_many`); a list of (t, x, u)."""
+        if self._simulator is None or self.piece is None:
+            raise ValueError("this trajectory was not made by a Simulator")
+        out = [None] * len(requests)
+        by_phase = {}
+        for n, (i, t0, x0, t1) in enumerate(requests):
+            j = self.piece[i]
+            k = self._piece_phase[j] if self._piece_phase else 0
+            by_phase.setdefault(k, []).append(n)
+        for k, ns in by_phase.items():
+            p = self.phase_constants(k)
+            items = [(self._pieces[self.piece[requests[n][0]]], float(requests[n][1]),
+                      np.asarray(requests[n][2], dtype=float), float(requests[n][3]), p) for n in ns]
+            for n, res in zip(ns, self._simulator.between_many(items, k)):
+                out[n] = res
+        return out
+
 
 class Simulator:
     """CVODES integrator for one model, reusable across schedules and constants.
@@ -137,7 +156,7 @@ class Simulator:
         self.model = model
         self.points = points_per_piece
         self.rtol, self.atol = rtol, atol
-        self._batch_integrators = {}  # batch size -> integrator (see run_batch)
+        self._batch_integrators = {}  # (model id, batch size) -> integrator (see run_batch)
         self._grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
         problem = model.problem
         self.phased = bool(problem.phases or problem.additions)
@@ -236,10 +255,7 @@ class Simulator:
         B = x.shape[1]
         if p.shape[1] != B:
             raise ValueError(f"{B} initial states but {p.shape[1]} sets of constants")
-        if B not in self._batch_integrators:
-            scale = math.sqrt(B)
-            self._batch_integrators[B] = _batch_integrator(m, self._grid, self.rtol / scale, self.atol / scale, B)
-        integrator = self._batch_integrators[B]
+        integrator = self._batch_integrator(0, B)
         try:
             segments = schedule.segments(m.feed_names, end_time)
         except ScheduleOverflow as exc:
@@ -454,6 +470,42 @@ class Simulator:
         t, xf = self._integrate(seg, t0, np.asarray(x0, dtype=float), t1, p, phase)
         t = np.concatenate([[t0], t])
         return t, np.vstack([x0, xf]), seg.rates(t)
+
+    def between_many(self, items, phase: int = 0) -> list:
+        """:meth:`between` for many ``(seg, t0, x0, t1, p)`` of phase ``phase``, as one
+        system (tolerances divided by sqrt(B), as :meth:`run_batch`; B the next power
+        of two, the last request repeated to fill it); one request
+        alone, or a batch CVODES cannot finish, goes through :meth:`between` one by
+        one. A list of (t, x, u)."""
+        if len(items) <= 1:
+            return [self.between(*item, phase) for item in items]
+        m = self.models[phase]
+        B = 1 << (len(items) - 1).bit_length()  # padded to a power of two: few integrators to build
+        integrator = self._batch_integrator(phase, B)
+        try:
+            padded = list(items) + [items[-1]] * (B - len(items))
+            X0 = np.array([item[2] for item in padded], dtype=float)
+            Q = np.array([np.concatenate([_law(seg, t0, t1, m.feed_names), p]) for seg, t0, _, t1, p in padded])
+            xf = np.array(integrator(x0=X0.ravel(), p=Q.ravel())["xf"]).reshape(B, m.nx, -1).transpose(0, 2, 1)
+        except (RuntimeError, SimulationError):
+            xf = None
+        if xf is None or not np.all(np.isfinite(xf)):
+            return [self.between(*item, phase) for item in items]
+        out = []
+        for j, (seg, t0, x0, t1, _) in enumerate(items):
+            t = np.concatenate([[t0], t0 + (t1 - t0) * self._grid])
+            out.append((t, np.vstack([x0, xf[j]]), seg.rates(t)))
+        return out
+
+    def _batch_integrator(self, phase: int, size: int):
+        """The integrator of :func:`_batch_integrator` for phase ``phase``'s model and
+        ``size`` runs (built once)."""
+        key = (id(self.models[phase]), size)
+        if key not in self._batch_integrators:
+            scale = math.sqrt(size)
+            self._batch_integrators[key] = _batch_integrator(self.models[phase], self._grid, self.rtol / scale,
+                                                             self.atol / scale, size)
+        return self._batch_integrators[key]
 
     def _integrate(self, seg: Segment, t0: float, x0, t1: float, p, phase: int = 0):
         h = t1 - t0
