@@ -3,16 +3,17 @@ grows with the number of scenarios S it carries, printed as figures and ratios.
 
 Part 1, one NLP: the fine grid of configs/inhibited_product_uncertain.yaml (40 pump
 steps x 4 elements, Radau degree 3) with S = 1, 2, 4, 8, 16 scenario blocks, solved
-from the same simulated feed with the 'near' profile; CPU per IPOPT iteration and
-its ratio to S = 1 (linear growth is a ratio of S), with both MUMPS orderings
-(approximate minimum fill, the single-block choice, and nested dissection, the
-choice for several blocks).
+to convergence from the same simulated feed with the 'near' profile (building the
+solver included): iterations, CPU of the solve and per iteration, and their ratios to
+S = 1 (linear growth is a ratio of S). ``--automatic-scaling`` adds, for comparison,
+the CPU per iteration over the first iterations with MUMPS' automatic scaling choice
+(what optfeed used before it named the scaling for several blocks).
 
 Part 2, the whole job: ``optimize`` with S = 1 (the nominal problem), 4 and 8
 scenarios, wall time and the Monte Carlo figures of the answer beside the nominal
 optimum's (probability of breaking any limit, mean objective).
 
-Run:  python benchmarks/scenario_benchmark.py [--sizes 1,2,4,8,16] [--iterations 30] [--whole]
+Run:  python benchmarks/scenario_benchmark.py [--sizes 1,2,4,8,16] [--automatic-scaling] [--whole]
 """
 
 from __future__ import annotations
@@ -34,49 +35,57 @@ from optfeed.uncertainty import scenario_set  # noqa: E402
 O = importlib.import_module("optfeed.optimize")
 S_ = importlib.import_module("optfeed.solve")
 PROBLEM = ROOT / "configs" / "inhibited_product_uncertain.yaml"
-AMF_UP_TO = 4
+AUTOMATIC_UP_TO = 8  # beyond this the automatic scaling takes too long to be worth printing
 
 
-def per_iteration(count: int, order: int, iterations: int) -> tuple[float, int]:
-    """CPU seconds per IPOPT iteration on the fine grid with ``count`` scenarios."""
+def one_solve(count: int, max_iter: int = 3000, automatic: bool = False):
+    """The fine NLP with ``count`` scenarios solved from the first start's simulated
+    feed: (Start, variables, CPU seconds of building and solving)."""
     p = optfeed.load_problem(PROBLEM)
     sc = O.merge_identical(scenario_set(p, build_model(p), count=count))
     job = O._Job(p, None, None, sc)
     s = job.settings
     guesses = S_.make_guesses(p, job.full, s.starts)
     data = job.data(S_.scaling_for(p, job.lean, guesses, job.full))
+    t0 = time.process_time()
     fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
     w0 = job.pack_from_schedule(fine, data, guesses[0].steps_u, guesses[0].T)
     original = S_.ipopt_options
 
     def options(tol, profile, copies=1):
-        return {**original(tol, profile, copies), "ipopt.mumps_pivot_order": order}
+        out = original(tol, profile, copies)
+        out.pop("ipopt.mumps_scaling", None)  # MUMPS chooses (77, its default)
+        return out
 
-    S_.ipopt_options = options
+    if automatic:
+        S_.ipopt_options = options
     try:
-        st = S_.solve(fine, data, w0, "benchmark", profile="near", max_iter=iterations + order)  # a solver per order
+        st = S_.solve(fine, data, w0, "benchmark", profile="near", max_iter=max_iter)
     finally:
         S_.ipopt_options = original
-    return st.seconds / max(st.iterations, 1), fine.n_w
+    return st, fine.n_w, time.process_time() - t0
 
 
-def part_nlp(sizes, iterations: int) -> None:
-    print(f"1. One NLP, fine grid, first {iterations} iterations from the same feed (CPU per iteration)")
-    print(f"   {'S':>3} {'variables':>9} | {'AMF ms/it':>9} {'ratio':>6} | {'METIS ms/it':>11} {'ratio':>6}")
-    base = {}
+def part_nlp(sizes, automatic: bool, iterations: int) -> None:
+    print("1. One NLP, fine grid, solved from the same simulated feed (CPU; the solve includes building its solver)")
+    head = f"   {'S':>3} {'variables':>9} | {'it':>4} {'solve s':>8} {'ratio':>6} {'ms/it':>7} {'ratio':>6} | status"
+    if automatic:
+        head += f"  | automatic scaling, first {iterations} it: ms/it ratio"
+    print(head)
+    base, base_auto = None, None
     for n in sizes:
-        cells = []
-        for order in (2, 5):
-            if order == 2 and n > AMF_UP_TO:
-                cells.append(f"{'-':>9} {'':>6}" if not cells else f"{'-':>11} {'':>6}")
-                continue
-            sec, nw = per_iteration(n, order, iterations)
-            base.setdefault(order, sec)
-            width = 9 if order == 2 else 11
-            cells.append(f"{1e3 * sec:>{width}.1f} {sec / base[order]:>6.1f}")
-        print(f"   {n:>3} {nw:>9} | {cells[0]} | {cells[1]}", flush=True)
-    print("   ratio = against S = 1 with the same ordering; linear growth would be a ratio of S")
-    print(f"   AMF is not run above {AMF_UP_TO} scenarios: at 8 a single iteration took minutes")
+        st, nw, cpu = one_solve(n)
+        per = st.seconds / max(st.iterations, 1)
+        base = base or (cpu, per)
+        line = (f"   {n:>3} {nw:>9} | {st.iterations:>4} {cpu:>8.2f} {cpu / base[0]:>6.1f} {1e3 * per:>7.1f} "
+                f"{per / base[1]:>6.1f} | {st.status}")
+        if automatic and n <= AUTOMATIC_UP_TO:
+            a, _, _ = one_solve(n, max_iter=iterations, automatic=True)
+            pa = a.seconds / max(a.iterations, 1)
+            base_auto = base_auto or pa
+            line += f"  | {1e3 * pa:>7.1f} {pa / base_auto:>6.1f}"
+        print(line, flush=True)
+    print("   ratio = against S = 1; linear growth would be a ratio of S")
 
 
 def part_whole(sizes) -> None:
@@ -96,10 +105,12 @@ def part_whole(sizes) -> None:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="1,2,4,8,16")
-    ap.add_argument("--iterations", type=int, default=30)
+    ap.add_argument("--automatic-scaling", action="store_true",
+                    help="also time the first iterations with MUMPS' automatic scaling (up to 8 scenarios)")
+    ap.add_argument("--iterations", type=int, default=30, help="iterations timed with the automatic scaling")
     ap.add_argument("--whole", action="store_true", help="also time the whole optimize at S = 1, 4, 8")
     args = ap.parse_args()
-    part_nlp([int(x) for x in args.sizes.split(",")], args.iterations)
+    part_nlp([int(x) for x in args.sizes.split(",")], args.automatic_scaling, args.iterations)
     if args.whole:
         part_whole([1, 4, 8])
 
