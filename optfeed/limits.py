@@ -238,25 +238,54 @@ def evaluate(model: Model, limits, traj: Trajectory) -> np.ndarray:
     return _values(_phase_functions(model, limits, traj), traj, len(limits))
 
 
+class _LimitValues:
+    """(t, x, u) -> g of every limit at given constants: one CasADi Function in
+    (t, x, u, p) per model and list of limits, built once and kept on the model
+    (with its mapped copies, one per number of samples), so that judging another
+    sample costs no Function construction."""
+
+    def __init__(self, model: Model, limits, exprs, p):
+        key = tuple(id(l) for l in limits)
+        cache = model.__dict__.setdefault("_limit_values", {})
+        if key not in cache:  # the limits are kept with it so that their ids stay theirs
+            fn = model.function_p("g", [ca.vertcat(*exprs())])
+            cache[key] = (list(limits), fn, {})
+        _, self._fn, self._maps = cache[key]
+        self._p = np.asarray(model.p0 if p is None else p, dtype=float)
+        self.n_limits = len(limits)
+
+    def __call__(self, t, x, u) -> np.ndarray:
+        """g at samples (t, x, u): shape (len(t), n_limits), internal units."""
+        t = np.asarray(t, dtype=float)
+        n = len(t)
+        f = self._maps.get(n)
+        if f is None:
+            f = self._maps[n] = self._fn.map(n)
+        values = f(t[None, :], np.asarray(x, dtype=float).T, np.asarray(u, dtype=float).T, self._p)
+        return np.asarray(values).reshape(self.n_limits, n).T
+
+
 def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
-    """(t, x, u) -> g of every limit, one Function per phase of ``traj`` (one without
-    phases), each with that phase's model and constants."""
+    """(t, x, u) -> g of every limit, one :class:`_LimitValues` per phase of ``traj``
+    (one without phases), each with that phase's model and constants."""
     models = traj.phase_models
     if traj.phase is None or not models:
-        return [limit_function(model, limits, traj.constants)]
+        return [_LimitValues(model, limits, lambda: [ca.SX(l.expr) for l in limits], traj.constants)]
     out, rebuilt = [], {}
     for k, m in enumerate(models):
         if m is model:
-            exprs = [ca.SX(l.expr) for l in limits]
+            def exprs():
+                return [ca.SX(l.expr) for l in limits]
         else:
-            if id(m) not in rebuilt:
-                rebuilt[id(m)] = {l.name: l for l in build_limits(m, phases=True)}
-            mine = rebuilt[id(m)]
-            old = ca.vertcat(model.t, model.x, model.u, model.p)
-            new = ca.vertcat(m.t, m.x, m.u, m.p)
-            exprs = [ca.SX(mine[l.name].expr) if l.name in mine else ca.substitute(ca.SX(l.expr), old, new)
-                     for l in limits]
-        out.append(m.function("g", [ca.vertcat(*exprs)], p=traj.phase_constants(k)))
+            def exprs(m=m):
+                if id(m) not in rebuilt:
+                    rebuilt[id(m)] = {l.name: l for l in build_limits(m, phases=True)}
+                mine = rebuilt[id(m)]
+                old = ca.vertcat(model.t, model.x, model.u, model.p)
+                new = ca.vertcat(m.t, m.x, m.u, m.p)
+                return [ca.SX(mine[l.name].expr) if l.name in mine else ca.substitute(ca.SX(l.expr), old, new)
+                        for l in limits]
+        out.append(_LimitValues(m, limits, exprs, traj.phase_constants(k)))
     return out
 
 
@@ -306,21 +335,21 @@ def asked_outside(traj: Trajectory, j: int, lower: float, upper: float, t0: floa
     return total, np.array(times), np.array(vols)
 
 
-def _apply(f, t, x, u, n_limits) -> np.ndarray:
-    n = len(t)
-    values = f.map(n)(np.asarray(t)[None, :], np.asarray(x).T, np.asarray(u).T)
-    return np.array(values).reshape(n_limits, n).T
+def _apply(f, t, x, u, n_limits=None) -> np.ndarray:
+    """g of every limit at samples (t, x, u) with evaluator ``f`` (a :class:`_LimitValues`)."""
+    return f(t, x, u)
 
 
-def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL) -> tuple:
+def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, values=None) -> tuple:
     """A :class:`LimitReport` per limit for trajectory ``traj``; also returns the
     per-sample use (% of the upper bound) as a dict name -> array. A limit counts as
     broken where it is exceeded by more than ``rel_tol`` of its bound; extrema and
     first crossings between samples are found as the module docstring says. A
     limit of one phase is judged over that phase's samples only (its use is NaN
-    elsewhere); a phase's pump range by the volume asked outside it."""
+    elsewhere); a phase's pump range by the volume asked outside it. ``values``:
+    :func:`evaluate` of the same trajectory, if computed already."""
     fs = _phase_functions(model, limits, traj)
-    g = _values(fs, traj, len(limits))
+    g = _values(fs, traj, len(limits)) if values is None else np.asarray(values, dtype=float)
     reports, use = [], {}
     for i, lim in enumerate(limits):
         window = None if lim.phase is None else phase_window(traj, lim.phase)
@@ -434,25 +463,39 @@ def _between_samples(traj, fs, i, lim, values, window=None):
     twins = [k + 1 for k in chosen if k + 1 < n and traj.t[k + 1] == traj.t[k]]
     twins += [k - 1 for k in chosen if k > 0 and traj.t[k - 1] == traj.t[k]]
     chosen = np.union1d(chosen, np.array(twins, dtype=int))
-    ts, vs = [], []
+    # every chosen minimum's interval is narrowed round by round; each round
+    # integrates all the intervals still open side by side (Trajectory.between_many)
+    open_ = []  # [sample index, t_lo, x_lo, t_hi, found (t, v) pairs]
     for k in chosen:
         lo = k - 1 if k > 0 and traj.piece[k - 1] == traj.piece[k] else k
         hi = k + 1 if k + 1 < len(traj.t) and traj.piece[k + 1] == traj.piece[k] else k
         if hi == lo:
             continue
-        t_lo, x_lo, t_hi = traj.t[lo], traj.x[lo], traj.t[hi]
-        f = _fn(fs, traj, lo)
-        for _ in range(REFINE_ROUNDS):
-            t, x, u = traj.between(lo, t_lo, x_lo, t_hi)
-            v = _apply(f, t, x, u, f.size1_out(0))[:, i]
+        open_.append([lo, traj.t[lo], traj.x[lo], traj.t[hi], []])
+    found = [item[4] for item in open_]
+    for _ in range(REFINE_ROUNDS):
+        if not open_:
+            break
+        runs = traj.between_many([(lo, t_lo, x_lo, t_hi) for lo, t_lo, x_lo, t_hi, _ in open_])
+        fns = [_fn(fs, traj, item[0]) for item in open_]
+        if all(f is fns[0] for f in fns):  # one evaluation of the limits for the whole round
+            g = _apply(fns[0], np.concatenate([r[0] for r in runs]), np.vstack([r[1] for r in runs]),
+                       np.vstack([r[2] for r in runs]))[:, i]
+            values = np.split(g, np.cumsum([len(r[0]) for r in runs])[:-1])
+        else:
+            values = [_apply(f, *r)[:, i] for f, r in zip(fns, runs)]
+        still = []
+        for item, (t, x, u), v in zip(open_, runs, values):
             s, _ = lim.slack(v)
             j = int(np.argmin(s))
-            ts.append(t[j]), vs.append(v[j])
+            item[4].append((t[j], v[j]))
             a, b = max(j - 1, 0), min(j + 1, len(t) - 1)
-            t_lo, x_lo, t_hi = t[a], x[a], t[b]
-            if t_hi <= t_lo:
-                break
-    return np.array(ts), np.array(vs)
+            item[1], item[2], item[3] = t[a], x[a], t[b]
+            if item[3] > item[1]:
+                still.append(item)
+        open_ = still
+    pairs = [pair for per in found for pair in per]  # minimum by minimum, round by round
+    return np.array([t for t, _ in pairs]), np.array([v for _, v in pairs])
 
 
 def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None) -> float:
@@ -482,7 +525,7 @@ def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None
     f = _fn(fs, traj, k)
     for _ in range(CROSSING_ROUNDS):
         t, x, u = traj.between(k, t_lo, x_lo, t_hi)
-        s, _ = lim.slack(_apply(f, t, x, u, f.size1_out(0))[:, i])
+        s, _ = lim.slack(_apply(f, t, x, u)[:, i])
         j = int(np.argmax(s < -tol))
         if not s[j] < -tol or j == 0:
             break

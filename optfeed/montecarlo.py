@@ -30,6 +30,7 @@ from .errors import InputError, SimulationError, TimeLimitReached
 Z95 = 1.959963984540054  # standard normal quantile of 0.975
 BAND_POINTS = 600  # time points kept per band (plus both sides of every pump change)
 CHUNKS_PER_WORKER = 8  # samples are shared out in this many pieces per process
+BATCH = 16  # samples integrated together as one system (see _chunk)
 BROKEN_SHOWN = 20  # runs that break a limit kept for its figure
 NOT_RUN = "not run"  # a sample not simulated before the time limit: left out of every fraction
 
@@ -307,8 +308,9 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
 # ------------------------------------------------------------------ simulating the samples
 
 
-def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=None) -> dict:
-    """Simulate and judge one sample; a plain dict (it crosses a process pipe)."""
+def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=None, traj=None) -> dict:
+    """Simulate and judge one sample (or only judge ``traj``, its run simulated
+    already); a plain dict (it crosses a process pipe)."""
     from .limits import evaluate, judge
     from .outcome import outcome_of
     from .report.figures import plot_indices
@@ -318,15 +320,17 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=N
     if deadline is not None and time.monotonic() > deadline:
         return {"status": NOT_RUN, "message": "the time limit was reached first"}
     try:
-        traj = sim.run(schedule, tf, x0=x0, p=p, deadline=deadline)
-        reports, _ = judge(model, limits, traj)
+        if traj is None:
+            traj = sim.run(schedule, tf, x0=x0, p=p, deadline=deadline)
+        g = evaluate(model, limits, traj)
+        reports, _ = judge(model, limits, traj, values=g)
     except TimeLimitReached:
         return {"status": NOT_RUN, "message": "the time limit was reached first"}
     except SimulationError as exc:
         return {"status": st.SIMULATION_FAILED, "message": str(exc)}
     outcome = outcome_of(model, traj, tf)
     idx = plot_indices(traj.t, traj.u, BAND_POINTS)
-    g = evaluate(model, limits, traj)[idx]
+    g = g[idx]
     broken = tuple(r.name for r in reports if r.violated)
     return {
         "status": st.LIMIT_BROKEN if broken else st.WITHIN_LIMITS, "message": "",
@@ -338,26 +342,54 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=N
 
 def _chunk(job, progress=None) -> list:
     """Simulate a piece of the sample in this process (one model and integrator);
-    ``progress(1)`` after each sample (default: to the parent process, if any)."""
+    ``progress(1)`` after each sample (default: to the parent process, if any).
+
+    Without phases or additions the samples are integrated ``batch`` at a time (the
+    job's last entry; see :func:`batch_size`) as one system
+    (:meth:`optfeed.simulate.Simulator.run_batch`), each run then judged on its own;
+    a batch that fails is simulated again sample by sample, so that a failure is
+    reported for the sample it belongs to, as before."""
     from .limits import build_limits
     from .model import build_model
     from .processes import report_progress
     from .simulate import Simulator
 
-    problem, schedule, tf, constants, x0, deadline = job
+    problem, schedule, tf, constants, x0, deadline, batch = job
     model = build_model(problem)
     limits = build_limits(model, phases=True)
     sim = Simulator(model)
+    if sim.phased:
+        batch = 1
+    n = constants.shape[1]
     out = []
-    for k in range(constants.shape[1]):
-        out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline))
-        (progress or report_progress)(1)
+    for start in range(0, n, batch):
+        cols = range(start, min(start + batch, n))
+        trajs = [None] * len(cols)
+        if len(cols) > 1 and not (deadline is not None and time.monotonic() > deadline):
+            try:
+                trajs = sim.run_batch(schedule, tf, x0[:, cols], constants[:, cols], deadline=deadline)
+            except TimeLimitReached:
+                trajs = [None] * len(cols)  # each sample then meets the time limit on its own
+            except SimulationError:
+                trajs = [None] * len(cols)  # one by one, to name the failing sample
+        for k, traj in zip(cols, trajs):
+            out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline, traj))
+            (progress or report_progress)(1)
     return out
+
+
+def batch_size(samples: int) -> int:
+    """Samples integrated together: up to :data:`BATCH`, fewer for a small sample so
+    that it still makes several batches. It depends on the sample's size only, and
+    the batches are the same runs of consecutive samples however many processes share
+    them, so every process count gives the same numbers."""
+    return max(1, min(BATCH, math.ceil(samples / 8)))
 
 
 def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) -> list:
     """Every sample's dict, in drawing order."""
     n = drawn.count
+    batch = batch_size(n)
     total = [0]
     every = max(1, n // 10)  # about ten reports over the run
 
@@ -368,13 +400,14 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) 
             on_progress(f"Monte Carlo: {total[0]}/{n} samples simulated", total[0], n)
 
     if workers == 1:
-        return _chunk((problem, schedule, tf, drawn.constants, drawn.x0, deadline), progress)
+        return _chunk((problem, schedule, tf, drawn.constants, drawn.x0, deadline, batch), progress)
 
     from .processes import run_killable
 
-    size = max(1, math.ceil(n / (workers * CHUNKS_PER_WORKER)))
+    size = batch * max(1, math.ceil(n / (workers * CHUNKS_PER_WORKER * batch)))  # whole batches
     starts = list(range(0, n, size))
-    items = [(k, (problem, schedule, tf, drawn.constants[:, s:s + size], drawn.x0[:, s:s + size], deadline))
+    items = [(k, (problem, schedule, tf, drawn.constants[:, s:s + size], drawn.x0[:, s:s + size], deadline,
+                  batch))
              for k, s in enumerate(starts)]
     results = {}
 

@@ -120,6 +120,25 @@ class Trajectory:
         return self._simulator.between(seg, float(t0), np.asarray(x0, dtype=float), float(t1),
                                        self.phase_constants(k), k)
 
+    def between_many(self, requests) -> list:
+        """:meth:`between` for many ``(i, t0, x0, t1)`` at once, integrated side by side
+        as one system per phase (:meth:`Simulator.between_many`); a list of (t, x, u)."""
+        if self._simulator is None or self.piece is None:
+            raise ValueError("this trajectory was not made by a Simulator")
+        out = [None] * len(requests)
+        by_phase = {}
+        for n, (i, t0, x0, t1) in enumerate(requests):
+            j = self.piece[i]
+            k = self._piece_phase[j] if self._piece_phase else 0
+            by_phase.setdefault(k, []).append(n)
+        for k, ns in by_phase.items():
+            p = self.phase_constants(k)
+            items = [(self._pieces[self.piece[requests[n][0]]], float(requests[n][1]),
+                      np.asarray(requests[n][2], dtype=float), float(requests[n][3]), p) for n in ns]
+            for n, res in zip(ns, self._simulator.between_many(items, k)):
+                out[n] = res
+        return out
+
 
 class Simulator:
     """CVODES integrator for one model, reusable across schedules and constants.
@@ -136,6 +155,8 @@ class Simulator:
     def __init__(self, model: Model, points_per_piece: int = 40, rtol: float = RTOL, atol: float = ATOL):
         self.model = model
         self.points = points_per_piece
+        self.rtol, self.atol = rtol, atol
+        self._batch_integrators = {}  # (model id, batch size) -> integrator (see run_batch)
         self._grid = np.linspace(0.0, 1.0, points_per_piece + 1)[1:]
         problem = model.problem
         self.phased = bool(problem.phases or problem.additions)
@@ -202,6 +223,73 @@ class Simulator:
             state_names=tuple(m.state_names), feed_names=tuple(m.feed_names),
             piece=np.concatenate(index), _pieces=tuple(pieces), _simulator=self, _p=p,
         )
+
+    def run_batch(self, schedule: Schedule, end_time: float, x0, p, min_points: int = SAMPLES,
+                  deadline: float | None = None) -> list:
+        """Integrate ``schedule`` over [0, end_time] h for B runs at once: ``x0`` and
+        ``p`` hold one column per run (shapes (nx, B) and (n_constants, B)). Returns
+        one :class:`Trajectory` per run, sampled exactly as :meth:`run` samples it
+        and able to integrate again on its own (:meth:`Trajectory.between`).
+
+        The B runs are one CVODES system (the model's right-hand side once per run,
+        side by side; its Jacobian block-diagonal and sparse), one integrator call
+        per piece for all of them, which costs far less than B calls. CVODES keeps
+        the root mean square of the weighted local errors of the whole system
+        within 1, so a single run's share could reach sqrt(B) times the tolerance;
+        the batch is therefore integrated with both tolerances divided by sqrt(B),
+        which makes every run's own error test at least as strict as :meth:`run`'s.
+
+        Problems without phases or additions only (ValueError otherwise).
+
+        Raises
+        ------
+        SimulationError
+            When CVODES fails or a state stops being finite in any run of the
+            batch (integrate the runs one by one to find which, and why).
+        """
+        if self.phased:
+            raise ValueError("a batch of runs is integrated only for problems without phases or additions")
+        m = self.model
+        x = np.array(x0, dtype=float).reshape(m.nx, -1)
+        p = np.array(p, dtype=float).reshape(m.n_constants, -1)
+        B = x.shape[1]
+        if p.shape[1] != B:
+            raise ValueError(f"{B} initial states but {p.shape[1]} sets of constants")
+        integrator = self._batch_integrator(0, B)
+        try:
+            segments = schedule.segments(m.feed_names, end_time)
+        except ScheduleOverflow as exc:
+            raise SimulationError(f"the rate of feed {exc.feed!r} grows past any finite number", exc.time) from None
+        max_len = end_time * self.points / max(min_points, 1)
+        ts, xs, us, pieces, index = [], [], [], [], []
+        x = x.T.copy()  # (B, nx)
+        for seg in segments:
+            for piece in _pieces(seg, max_len, m.feed_names):
+                if deadline is not None and time.monotonic() > deadline:
+                    raise TimeLimitReached("the time limit was reached before the end of the run", piece.start)
+                q = _law(piece, piece.start, piece.end, m.feed_names)
+                Q = np.vstack([np.repeat(q[:, None], B, axis=1), p])
+                try:
+                    out = integrator(x0=x.ravel(), p=Q.T.ravel())
+                except RuntimeError as exc:
+                    raise SimulationError(f"the integrator failed ({_short(exc)}) in a batch of {B} runs",
+                                          piece.start) from None
+                xf = np.array(out["xf"]).reshape(B, m.nx, -1).transpose(0, 2, 1)  # (B, points, nx)
+                if not np.all(np.isfinite(xf)):
+                    raise SimulationError(f"a state became infinite or not a number in a batch of {B} runs",
+                                          piece.start)
+                t = piece.start + (piece.end - piece.start) * self._grid
+                ts.append(np.concatenate([[piece.start], t]))
+                xs.append(np.concatenate([x[:, None, :], xf], axis=1))
+                us.append(piece.rates(ts[-1]))
+                index.append(np.full(len(ts[-1]), len(pieces)))
+                pieces.append(piece)
+                x = xf[:, -1, :]
+        t, u, index, pieces = np.concatenate(ts), np.vstack(us), np.concatenate(index), tuple(pieces)
+        x_all = np.concatenate(xs, axis=1)  # (B, n, nx)
+        return [Trajectory(t=t, x=x_all[j], u=u, state_names=tuple(m.state_names), feed_names=tuple(m.feed_names),
+                           piece=index, _pieces=pieces, _simulator=self, _p=p[:, j].copy())
+                for j in range(B)]
 
     def _run_phased(self, schedule, end_time, min_points, x0, p, deadline, switch_times) -> Trajectory:
         """Phase by phase: each phase with its model, constants and pumps (a pump
@@ -383,20 +471,45 @@ class Simulator:
         t = np.concatenate([[t0], t])
         return t, np.vstack([x0, xf]), seg.rates(t)
 
+    def between_many(self, items, phase: int = 0) -> list:
+        """:meth:`between` for many ``(seg, t0, x0, t1, p)`` of phase ``phase``, as one
+        system (tolerances divided by sqrt(B), as :meth:`run_batch`; B the next power
+        of two, the last request repeated to fill it); one request
+        alone, or a batch CVODES cannot finish, goes through :meth:`between` one by
+        one. A list of (t, x, u)."""
+        if len(items) <= 1:
+            return [self.between(*item, phase) for item in items]
+        m = self.models[phase]
+        B = 1 << (len(items) - 1).bit_length()  # padded to a power of two: few integrators to build
+        integrator = self._batch_integrator(phase, B)
+        try:
+            padded = list(items) + [items[-1]] * (B - len(items))
+            X0 = np.array([item[2] for item in padded], dtype=float)
+            Q = np.array([np.concatenate([_law(seg, t0, t1, m.feed_names), p]) for seg, t0, _, t1, p in padded])
+            xf = np.array(integrator(x0=X0.ravel(), p=Q.ravel())["xf"]).reshape(B, m.nx, -1).transpose(0, 2, 1)
+        except (RuntimeError, SimulationError):
+            xf = None
+        if xf is None or not np.all(np.isfinite(xf)):
+            return [self.between(*item, phase) for item in items]
+        out = []
+        for j, (seg, t0, x0, t1, _) in enumerate(items):
+            t = np.concatenate([[t0], t0 + (t1 - t0) * self._grid])
+            out.append((t, np.vstack([x0, xf[j]]), seg.rates(t)))
+        return out
+
+    def _batch_integrator(self, phase: int, size: int):
+        """The integrator of :func:`_batch_integrator` for phase ``phase``'s model and
+        ``size`` runs (built once)."""
+        key = (id(self.models[phase]), size)
+        if key not in self._batch_integrators:
+            scale = math.sqrt(size)
+            self._batch_integrators[key] = _batch_integrator(self.models[phase], self._grid, self.rtol / scale,
+                                                             self.atol / scale, size)
+        return self._batch_integrators[key]
+
     def _integrate(self, seg: Segment, t0: float, x0, t1: float, p, phase: int = 0):
         h = t1 - t0
-        d = t0 - seg.start
-        try:  # a pump that is off stays off, whatever its growth rate
-            a = [(ai + bi * d) * math.exp(ki * d) if ai or bi else 0.0 for ai, bi, ki in zip(seg.a, seg.b, seg.k)]
-            b = [bi * math.exp(ki * d) if bi else 0.0 for bi, ki in zip(seg.b, seg.k)]
-            ends = [float(ai) * math.exp(ki * h) if ai else 0.0 for ai, ki in zip(a, seg.k)]
-            if not all(map(math.isfinite, a + b + ends)):
-                raise OverflowError
-        except OverflowError:
-            j = max(range(len(seg.k)), key=lambda i: seg.k[i])
-            raise SimulationError(f"the rate of feed {self.model.feed_names[j]!r} grows past any finite number",
-                                  t0) from None
-        q = np.concatenate([[t0, h], a, b, seg.k, p])
+        q = np.concatenate([_law(seg, t0, t1, self.model.feed_names), p])
         try:
             out = self._integrators[phase](x0=x0, p=q)
         except RuntimeError as exc:
@@ -444,6 +557,45 @@ def _integrator(model: Model, grid, rtol: float, atol: float):
     opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
             "disable_internal_warnings": True}
     return ca.integrator("piece", "cvodes", {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
+                         0.0, grid, opts)
+
+
+def _law(seg: Segment, t0: float, t1: float, feed_names=()) -> np.ndarray:
+    """The pump law of ``seg`` from ``t0`` to ``t1`` (h) as the integrator takes it:
+    (t0, h, a, b, k), rates measured from ``t0``."""
+    h = t1 - t0
+    d = t0 - seg.start
+    try:  # a pump that is off stays off, whatever its growth rate
+        a = [(ai + bi * d) * math.exp(ki * d) if ai or bi else 0.0 for ai, bi, ki in zip(seg.a, seg.b, seg.k)]
+        b = [bi * math.exp(ki * d) if bi else 0.0 for bi, ki in zip(seg.b, seg.k)]
+        ends = [float(ai) * math.exp(ki * h) if ai else 0.0 for ai, ki in zip(a, seg.k)]
+        if not all(map(math.isfinite, a + b + ends)):
+            raise OverflowError
+    except OverflowError:
+        j = max(range(len(seg.k)), key=lambda i: seg.k[i])
+        raise SimulationError(f"the rate of feed {feed_names[j]!r} grows past any finite number", t0) from None
+    return np.concatenate([[t0, h], a, b, seg.k])
+
+
+def _batch_integrator(model: Model, grid, rtol: float, atol: float, size: int):
+    """CVODES over one piece for ``size`` runs side by side: states (nx, size) and
+    (pump law, constants) (2 + 3 nu + n_constants, size), each stacked column by
+    column; output at ``grid`` in scaled time tau in [0, 1], as :func:`_integrator`."""
+    nu, nq = model.nu, 2 + 3 * model.nu
+    tau = ca.SX.sym("tau")
+    X = ca.SX.sym("x", model.nx, size)
+    Q = ca.SX.sym("q", nq + model.n_constants, size)
+    f = model.function_p("f", [model.rhs])
+    odes = []
+    for j in range(size):
+        q = Q[:, j]
+        t0, h = q[0], q[1]
+        a, b, k = q[2:2 + nu], q[2 + nu:2 + 2 * nu], q[2 + 2 * nu:nq]
+        u = (a + b * h * tau) * ca.exp(k * h * tau)
+        odes.append(h * f(t0 + h * tau, X[:, j], u, q[nq:]))
+    opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
+            "disable_internal_warnings": True}
+    return ca.integrator("pieces", "cvodes", {"x": ca.vec(X), "p": ca.vec(Q), "t": tau, "ode": ca.vertcat(*odes)},
                          0.0, grid, opts)
 
 

@@ -267,8 +267,10 @@ def _internal_factor(units) -> float:
     return float(UREG.Quantity(1.0, units).to(internal_units(units.dimensionality)).magnitude)
 
 
+@functools.lru_cache(maxsize=512)
 def factor_to(unit: str) -> float:
-    """Multiply an internal value by this to express it in ``unit``."""
+    """Multiply an internal value by this to express it in ``unit`` (cached: reports
+    of many runs ask for the same few units)."""
     u = UREG.parse_units(unit)
     return float(UREG.Quantity(1.0, internal_units(u.dimensionality)).to(u).magnitude)
 
