@@ -10,8 +10,9 @@ the answer does not depend on how busy the machine is):
    trajectory; how far that moved its objective is the coarse grid's error. Every
    other distinct coarse optimum within twice that error of the best is refined
    too (one further below would have to gain more than twice what the best gained
-   to overtake it); those left out are reported as such. Every answer that
-   verifies is kept.
+   to overtake it); those left out are reported as such, unless none of the
+   refined answers verifies: then they are refined and verified after all. Every
+   answer that verifies is kept.
 3. **Verify.** The best answer's pump schedule is re-simulated with CVODES and
    judged exactly as ``optfeed check`` judges it. If a limit is exceeded between
    collocation points, the NLP keeps that much clear of it and is solved again
@@ -745,18 +746,22 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
         return _no_answer(job, result, coarse_starts + fine_starts, summaries, coarse, fine, data, diagnosis)
 
     # 3: verify, best first; keep the best answer that verifies
-    converged.sort(key=lambda c: -c[0].objective if problem.objective.sense == "maximize" else c[0].objective)
-    best, first_unverified = None, None
-    for fs, _ in converged:
-        if best is not None and not job.better(fs.objective, best.start.objective):
-            break  # cannot beat the verified answer in hand
-        ans = _verified(job, _Answer(fs, fine, data, label=fs.label), scaling)
-        if ans.verification.verified and (best is None or job.better(ans.start.objective, best.start.objective)):
-            best = ans
-        elif first_unverified is None:
-            first_unverified = ans
-        if _stop_now(job):
-            break
+    best, first_unverified = _verify_best_first(job, converged, fine, data, scaling)
+    if best is None and skipped and not _stop_now(job):
+        # none of the optima that could win verified: those left out are refined after
+        # all, since one of them may verify (a multistart never loses a verified answer
+        # by meeting a better optimum that does not verify)
+        job.progress("no refined optimum verified: refining the coarse optima left out", None, None)
+        more = _run_all(job, fine_jobs(skipped), workers, "refining optimum")
+        if interrupted():
+            raise KeyboardInterrupt
+        extra = [(fs, g) for fs, g in zip(more, skipped) if fs.status == "converged" and fs.objective is not None]
+        groups, fine_starts, skipped = groups + skipped, fine_starts + more, []
+        record.pop("coarse_optima_not_refined", None)
+        summaries, spread = _summaries(job, guesses, coarse_starts, groups, fine_starts)
+        best, unverified = _verify_best_first(job, extra, fine, data, scaling)
+        first_unverified = first_unverified or unverified
+        converged += extra
     record["local_optima_fine"] = len({round(fs.objective, 6) for fs, _ in converged})
 
     # 4: a pump grid fine enough
@@ -769,6 +774,26 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
 
     chosen = best or first_unverified
     return _final(job, result, chosen, summaries, spread, record, diagnosis)
+
+
+def _verify_best_first(job, converged, fine, data, scaling):
+    """Verify the converged fine answers [(start, group)], best first, until none
+    left could beat the verified answer in hand: (best verified answer or None, the
+    first answer that did not verify or None)."""
+    maximize = job.problem.objective.sense == "maximize"
+    ordered = sorted(converged, key=lambda c: -c[0].objective if maximize else c[0].objective)
+    best, first_unverified = None, None
+    for fs, _ in ordered:
+        if best is not None and not job.better(fs.objective, best.start.objective):
+            break  # cannot beat the verified answer in hand
+        ans = _verified(job, _Answer(fs, fine, data, label=fs.label), scaling)
+        if ans.verification.verified and (best is None or job.better(ans.start.objective, best.start.objective)):
+            best = ans
+        elif first_unverified is None:
+            first_unverified = ans
+        if _stop_now(job):
+            break
+    return best, first_unverified
 
 
 def _stop_now(job) -> bool:

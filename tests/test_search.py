@@ -48,6 +48,34 @@ def test_the_next_grid_doubling_is_predicted_from_two_shrinking_changes():
     assert next_change([0.001, 0.002]) is None  # changes that grow: no estimate, solve the next grid
 
 
+def test_optima_left_out_are_refined_when_the_best_does_not_verify(monkeypatch):
+    """A multistart keeps every candidate that verifies (definition of a multistart):
+    when the best fine answer does not verify, the coarse optima that were left out
+    as unable to overtake it are refined and verified after all, and the job still
+    ends with a verified answer (the demo's second optimum). The verification failure
+    is staged: the first answer verified is declared unverified."""
+    import dataclasses
+    import importlib
+
+    opt = importlib.import_module("optfeed.optimize")
+    original, calls = opt._verified, []
+
+    def first_fails(job, ans, scaling):
+        out = original(job, ans, scaling)
+        calls.append(out.start.objective)
+        if len(calls) == 1:
+            out.verification = dataclasses.replace(out.verification, verified=False,
+                                                   message="staged: not verified")
+        return out
+
+    monkeypatch.setattr(opt, "_verified", first_fails)
+    r = optfeed.optimize(DEMO, workers=1)
+    assert r.status == "optimal, verified", r.message
+    assert len(calls) >= 2  # another optimum was verified after the staged failure
+    assert "coarse_optima_not_refined" not in r.record
+    assert not any("coarse grid only" in s.label for s in r.starts)
+
+
 def test_more_starts_never_give_a_worse_answer(optimized):
     four = optimized(DEMO)
     one = optfeed.optimize(DEMO, set={"solver.starts": 1})

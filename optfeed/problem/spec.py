@@ -217,7 +217,8 @@ class Settings:
         between collocation points is backed off and the problem re-solved.)
     refine_grid : bool
         Double the pump grid (warm-started from the coarser answer) until the
-        objective changes by less than ``grid_tolerance``. On by default when the
+        objective changes by less than ``grid_tolerance``, or until two shrinking
+        changes predict that the next doubling would. On by default when the
         file gives neither ``pump_steps`` nor ``pump_interval``: a pump grid the user
         chose is taken as the pump's own.
     grid_tolerance : float
