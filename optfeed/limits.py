@@ -458,7 +458,8 @@ def _between_samples(traj, fs, i, lim, values, window=None):
     inner = (minima > 0) & (minima < len(slack) - 1)
     k_in = minima[inner]
     same = (traj.piece[k_in - 1] == traj.piece[k_in]) & (traj.piece[k_in + 1] == traj.piece[k_in])
-    level = (np.abs(slack[k_in] - slack[k_in - 1]) <= flat) & (np.abs(slack[k_in] - slack[k_in + 1]) <= flat)
+    with np.errstate(invalid="ignore"):  # inf - inf outside a phase's window: not level
+        level = (np.abs(slack[k_in] - slack[k_in - 1]) <= flat) & (np.abs(slack[k_in] - slack[k_in + 1]) <= flat)
     keep = np.ones(len(minima), dtype=bool)
     keep[np.nonzero(inner)[0][same & level]] = False
     minima = minima[keep]
