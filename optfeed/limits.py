@@ -451,9 +451,23 @@ def _between_samples(traj, fs, i, lim, values, window=None):
     minima = _local_minima(slack, traj.piece)
     if len(minima) == 0:
         return np.zeros(0), np.zeros(0)
+    # inside a flat stretch (the slack equal to both neighbours in the same piece,
+    # e.g. a volume that stays put while the pump is off) nothing lies between the
+    # samples to find: only the stretch's ends are refined
+    flat = 1e-12 * lim.scale()
+    inner = (minima > 0) & (minima < len(slack) - 1)
+    k_in = minima[inner]
+    same = (traj.piece[k_in - 1] == traj.piece[k_in]) & (traj.piece[k_in + 1] == traj.piece[k_in])
+    with np.errstate(invalid="ignore"):  # inf - inf outside a phase's window: not level
+        level = (np.abs(slack[k_in] - slack[k_in - 1]) <= flat) & (np.abs(slack[k_in] - slack[k_in + 1]) <= flat)
+    keep = np.ones(len(minima), dtype=bool)
+    keep[np.nonzero(inner)[0][same & level]] = False
+    minima = minima[keep]
+    if len(minima) == 0:
+        return np.zeros(0), np.zeros(0)
     band = REFINE_BAND * lim.scale()
     least = slack[minima].min()
-    closest = minima[slack[minima] <= least + 1e-12 * lim.scale()]  # ties included
+    closest = minima[slack[minima] <= least + flat]  # ties included
     chosen = minima[slack[minima] < band]
     chosen = chosen[np.argsort(slack[chosen])][:MAX_REFINED]
     chosen = np.union1d(chosen, closest)

@@ -367,3 +367,32 @@ def test_a_failing_batch_is_simulated_again_run_by_run(tmp_path):
     np.testing.assert_array_equal(failed, 1.0 / k < 10.0)
     assert [d["status"] for d in batched] == [d["status"] for d in one]
     assert [d["message"] for d in batched] == [d["message"] for d in one]
+
+
+def test_a_flat_limit_is_not_refined_inside_its_flat_stretches(tmp_path, monkeypatch):
+    """With the pump off the volume stays at its initial 1 L (volume balance dV/dt = F,
+    common practice), so the working volume's slack is flat over the whole run: its
+    margin is the closed form 2 L - 1 L, and the judgement re-integrates at most the
+    two ends of each piece, not every sample (it used to refine every tied sample:
+    thousands of re-integrations per run)."""
+    from optfeed.limits import build_limits, judge
+    from optfeed.simulate import Trajectory
+
+    path = tmp_path / "flat.yaml"
+    path.write_text(BLOWUP.split("uncertainty:")[0].replace("k: 0.05", "k: 0.001"))
+    m = build_model(optfeed.load_problem(path))
+    traj = Simulator(m).run(piecewise_constant(["water"], [0], [[0.0]]), 10.0)
+    asked = []
+    original = Trajectory.between_many
+
+    def counting(self, intervals):
+        asked.append(len(intervals))
+        return original(self, intervals)
+
+    monkeypatch.setattr(Trajectory, "between_many", counting)
+    reports, _ = judge(m, build_limits(m), traj)
+    volume = next(r for r in reports if r.name == "working volume")
+    assert volume.min_slack == pytest.approx(1.0, rel=1e-12)
+    assert not volume.violated
+    pieces = len(set(traj.piece.tolist()))
+    assert sum(asked) <= 2 * pieces * 3  # two ends per piece, three rounds at most
