@@ -9,8 +9,8 @@ the answer does not depend on how busy the machine is):
    re-simulated and solved again on the fine grid, starting from that exact
    trajectory; how far that moved its objective is the coarse grid's error. Every
    other distinct coarse optimum within twice that error of the best is refined
-   too (one further below would have to gain more than twice what the best gained
-   to overtake it); those left out are reported as such, unless none of the
+   too (a heuristic: one further below overtakes the best only if its own grid
+   error is several times the best's); those left out are reported as such, unless none of the
    refined answers verifies: then they are refined and verified after all. Every
    answer that verifies is kept.
 3. **Verify.** The best answer's pump schedule is re-simulated with CVODES and
@@ -916,13 +916,17 @@ def _worth_refining(job, groups, coarse_starts, best_fine):
     fine answer of the best: (refined, skipped).
 
     A coarse optimum is refined when its coarse objective is within REFINE_WITHIN
-    times the coarse grid's error of the best one, that error being how far the best
-    moved from the coarse grid to the fine one: any further below, it would have to
-    gain that much more than the best did on refining to overtake it. Measured on the
+    times the coarse grid's error of the best one, that error e being how far the
+    best moved from the coarse grid to the fine one. This is a heuristic, not a
+    bound: it assumes the other optima's grid errors are of the same size as the
+    best's. One left out (behind by b > 2e) overtakes the best only if refining
+    gains it more than b - e where the best gained e (or, if the best lost e, more
+    than b - e > e): a grid error several times the best's. Measured on the
     published problems and the demo: the optima left out were all worse on the fine
     grid, or the same optimum (Park-Ramirez: four coarse optima 1-6 % apart, one on
     the fine grid, 0.9 % from the best coarse one). If the best's fine solve failed,
-    every coarse optimum is refined."""
+    every coarse optimum is refined; if no refined one verifies, the others are
+    refined after all (see _optimize)."""
     first = coarse_starts[groups[0][0]]
     if best_fine.status != "converged" or best_fine.objective is None:
         return groups, []
