@@ -256,13 +256,26 @@ class _LimitValues:
 
     def __call__(self, t, x, u) -> np.ndarray:
         """g at samples (t, x, u): shape (len(t), n_limits), internal units."""
-        t = np.asarray(t, dtype=float)
-        n = len(t)
-        f = self._maps.get(n)
+        values = self._mapped(None, len(t), t, x, u)
+        return values.reshape(self.n_limits, len(t)).T
+
+    def one(self, i: int, t, x, u) -> np.ndarray:
+        """g of limit ``i`` alone at samples (t, x, u): shape (len(t),) (the
+        judgement's re-integrations need one limit at a time; the others cost as
+        much again each)."""
+        return self._mapped(i, len(t), t, x, u).ravel()
+
+    def _mapped(self, i, n, t, x, u) -> np.ndarray:
+        f = self._maps.get((i, n))
         if f is None:
-            f = self._maps[n] = self._fn.map(n)
-        values = f(t[None, :], np.asarray(x, dtype=float).T, np.asarray(u, dtype=float).T, self._p)
-        return np.asarray(values).reshape(self.n_limits, n).T
+            fn = self._fn
+            if i is not None:
+                ins = fn.sx_in()
+                fn = ca.Function(f"g{i}", ins, [fn.call(ins)[0][i]])
+            f = self._maps[(i, n)] = fn.map(n)
+        values = f(np.asarray(t, dtype=float)[None, :], np.asarray(x, dtype=float).T,
+                   np.asarray(u, dtype=float).T, self._p)
+        return np.asarray(values)
 
 
 def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
@@ -493,11 +506,11 @@ def _between_samples(traj, fs, i, lim, values, window=None):
         runs = traj.between_many([(lo, t_lo, x_lo, t_hi) for lo, t_lo, x_lo, t_hi, _ in open_])
         fns = [_fn(fs, traj, item[0]) for item in open_]
         if all(f is fns[0] for f in fns):  # one evaluation of the limits for the whole round
-            g = _apply(fns[0], np.concatenate([r[0] for r in runs]), np.vstack([r[1] for r in runs]),
-                       np.vstack([r[2] for r in runs]))[:, i]
+            g = fns[0].one(i, np.concatenate([r[0] for r in runs]), np.vstack([r[1] for r in runs]),
+                           np.vstack([r[2] for r in runs]))
             values = np.split(g, np.cumsum([len(r[0]) for r in runs])[:-1])
         else:
-            values = [_apply(f, *r)[:, i] for f, r in zip(fns, runs)]
+            values = [f.one(i, *r) for f, r in zip(fns, runs)]
         still = []
         for item, (t, x, u), v in zip(open_, runs, values):
             s, _ = lim.slack(v)
@@ -539,7 +552,7 @@ def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None
     f = _fn(fs, traj, k)
     for _ in range(CROSSING_ROUNDS):
         t, x, u = traj.between(k, t_lo, x_lo, t_hi)
-        s, _ = lim.slack(_apply(f, t, x, u)[:, i])
+        s, _ = lim.slack(f.one(i, t, x, u))
         j = int(np.argmax(s < -tol))
         if not s[j] < -tol or j == 0:
             break
