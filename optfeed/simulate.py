@@ -168,7 +168,7 @@ class Simulator:
         self._integrators = []
         for m in self.models:
             if id(m) not in made:
-                made[id(m)] = _integrator(m, self._grid, rtol, atol)
+                made[id(m)] = _piece_integrator(m, self._grid, rtol, atol)
             self._integrators.append(made[id(m)])
         self._integrator = self._integrators[0]
         self._conditions = [condition_function(m, ph.end) if ph.end.kind == "when" else None
@@ -498,12 +498,12 @@ class Simulator:
         return out
 
     def _batch_integrator(self, phase: int, size: int):
-        """The integrator of :func:`_batch_integrator` for phase ``phase``'s model and
+        """The integrator of :func:`_piece_integrator` for phase ``phase``'s model and
         ``size`` runs (built once)."""
         key = (id(self.models[phase]), size)
         if key not in self._batch_integrators:
             scale = math.sqrt(size)
-            self._batch_integrators[key] = _batch_integrator(self.models[phase], self._grid, self.rtol / scale,
+            self._batch_integrators[key] = _piece_integrator(self.models[phase], self._grid, self.rtol / scale,
                                                              self.atol / scale, size)
         return self._batch_integrators[key]
 
@@ -544,22 +544,6 @@ class Simulator:
         return text
 
 
-def _integrator(model: Model, grid, rtol: float, atol: float):
-    """CVODES over one piece in scaled time tau in [0, 1], output at ``grid``."""
-    nu = model.nu
-    tau = ca.SX.sym("tau")
-    q = ca.SX.sym("q", 2 + 3 * nu)  # t0, h, a, b, k of the pump law
-    t0, h = q[0], q[1]
-    a, b, k = q[2:2 + nu], q[2 + nu:2 + 2 * nu], q[2 + 2 * nu:2 + 3 * nu]
-    u = (a + b * h * tau) * ca.exp(k * h * tau)
-    f = model.function_p("f", [model.rhs])
-    ode = h * f(t0 + h * tau, model.x, u, model.p)
-    opts = {"abstol": atol, "reltol": rtol, "max_num_steps": 200000, "show_eval_warnings": False,
-            "disable_internal_warnings": True}
-    return ca.integrator("piece", "cvodes", {"x": model.x, "p": ca.vertcat(q, model.p), "t": tau, "ode": ode},
-                         0.0, grid, opts)
-
-
 def _law(seg: Segment, t0: float, t1: float, feed_names=()) -> np.ndarray:
     """The pump law of ``seg`` from ``t0`` to ``t1`` (h) as the integrator takes it:
     (t0, h, a, b, k), rates measured from ``t0``."""
@@ -577,10 +561,10 @@ def _law(seg: Segment, t0: float, t1: float, feed_names=()) -> np.ndarray:
     return np.concatenate([[t0, h], a, b, seg.k])
 
 
-def _batch_integrator(model: Model, grid, rtol: float, atol: float, size: int):
-    """CVODES over one piece for ``size`` runs side by side: states (nx, size) and
-    (pump law, constants) (2 + 3 nu + n_constants, size), each stacked column by
-    column; output at ``grid`` in scaled time tau in [0, 1], as :func:`_integrator`."""
+def _piece_integrator(model: Model, grid, rtol: float, atol: float, size: int = 1):
+    """CVODES over one piece in scaled time tau in [0, 1], output at ``grid``, for
+    ``size`` runs side by side: states (nx, size) and (pump law t0, h, a, b, k;
+    constants) (2 + 3 nu + n_constants, size), each stacked column by column."""
     nu, nq = model.nu, 2 + 3 * model.nu
     tau = ca.SX.sym("tau")
     X = ca.SX.sym("x", model.nx, size)
