@@ -304,12 +304,12 @@ def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
 
 def _values(fs, traj, n_limits) -> np.ndarray:
     if len(fs) == 1:
-        return _apply(fs[0], traj.t, traj.x, traj.u, n_limits)
+        return fs[0](traj.t, traj.x, traj.u)
     g = np.empty((len(traj.t), n_limits))
     for k, f in enumerate(fs):
         sel = traj.phase == k
         if sel.any():
-            g[sel] = _apply(f, traj.t[sel], traj.x[sel], traj.u[sel], n_limits)
+            g[sel] = f(traj.t[sel], traj.x[sel], traj.u[sel])
     return g
 
 
@@ -346,11 +346,6 @@ def asked_outside(traj: Trajectory, j: int, lower: float, upper: float, t0: floa
         vols += list(total + cum[1:])
         total += float(cum[-1])
     return total, np.array(times), np.array(vols)
-
-
-def _apply(f, t, x, u, n_limits=None) -> np.ndarray:
-    """g of every limit at samples (t, x, u) with evaluator ``f`` (a :class:`_LimitValues`)."""
-    return f(t, x, u)
 
 
 def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, values=None) -> tuple:

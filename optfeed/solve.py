@@ -248,31 +248,26 @@ def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int, graph: 
     key = (profile, tolerance, max_iter, graph)
     if key in nlp._solvers:
         return nlp._solvers[key]
-    if graph:
-        opts = ipopt_options(tolerance, profile, nlp.copies)
-        opts["ipopt.max_iter"] = int(max_iter)
-        watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
-        opts["iteration_callback"] = watch
-        solver = ca.nlpsol(f"optfeed_{profile}_graph", "ipopt", nlp.nlp, opts)
-        nlp._solvers[key] = (solver, watch)
-        return solver, watch
-    if nlp._derivatives is None:  # expanded once; the first solver makes the derivatives
-        F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
-        x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
-        p = ca.SX.sym("p", nlp.nlp["p"].shape[0])
-        f, g = F(x, p)
-        nlp._sx = {"x": x, "p": p, "f": f, "g": g}
-        nlp._derivatives = {}
     opts = ipopt_options(tolerance, profile, nlp.copies)
     opts["ipopt.max_iter"] = int(max_iter)
-    opts.update(nlp._derivatives)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
     opts["iteration_callback"] = watch
-    solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
-    if not nlp._derivatives:  # the first solver made them; the others reuse them
-        nlp._derivatives = {"grad_f": solver.get_function("nlp_grad_f"),
-                            "jac_g": solver.get_function("nlp_jac_g"),
-                            "hess_lag": solver.get_function("nlp_hess_l")}
+    if graph:
+        solver = ca.nlpsol(f"optfeed_{profile}_graph", "ipopt", nlp.nlp, opts)
+    else:
+        if nlp._derivatives is None:  # expanded once; the first solver makes the derivatives
+            F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
+            x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
+            p = ca.SX.sym("p", nlp.nlp["p"].shape[0])
+            f, g = F(x, p)
+            nlp._sx = {"x": x, "p": p, "f": f, "g": g}
+            nlp._derivatives = {}
+        opts.update(nlp._derivatives)
+        solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
+        if not nlp._derivatives:  # the first solver made them; the others reuse them
+            nlp._derivatives = {"grad_f": solver.get_function("nlp_grad_f"),
+                                "jac_g": solver.get_function("nlp_jac_g"),
+                                "hess_lag": solver.get_function("nlp_hess_l")}
     nlp._solvers[key] = (solver, watch)
     return solver, watch
 
