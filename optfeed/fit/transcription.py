@@ -354,11 +354,16 @@ class FitNLP:
     def theta(self, w, data: FitData) -> np.ndarray:
         return self.W.get(w, "theta").ravel() * data.scale
 
-    def pack(self, data: FitData, runs, theta, trajectories) -> np.ndarray:
-        """NLP vector from parameter values and one simulated trajectory per run (at
-        those values; states of the full model), with every measured species taken
-        from the run's data instead (straight lines between the samples, from the
-        run's initial value, negative readings as zero).
+    def pack(self, data: FitData, runs, theta, trajectories, at_data: bool = False) -> np.ndarray:
+        """NLP vector from parameter values and one trajectory per run (states of the
+        full model), read at the collocation points.
+
+        The trajectories are those of :func:`optfeed.fit.simulate.anchored_run`: the
+        model's course at ``theta`` between samples, pinned to the measured values.
+        With ``at_data`` (trajectories simulated without the data, e.g. at other
+        values where the anchored run cannot be simulated) every measured species is
+        taken from the run's data instead (straight lines between the samples, from
+        the run's initial value, negative readings as zero).
 
         Starting the measured states at the data is what the simultaneous approach
         allows and a simulation cannot: the solver then only has to find parameters
@@ -375,7 +380,7 @@ class FitNLP:
             measured = {}
             for q, y in run.values.items():
                 ok = np.isfinite(y)
-                if q in m.state_names and q != "V" and ok.any():
+                if at_data and q in m.state_names and q != "V" and ok.any():
                     i = m.index(q)
                     measured[i] = (np.concatenate([[0.0], run.times[ok]]),
                                    np.concatenate([[run.x0[self.states[i]]], np.maximum(y[ok], 0.0)]))
