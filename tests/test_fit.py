@@ -167,6 +167,36 @@ def test_residuals_are_the_re_simulation_s_not_the_nlp_s(tmp_path, monkeypatch):
     np.testing.assert_allclose(_values(r), x, rtol=1e-4)
 
 
+def test_polish_step_puts_a_crossing_parameter_on_its_bound_and_moves_the_others(tmp_path):
+    """The polish's Gauss-Newton step (Levenberg-Marquardt with a vanishing damping)
+    where the unbounded step takes K_s below its lower bound: K_s goes onto the bound
+    and mu_max and Y_XS take the best step left with it there. Reference: the same
+    bounded linear least squares solved by scipy.optimize.lsq_linear."""
+    from scipy.optimize import lsq_linear
+
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.problem.dotted import as_problem
+
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=1)
+    problem = as_problem(problem, None)
+    job = _Fitter(problem, load_runs(runs_file, problem, build_model(problem)))
+    rng = np.random.default_rng(3)
+    theta = np.array([0.5, 0.03, 0.5])
+    J = rng.standard_normal((30, 3)) * [2.0, 5.0, 1.0]
+    r = -J @ np.array([0.02, -0.08, 0.01]) + 0.05 * rng.standard_normal(30)
+    free = np.ones(3, bool)
+    unbounded = np.linalg.lstsq(J, -r, rcond=None)[0]
+    assert theta[1] + unbounded[1] < job.lower[1]  # the case the step is for
+    want = lsq_linear(J, -r, bounds=(job.lower - theta, job.upper - theta), tol=1e-14).x
+    got = job._bounded_step(theta, r, J, free, lam=1e-14)
+    assert theta[1] + got[1] == pytest.approx(job.lower[1], abs=1e-15)
+    np.testing.assert_allclose(got, want, rtol=1e-8, atol=1e-12)
+    # a parameter left out stays where it is
+    fixed_out = job._bounded_step(theta, r, J, np.array([True, False, True]), lam=1e-14)
+    assert fixed_out[1] == 0.0
+
+
 def _by_run(residuals):
     out = {}
     for row in residuals:

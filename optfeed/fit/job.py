@@ -246,8 +246,6 @@ class _Fitter:
                 converged = True
                 break
             Jf, gf = J[:, free], g[free]
-            A = Jf.T @ Jf
-            d = np.maximum(np.diag(A), 1e-300)
             try:
                 gn = np.linalg.lstsq(Jf, -r, rcond=None)[0]
             except np.linalg.LinAlgError:
@@ -258,12 +256,10 @@ class _Fitter:
             improved = False
             while lam < 1e12:
                 try:
-                    step = np.linalg.solve(A + lam * np.diag(d), -gf)
+                    trial = np.clip(theta + self._bounded_step(theta, r, J, free, lam), self.lower, self.upper)
                 except np.linalg.LinAlgError:
                     lam *= 10
                     continue
-                trial = theta.copy()
-                trial[free] = np.clip(theta[free] + step, self.lower[free], self.upper[free])
                 try:
                     rt, Jt = self.residuals(trial, jacobian=True)
                 except SimulationError:
@@ -283,6 +279,31 @@ class _Fitter:
                 converged = True
                 break
         return theta, r, J, converged, it
+
+    def _bounded_step(self, theta, r, J, free, lam):
+        """A Levenberg-Marquardt step from ``theta`` for the parameters where ``free``
+        is True, kept within the bounds: a parameter whose step would cross its bound
+        is put on the bound, and the step of the others is computed again with it
+        there (the linearised residuals r + J d), until no step crosses a bound.
+        Clipping the step instead leaves the others where the unbounded step put
+        them (measured on a batch run whose K_s ends at its lower bound: 11
+        simulations with sensitivities where one step would do)."""
+        d = np.zeros(len(theta))
+        free = free.copy()
+        while free.any():
+            Jf = J[:, free]
+            A = Jf.T @ Jf
+            step = np.linalg.solve(A + lam * np.diag(np.maximum(np.diag(A), 1e-300)), -(Jf.T @ (r + J @ d)))
+            trial = theta[free] + step
+            lo, hi = self.lower[free], self.upper[free]
+            out = (trial < lo) | (trial > hi)
+            idx = np.flatnonzero(free)
+            if not out.any():
+                d[idx] = step
+                break
+            d[idx[out]] = np.clip(trial[out], lo[out], hi[out]) - theta[idx[out]]
+            free[idx[out]] = False
+        return d
 
 
 def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None = None) -> FitResult:
