@@ -449,7 +449,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         estimates.append(Estimate(e.name, e.unit, *(float(v * f) for v in (
             theta[i], stats_.se[i], stats_.ci_low[i], stats_.ci_high[i], e.start, e.lower, e.upper)),
             None if pl is None else float(pl * f), None if ph is None else float(ph * f)))
-    residuals = _residual_table(job, theta)
+    residuals = _residual_table(job, r)
     status = FITTED if settled else NOT_CONVERGED
     head = (f"{len(estimates)} parameter(s) from {runs.n_samples} measured values in {len(runs.runs)} run(s)"
             if settled else f"the polish on the re-simulated runs did not settle in {polish_iterations} steps; "
@@ -476,20 +476,30 @@ def display_unit(q, runs, problem) -> str:
     return quantity_unit(q, runs, problem) or next(r.units[q] for r in runs if q in r.units)
 
 
-def _residual_table(job, theta) -> list:
+def _residual_table(job, r) -> list:
+    """Per run and quantity, the weighted residuals ``r`` (those of the polish's last
+    re-simulation, in :meth:`_Fitter.residuals`' order) with the fitted values they
+    come from (measured + sigma * residual): the runs are not simulated again."""
     out = []
     units = {q: display_unit(q, job.runs.runs, job.problem) for q in job.runs.quantities}
-    for run in job.runs.runs:
-        values, _ = job.sampler.values(run, job.constants(run, theta))
+    place, at = {}, 0  # (run, quantity) -> positions of its residuals in r
+    for i, run in enumerate(job.runs.runs):
+        for k in range(len(run.times)):
+            for q, y in run.values.items():
+                if np.isfinite(y[k]):
+                    place.setdefault((i, q), []).append(at)
+                    at += 1
+    assert at == len(r)
+    for i, run in enumerate(job.runs.runs):
         for q, y in run.values.items():
             ok = np.isfinite(y)
             sig = job.sigma(q, y[ok])
-            w = (values[q][ok] - y[ok]) / sig
+            w = np.asarray(r)[place.get((i, q), [])]
             out.append({"run": run.name, "quantity": q, "unit": units[q], "count": int(ok.sum()),
                         "mean": float(w.mean()) if ok.any() else None,
                         "rms": float(np.sqrt((w ** 2).mean())) if ok.any() else None,
                         "times": _floats(run.times[ok]), "measured": _floats(y[ok]),
-                        "fitted": _floats(values[q][ok]), "sigma": _floats(sig)})
+                        "fitted": _floats(y[ok] + sig * w), "sigma": _floats(sig)})
     return out
 
 
