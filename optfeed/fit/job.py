@@ -46,6 +46,7 @@ FITTED, NOT_CONVERGED, FAILED = st.FITTED, st.NOT_CONVERGED, st.FAILED
 ELEMENTS_PER_RUN = 100    # collocation elements across a run (at least one per stretch)
 NLP_TOLERANCE = 1e-8
 POLISH_ITERATIONS = 60
+ROUGH_TOLERANCE = 1e-6   # relative tolerance of the integrator that makes the NLP's initial courses
 STATIONARY = 1e-9         # the polish ends when a Gauss-Newton step would gain less than this (relative chi-square)
 
 
@@ -147,6 +148,10 @@ class _Fitter:
         self.problem, self.runs = problem, runs
         self.model = build_model(problem)
         self.sim = Simulator(self.model)
+        # the NLP's initial courses and scale only: a looser integrator (8 runs: 0.13
+        # -> 0.075 s for both); every re-simulation that is reported or judged uses
+        # self.sim and the Sampler, at the project's tolerances
+        self.rough = Simulator(self.model, rtol=ROUGH_TOLERANCE, atol=ROUGH_TOLERANCE * 1e-2)
         self.names = [e.name for e in runs.estimates]
         self.sampler = Sampler(self.model, self.names)
         self.index = [self.model.constant_index(n) for n in self.names]
@@ -165,14 +170,16 @@ class _Fitter:
         c[self.index] = theta
         return c
 
-    def simulate(self, theta):
-        """Every run densely re-simulated at ``theta`` (for figures and reports)."""
-        return [simulate_run(self.sim, run, self.constants(run, theta)) for run in self.runs.runs]
+    def simulate(self, theta, rough: bool = False):
+        """Every run densely re-simulated at ``theta`` (for figures and reports; with
+        ``rough``, by the looser integrator, for the NLP's scale)."""
+        sim = self.rough if rough else self.sim
+        return [simulate_run(sim, run, self.constants(run, theta)) for run in self.runs.runs]
 
     def anchored(self, theta):
         """Every run's initial course for the NLP at ``theta`` (see
-        :func:`.simulate.anchored_run`)."""
-        return [anchored_run(self.sim, run, self.constants(run, theta)) for run in self.runs.runs]
+        :func:`.simulate.anchored_run`), by the looser integrator."""
+        return [anchored_run(self.rough, run, self.constants(run, theta)) for run in self.runs.runs]
 
     def residuals(self, theta, jacobian: bool = False):
         """Weighted residuals (model - measured) / sigma of the exact re-simulation at
@@ -372,7 +379,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
     # the states' scale from the first such guess simulated without the data (as
     # before the anchored courses: on 7 seeds of 1, 2 and 8 runs the anchored
     # course's maxima gave as many IPOPT iterations or a few more)
-    xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in job.simulate(guesses[min(courses)][1])], axis=0)
+    xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in job.simulate(guesses[min(courses)][1], rough=True)], axis=0)
     total = len(guesses) + 1 + (len(job.names) if profile else 0)
     progress("building the calibration NLP", 0, total)
     nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)
