@@ -1061,7 +1061,7 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
         data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
-                    deadline=job.deadline, report=job.report, expected_iterations=ans.start.iterations)
+                    deadline=job.deadline, report=job.report, expected_iterations=ans.last_iterations)
         if st_.status != "converged" or st_.objective is None:
             break
         own = st_.iterations

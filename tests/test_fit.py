@@ -171,7 +171,9 @@ def test_polish_step_puts_a_crossing_parameter_on_its_bound_and_moves_the_others
     """The polish's Gauss-Newton step (Levenberg-Marquardt with a vanishing damping)
     where the unbounded step takes K_s below its lower bound: K_s goes onto the bound
     and mu_max and Y_XS take the best step left with it there. Reference: the same
-    bounded linear least squares solved by scipy.optimize.lsq_linear."""
+    bounded linear least squares solved by scipy.optimize.lsq_linear (in this case,
+    where one crossing is the whole active set, the step is that optimum; the step
+    is a heuristic in general, see _Fitter._bounded_step)."""
     from scipy.optimize import lsq_linear
 
     from optfeed.fit.job import _Fitter
@@ -195,6 +197,21 @@ def test_polish_step_puts_a_crossing_parameter_on_its_bound_and_moves_the_others
     # a parameter left out stays where it is
     fixed_out = job._bounded_step(theta, r, J, np.array([True, False, True]), lam=1e-14)
     assert fixed_out[1] == 0.0
+
+
+def test_a_guess_whose_free_run_blows_up_still_gets_an_answer_in_words(tmp_path):
+    """A start (mu_max 60 1/h, bounds 30-80 1/h, growth mu_max * X) whose run without
+    the data overflows (X about 1e51 g/L at 2 h) while its course pinned to the data
+    stays finite: the fit scales the NLP by the pinned course and ends with a status
+    and a message, never an internal error (a growth that fast cannot be followed by
+    any integrator; common practice)."""
+    prob = fitcase.PROBLEM.replace("  X: mu * X\n", "  X: mu_max * X\n")
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=1, problem=prob, estimate=("mu_max",), starts=1,
+                                               bounds=dict(fitcase.BOUNDS, mu_max=("30 1/h", "80 1/h")))
+    problem.write_text(problem.read_text().replace("mu_max: 0.4 1/h", "mu_max: 60 1/h"))
+    r = optfeed.fit(str(problem), str(runs_file))
+    assert r.status in ("not converged", "failed") and r.exit_code != 0
+    assert "integrator" in r.message or "simulated" in r.message
 
 
 def _by_run(residuals):

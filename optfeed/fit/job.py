@@ -178,8 +178,27 @@ class _Fitter:
 
     def anchored(self, theta):
         """Every run's initial course for the NLP at ``theta`` (see
-        :func:`.simulate.anchored_run`), by the looser integrator."""
-        return [anchored_run(self.rough, run, self.constants(run, theta)) for run in self.runs.runs]
+        :func:`.simulate.anchored_run`), by the looser integrator, or by the
+        project's where the looser one fails (a guess is not given up on because
+        of a starting point's tolerance)."""
+        try:
+            return [anchored_run(self.rough, run, self.constants(run, theta)) for run in self.runs.runs]
+        except SimulationError:
+            return [anchored_run(self.sim, run, self.constants(run, theta)) for run in self.runs.runs]
+
+    def state_scale(self, thetas, courses) -> np.ndarray:
+        """Each state's largest magnitude over the runs, the NLP's scale for it: from
+        the first of ``thetas`` whose runs simulate without the data (looser
+        integrator, then the project's), else from ``courses`` (anchored courses,
+        which stay finite where a free run from a poor guess does not)."""
+        for theta in thetas:
+            for rough in (True, False):
+                try:
+                    trajs = self.simulate(theta, rough=rough)
+                except SimulationError:
+                    continue
+                return np.max([np.max(np.abs(tr.x), axis=0) for tr in trajs], axis=0)
+        return np.max([np.max(np.abs(tr.x), axis=0) for tr in courses], axis=0)
 
     def residuals(self, theta, jacobian: bool = False):
         """Weighted residuals (model - measured) / sigma of the exact re-simulation at
@@ -294,7 +313,15 @@ class _Fitter:
         there (the linearised residuals r + J d), until no step crosses a bound.
         Clipping the step instead leaves the others where the unbounded step put
         them (measured on a batch run whose K_s ends at its lower bound: 11
-        simulations with sensitivities where one step would do)."""
+        simulations with sensitivities where one step would do).
+
+        A heuristic, not the bounded least-squares step: a parameter put on its
+        bound stays there for this step even where the others' new step would
+        pull it back inside, so the step can differ from the bounded optimum
+        (scipy's lsq_linear: in about a quarter of random cases, and in a few it
+        lowers the linearised cost less than no step). The polish rejects a step
+        that does not lower chi-square and raises the damping, so this costs
+        simulations, never the estimates' correctness."""
         d = np.zeros(len(theta))
         free = free.copy()
         while free.any():
@@ -379,7 +406,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
     # the states' scale from the first such guess simulated without the data (as
     # before the anchored courses: on 7 seeds of 1, 2 and 8 runs the anchored
     # course's maxima gave as many IPOPT iterations or a few more)
-    xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in job.simulate(guesses[min(courses)][1], rough=True)], axis=0)
+    xs = job.state_scale([guesses[k][1] for k in sorted(courses)], first)
     total = len(guesses) + 1 + (len(job.names) if profile else 0)
     progress("building the calibration NLP", 0, total)
     nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)

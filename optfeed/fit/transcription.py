@@ -366,8 +366,8 @@ class FitNLP:
 
         The trajectories are those of :func:`optfeed.fit.simulate.anchored_run`: the
         model's course at ``theta`` between samples, pinned to the measured values.
-        With ``at_data`` (trajectories simulated without the data, e.g. at other
-        values where the anchored run cannot be simulated) every measured species is
+        With ``at_data`` (trajectories made at other values, e.g. another guess's
+        anchored courses where this guess's cannot be simulated) every measured species is
         taken from the run's data instead (straight lines between the samples, from
         the run's initial value, negative readings as zero).
 
