@@ -9,11 +9,18 @@ S = 1 (linear growth is a ratio of S). ``--automatic-scaling`` adds, for compari
 the CPU per iteration over the first iterations with MUMPS' automatic scaling choice
 (what optfeed used before it named the scaling for several blocks).
 
+Part 1b (``--stage``), the scenario stage as optimize runs it: the nominal problem is
+solved once, then for each S the scenario solve is run from the nominal optimum as
+``optimize`` does (coarse grid, fine grid, verification with back-off, pump-grid
+refinement) in one process, one worker, its solvers built afresh: CPU of the stage and its ratio to S = 2 (at
+S = 1 the seed is already the optimum, so S = 2 is the base), the CPU spent building
+solvers, and the IPOPT iterations of all its solves.
+
 Part 2, the whole job: ``optimize`` with S = 1 (the nominal problem), 4 and 8
 scenarios, wall time and the Monte Carlo figures of the answer beside the nominal
 optimum's (probability of breaking any limit, mean objective).
 
-Run:  python benchmarks/scenario_benchmark.py [--sizes 1,2,4,8,16] [--automatic-scaling] [--whole]
+Run:  python benchmarks/scenario_benchmark.py [--sizes 1,2,4,8,16] [--automatic-scaling] [--stage] [--whole]
 """
 
 from __future__ import annotations
@@ -88,6 +95,49 @@ def part_nlp(sizes, automatic: bool, iterations: int) -> None:
     print("   ratio = against S = 1; linear growth would be a ratio of S")
 
 
+def part_stage(sizes) -> None:
+    import casadi as ca
+
+    print("\n1b. The scenario stage of optimize, from the nominal optimum (CPU, one process, one worker)")
+    p = optfeed.load_problem(PROBLEM)
+    nominal = O._optimize(p, 1, None, None, time.perf_counter())
+    seeds = [("the nominal optimum", nominal.schedule, nominal.end_time)]
+    built, iterations = [0.0], [0]
+    nlpsol, solve = ca.nlpsol, O.solve
+
+    def timed_nlpsol(*args, **kw):
+        t = time.process_time()
+        out = nlpsol(*args, **kw)
+        built[0] += time.process_time() - t
+        return out
+
+    def counted_solve(*args, **kw):
+        st = solve(*args, **kw)
+        iterations[0] += st.iterations
+        return st
+
+    print(f"   {'S':>3} | {'CPU s':>7} {'ratio':>6} | {'building s':>10} | {'it':>4} | status, objective over scenarios")
+    base = None
+    ca.nlpsol, O.solve = timed_nlpsol, counted_solve
+    try:
+        for n in sizes:
+            built[0], iterations[0] = 0.0, 0
+            sc = O.merge_identical(scenario_set(p, build_model(p), count=n))
+            S_.clear_cache()  # every stage builds its own solvers, as in a fresh process
+            t = time.process_time()
+            r = O._optimize(p, 1, None, None, time.perf_counter(), sc, seeds)
+            cpu = time.process_time() - t
+            if n >= 2 and base is None:
+                base = (n, cpu)
+            ratio = f"{cpu / base[1]:>6.1f}" if base else f"{'':>6}"
+            print(f"   {n:>3} | {cpu:>7.2f} {ratio} | {built[0]:>10.2f} | {iterations[0]:>4} | {r.status}, "
+                  f"{r.objective_nlp:.4f} {r.objective_unit}", flush=True)
+    finally:
+        ca.nlpsol, O.solve = nlpsol, solve
+    if base:
+        print(f"   ratio = against S = {base[0]}; linear growth would be a ratio of S / {base[0]}")
+
+
 def part_whole(sizes) -> None:
     print("\n2. The whole optimize (wall time, this machine's cores), Monte Carlo of 200 samples each")
     print(f"   {'S':>3} {'seconds':>8} {'status':<20} {'mean obj':>9} {'P(any broken)':>14} | nominal optimum: "
@@ -108,9 +158,12 @@ def main() -> None:
     ap.add_argument("--automatic-scaling", action="store_true",
                     help="also time the first iterations with MUMPS' automatic scaling (up to 8 scenarios)")
     ap.add_argument("--iterations", type=int, default=30, help="iterations timed with the automatic scaling")
+    ap.add_argument("--stage", action="store_true", help="also time the scenario stage of optimize (part 1b)")
     ap.add_argument("--whole", action="store_true", help="also time the whole optimize at S = 1, 4, 8")
     args = ap.parse_args()
     part_nlp([int(x) for x in args.sizes.split(",")], args.automatic_scaling, args.iterations)
+    if args.stage:
+        part_stage([int(x) for x in args.sizes.split(",")])
     if args.whole:
         part_whole([1, 4, 8])
 

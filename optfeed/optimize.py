@@ -249,6 +249,15 @@ class _Answer:
     backoff: dict = field(default_factory=dict)
     label: str = ""
     pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
+    # iterations of the solve that found start.w (start.iterations adds those of the
+    # solves before it, e.g. the answer before a back-off round); None: the same
+    own_iterations: int | None = None
+
+    @property
+    def last_iterations(self) -> int:
+        """IPOPT iterations of the last solve alone (what a warm start from this
+        answer is expected to need, at most)."""
+        return self.start.iterations if self.own_iterations is None else self.own_iterations
 
 
 class _Job:
@@ -1052,8 +1061,9 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
                     deadline=job.deadline, report=job.report, expected_iterations=ans.start.iterations)
         if st_.status != "converged" or st_.objective is None:
             break
+        own = st_.iterations
         st_.iterations += ans.start.iterations
-        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump)
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump, own)
     return ans
 
 
@@ -1101,7 +1111,7 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
             w0, lam_g, lam_x = moved
             st_ = solve(nlp, best.data, w0, label, profile="warm", tolerance=s.tolerance,
                         max_iter=min(s.max_iter, REFINE_ITER), warm=(lam_g, lam_x), deadline=job.deadline,
-                        report=job.report, expected_iterations=best.start.iterations)
+                        report=job.report, expected_iterations=best.last_iterations)
         else:  # finer elements too: start from the simulated schedule, with a capped budget
             un = best.nlp.unpack(best.start.w, best.data)
             if nlp.phased:

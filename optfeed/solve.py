@@ -102,6 +102,13 @@ def ipopt_options(tolerance: float, profile: str, copies: int = 1) -> dict:
         # scenarios: 5.3 s of system time per solve, 0.03 s with 100 %; one block:
         # the same iterations and CPU). IPOPT raises it by itself where it is too small
         "ipopt.mumps_mem_percent": 100,
+        # the multipliers of the NLP's parameters are never read; computing them needs
+        # a gradient of the Lagrangian that CasADi differentiates anew for every solver
+        # built, even when the other derivatives are handed over (4 scenarios: a
+        # second solver of one NLP built in 0.05 s instead of 1.1-1.5 s; the first,
+        # which makes the derivatives, in 2.2 instead of 3.5-4.2 s)
+        "calc_lam_p": False,
+        "no_nlp_grad": True,
         **PROFILES[profile],
     }
 
