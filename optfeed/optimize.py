@@ -863,10 +863,12 @@ def _near_solve(job, nlp, data, w0, label, max_iter, **kw) -> Start:
     """A solve from a point near its optimum without multipliers (a coarse optimum
     re-simulated on the fine grid, a refined pump grid): profile 'near'.
 
-    From such a point the solve needs few iterations (14-44 on the published
+    From such a point the solve needs few iterations (13-42 on the published
     problems), and for those the NLP's graph is the cheaper solver: built in a
-    sixth of the time of the expanded NLP, at two to four times the CPU per
-    iteration. A heuristic, with a fallback: on the graph (when the NLP is not
+    fifth of the time of the expanded NLP (160 elements: 0.08-0.13 against
+    0.36-0.63 s), at two to four times the CPU per iteration; it pays most on a
+    new, larger grid (Park-Ramirez's 320 elements: 0.21 against 1.06 s to build,
+    31 iterations). A heuristic, with a fallback: on the graph (when the NLP is not
     expanded yet) the solve is capped at SHORT_SOLVE iterations, and one not
     converged by then carries on from where it stopped on the expanded NLP. A
     process that keeps its solvers for case after case (a sweep's,
