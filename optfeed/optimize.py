@@ -36,7 +36,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from . import status as st
-from .errors import InputError, Issue
+from .errors import InputError, Issue, SimulationError
 from .limits import REL_TOL, LimitReport, build_limits, judge, limit_function
 from .marginals import is_active
 from .outcome import Outcome, objective_label, outcome_of
@@ -436,8 +436,10 @@ class _Job:
         J_nlp = nlp.scenario_objectives(start.w, data)
         full, limits, sim = self.decided(un.amounts)[1:] if self.choosing else \
             (self.full, self.full_limits, self.simulator)
+        inputs = self.scenario_inputs()
+        runs = _scenario_runs(sim, schedule, un.T, inputs)
         checks = [verify(full, limits, schedule, un.T, float(J_nlp[s]), tol, sim,
-                         x0=x0, p=p, ignore=ignore) for s, (x0, p) in enumerate(self.scenario_inputs())]
+                         x0=x0, p=p, ignore=ignore, trajectory=runs[s]) for s, (x0, p) in enumerate(inputs)]
         self.scenario_checks = checks
         bad = [self.scenarios.labels[s] for s, c in enumerate(checks) if not c.verified]
         nominal = checks[0]
@@ -528,6 +530,35 @@ def _choose_order(job, data, guesses, record) -> None:
         words.append(f"{where}: " + ("no converged solve" if J is None else f"{J * job.f_obj:.6g} {job.unit}".rstrip()))
     record["phase_order"] = ("a phase end or the end of the run that optimize times can fall on either side of "
                              "an addition; coarse solves per order: " + "; ".join(words) + ". Kept the best.")
+
+
+SCENARIO_BATCH = 16  # scenarios re-simulated together as one system in a verification
+
+
+def _scenario_runs(sim, schedule, T, inputs) -> list:
+    """The runs of ``schedule`` in every scenario but the nominal (the first), made
+    SCENARIO_BATCH at a time as one CVODES system (:meth:`Simulator.run_batch`, with
+    tolerances at least as strict per run as one run's): a Trajectory per scenario,
+    None for the nominal, which is simulated on its own exactly as ``optfeed check``
+    simulates it, and for every scenario of a batch that failed (each is then
+    simulated on its own, so that a failure names its scenario). All None for a
+    problem with phases or additions, or fewer than three scenarios."""
+    runs = [None] * len(inputs)
+    if sim.phased or len(inputs) < 3:
+        return runs
+    for a in range(1, len(inputs), SCENARIO_BATCH):
+        cols = range(a, min(a + SCENARIO_BATCH, len(inputs)))
+        if len(cols) < 2:
+            continue
+        x0 = np.column_stack([inputs[s][0] for s in cols])
+        p = np.column_stack([inputs[s][1] for s in cols])
+        try:
+            batch = sim.run_batch(schedule, T, x0, p)
+        except SimulationError:
+            continue
+        for s, traj in zip(cols, batch):
+            runs[s] = traj
+    return runs
 
 
 def _seed_guesses(job, seeds) -> list:

@@ -78,7 +78,8 @@ PROFILES = {
 
 def ipopt_options(tolerance: float, profile: str, copies: int = 1) -> dict:
     """IPOPT's options for a profile; ``copies``: copies of the model in the NLP that share
-    decisions (scenarios sharing a pump profile, runs sharing parameters)."""
+    decision columns (scenarios sharing a pump profile; a calibration NLP's runs, whose
+    own copies of the parameters are tied by rows, count as one)."""
     return {
         "print_time": False,
         "ipopt.print_level": 0,

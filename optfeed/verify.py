@@ -65,15 +65,18 @@ def pump_schedule(feed_names, t_steps, u_steps, source: str = "") -> Schedule:
 
 
 def verify(model, limits, schedule: Schedule, end_time: float, objective_nlp, tolerance: float,
-           simulator: Simulator | None = None, x0=None, p=None, ignore: tuple = ()) -> Verification:
+           simulator: Simulator | None = None, x0=None, p=None, ignore: tuple = (),
+           trajectory: Trajectory | None = None) -> Verification:
     """Re-simulate ``schedule`` over [0, end_time] h with CVODES and judge it exactly
     as ``optfeed check`` does. ``model`` is the full model (every state); ``x0`` and
     ``p`` another scenario's initial state and constants (default: the problem's).
     Limits of the kinds in ``ignore`` are judged and reported but do not decide
-    (a relaxed answer whose pump settings are fixed afterwards)."""
+    (a relaxed answer whose pump settings are fixed afterwards). ``trajectory``:
+    the run of ``schedule`` from ``x0`` with ``p``, simulated already (e.g. in a
+    batch of scenarios, :meth:`Simulator.run_batch`); it is judged as it is."""
     sim = simulator or Simulator(model)
     try:
-        traj = sim.run(schedule, end_time, x0=x0, p=p)
+        traj = trajectory if trajectory is not None else sim.run(schedule, end_time, x0=x0, p=p)
     except SimulationError as exc:
         return Verification(False, f"re-simulation failed: {exc}", objective_nlp, None, np.inf, np.inf, "",
                             (), {}, None, schedule, tolerance)

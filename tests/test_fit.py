@@ -167,6 +167,36 @@ def test_residuals_are_the_re_simulation_s_not_the_nlp_s(tmp_path, monkeypatch):
     np.testing.assert_allclose(_values(r), x, rtol=1e-4)
 
 
+def test_polish_step_puts_a_crossing_parameter_on_its_bound_and_moves_the_others(tmp_path):
+    """The polish's Gauss-Newton step (Levenberg-Marquardt with a vanishing damping)
+    where the unbounded step takes K_s below its lower bound: K_s goes onto the bound
+    and mu_max and Y_XS take the best step left with it there. Reference: the same
+    bounded linear least squares solved by scipy.optimize.lsq_linear."""
+    from scipy.optimize import lsq_linear
+
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.problem.dotted import as_problem
+
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=1)
+    problem = as_problem(problem, None)
+    job = _Fitter(problem, load_runs(runs_file, problem, build_model(problem)))
+    rng = np.random.default_rng(3)
+    theta = np.array([0.5, 0.03, 0.5])
+    J = rng.standard_normal((30, 3)) * [2.0, 5.0, 1.0]
+    r = -J @ np.array([0.02, -0.08, 0.01]) + 0.05 * rng.standard_normal(30)
+    free = np.ones(3, bool)
+    unbounded = np.linalg.lstsq(J, -r, rcond=None)[0]
+    assert theta[1] + unbounded[1] < job.lower[1]  # the case the step is for
+    want = lsq_linear(J, -r, bounds=(job.lower - theta, job.upper - theta), tol=1e-14).x
+    got = job._bounded_step(theta, r, J, free, lam=1e-14)
+    assert theta[1] + got[1] == pytest.approx(job.lower[1], abs=1e-15)
+    np.testing.assert_allclose(got, want, rtol=1e-8, atol=1e-12)
+    # a parameter left out stays where it is
+    fixed_out = job._bounded_step(theta, r, J, np.array([True, False, True]), lam=1e-14)
+    assert fixed_out[1] == 0.0
+
+
 def _by_run(residuals):
     out = {}
     for row in residuals:
@@ -263,6 +293,60 @@ def test_shipped_example_fit_optimize_check(tmp_path):
     assert done.returncode == 0, done.stdout + done.stderr
 
 
+# ---------------------------------------------------------------- the NLP's initial course
+
+
+def test_anchored_course_is_the_model_between_samples_pinned_to_the_data(tmp_path):
+    """The course the calibration NLP starts from: at each sampling time it equals
+    the measured value (a negative reading as zero); between two samples it is the
+    model integrated from the earlier sample's data, plus the later sample's miss
+    spread linearly over the interval. Reference: fitcase.simulate's right-hand side
+    integrated by scipy's solve_ivp (LSODA, rtol 1e-10), on the batch run and on the
+    fed-batch run after its pump starts (sample volumes taken out)."""
+    from scipy.integrate import solve_ivp
+
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.fit.simulate import anchored_run
+    from optfeed.problem.dotted import as_problem
+
+    problem, runs_file, measured = fitcase.write_case(tmp_path, seed=4)
+    problem = as_problem(problem, None)
+    runs = load_runs(runs_file, problem, build_model(problem))
+    job = _Fitter(problem, runs)
+    theta = job.start
+    p = dict(fitcase.TRUE, mu_max=theta[0], K_s=theta[1], Y_XS=theta[2])  # m_S, alpha: the problem file's
+    # the fit makes its courses with a looser integrator (job.rough); here the
+    # course itself is checked, with the project's tolerances
+    courses = [anchored_run(job.sim, run, job.constants(run, theta)) for run in runs.runs]
+    names = list(job.model.state_names)
+    cols = [names.index(q) for q in "XSP"] + [names.index("V")]
+    checked = 0
+    for run, values, course in zip(fitcase.DESIGN, measured, courses):
+        t, x = course.t, course.x[:, cols]
+        data = np.column_stack([np.maximum(values[q], 0.0) for q in "XSP"])
+        for k, b in enumerate(run.times):
+            end = np.flatnonzero(t == b)[0]  # before the sample is taken
+            np.testing.assert_allclose(x[end, :3], data[k], rtol=1e-9, atol=1e-12)  # the CSV holds 10 digits
+            if k == 0 or (run.feed and run.times[k - 1] < run.feed_from):
+                continue
+            a = run.times[k - 1]
+            start = np.flatnonzero(t == a)[-1]  # after it
+            inside = slice(start, end + 1)
+            np.testing.assert_allclose(x[start, :3], data[k - 1], rtol=1e-9, atol=1e-12)
+            F = run.feed if run.feed else 0.0
+            y0 = np.concatenate([data[k - 1], [x[start, 3]]])
+            sol = solve_ivp(fitcase.rhs, (a, b), y0, args=(p, F), method="LSODA", rtol=1e-10, atol=1e-12,
+                            dense_output=True)
+            model = sol.sol(t[inside]).T
+            ramp = ((t[inside] - a) / (b - a))[:, None]
+            want = np.maximum(model[:, :3] + ramp * (data[k] - model[-1, :3]), 0.0)
+            np.testing.assert_allclose(x[inside, :3], want, rtol=1e-5, atol=1e-6)
+            np.testing.assert_allclose(x[inside, 3], model[:, 3], rtol=1e-9)
+            checked += 1
+    assert checked >= 20
+
+
 # ---------------------------------------------------------------- the NLP's derivatives
 
 
@@ -297,7 +381,7 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
                     job.lower, job.upper, job.scale,
                     np.max([np.abs(t.x).max(axis=0) for t in first], axis=0) + 1.0)
     rng = np.random.default_rng(0)
-    w = nlp.pack(data, runs.runs, theta, first) * (1 + 0.1 * rng.standard_normal(nlp.n_w))
+    w = nlp.pack(data, runs.runs, theta, first, at_data=True) * (1 + 0.1 * rng.standard_normal(nlp.n_w))
     p = nlp.parameters(data)
     lam = rng.standard_normal(nlp.n_g)
     x, pp, f, g = nlp.nlp["x"], nlp.nlp["p"], nlp.nlp["f"], nlp.nlp["g"]

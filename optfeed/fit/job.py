@@ -1,9 +1,11 @@
 """The fit job: calibrate a problem's parameters against past runs.
 
 1. Guesses: the given start, then ``starts - 1`` Latin-hypercube points within the
-   bounds (log-spaced where a bound spans a decade or more). Each NLP starts with
-   its measured states at the data and the others from one simulation (see
-   :meth:`.transcription.FitNLP.pack`).
+   bounds (log-spaced where a bound spans a decade or more). Each NLP starts from
+   the guess's course pinned to the data at every sample
+   (:func:`.simulate.anchored_run`); a guess that cannot be simulated starts with
+   its measured states at the data and the others from the first guess's course
+   (see :meth:`.transcription.FitNLP.pack`).
 2. Every run is transcribed by the collocation blocks of :mod:`.transcription`, all in
    one NLP sharing the estimated parameters (the simultaneous approach), and solved
    with IPOPT from each start. A solve that stops with a finite answer short of
@@ -36,7 +38,7 @@ from ..simulate import Simulator
 from ..solve import interrupt_guard, interrupted, solve
 from ..units import factor_to
 from .runs import Runs, load_runs
-from .simulate import Sampler, simulate_run
+from .simulate import Sampler, anchored_run, simulate_run
 from .statistics import Statistics, identifiability_words, uncertainty, verdict
 from .transcription import get_fit_nlp
 
@@ -44,6 +46,7 @@ FITTED, NOT_CONVERGED, FAILED = st.FITTED, st.NOT_CONVERGED, st.FAILED
 ELEMENTS_PER_RUN = 100    # collocation elements across a run (at least one per stretch)
 NLP_TOLERANCE = 1e-8
 POLISH_ITERATIONS = 60
+ROUGH_TOLERANCE = 1e-6   # relative tolerance of the integrator that makes the NLP's initial courses
 STATIONARY = 1e-9         # the polish ends when a Gauss-Newton step would gain less than this (relative chi-square)
 
 
@@ -145,6 +148,10 @@ class _Fitter:
         self.problem, self.runs = problem, runs
         self.model = build_model(problem)
         self.sim = Simulator(self.model)
+        # the NLP's initial courses and scale only: a looser integrator (8 runs: 0.13
+        # -> 0.075 s for both); every re-simulation that is reported or judged uses
+        # self.sim and the Sampler, at the project's tolerances
+        self.rough = Simulator(self.model, rtol=ROUGH_TOLERANCE, atol=ROUGH_TOLERANCE * 1e-2)
         self.names = [e.name for e in runs.estimates]
         self.sampler = Sampler(self.model, self.names)
         self.index = [self.model.constant_index(n) for n in self.names]
@@ -163,9 +170,16 @@ class _Fitter:
         c[self.index] = theta
         return c
 
-    def simulate(self, theta):
-        """Every run densely re-simulated at ``theta`` (for figures and NLP guesses)."""
-        return [simulate_run(self.sim, run, self.constants(run, theta)) for run in self.runs.runs]
+    def simulate(self, theta, rough: bool = False):
+        """Every run densely re-simulated at ``theta`` (for figures and reports; with
+        ``rough``, by the looser integrator, for the NLP's scale)."""
+        sim = self.rough if rough else self.sim
+        return [simulate_run(sim, run, self.constants(run, theta)) for run in self.runs.runs]
+
+    def anchored(self, theta):
+        """Every run's initial course for the NLP at ``theta`` (see
+        :func:`.simulate.anchored_run`), by the looser integrator."""
+        return [anchored_run(self.rough, run, self.constants(run, theta)) for run in self.runs.runs]
 
     def residuals(self, theta, jacobian: bool = False):
         """Weighted residuals (model - measured) / sigma of the exact re-simulation at
@@ -239,8 +253,6 @@ class _Fitter:
                 converged = True
                 break
             Jf, gf = J[:, free], g[free]
-            A = Jf.T @ Jf
-            d = np.maximum(np.diag(A), 1e-300)
             try:
                 gn = np.linalg.lstsq(Jf, -r, rcond=None)[0]
             except np.linalg.LinAlgError:
@@ -251,12 +263,10 @@ class _Fitter:
             improved = False
             while lam < 1e12:
                 try:
-                    step = np.linalg.solve(A + lam * np.diag(d), -gf)
+                    trial = np.clip(theta + self._bounded_step(theta, r, J, free, lam), self.lower, self.upper)
                 except np.linalg.LinAlgError:
                     lam *= 10
                     continue
-                trial = theta.copy()
-                trial[free] = np.clip(theta[free] + step, self.lower[free], self.upper[free])
                 try:
                     rt, Jt = self.residuals(trial, jacobian=True)
                 except SimulationError:
@@ -276,6 +286,31 @@ class _Fitter:
                 converged = True
                 break
         return theta, r, J, converged, it
+
+    def _bounded_step(self, theta, r, J, free, lam):
+        """A Levenberg-Marquardt step from ``theta`` for the parameters where ``free``
+        is True, kept within the bounds: a parameter whose step would cross its bound
+        is put on the bound, and the step of the others is computed again with it
+        there (the linearised residuals r + J d), until no step crosses a bound.
+        Clipping the step instead leaves the others where the unbounded step put
+        them (measured on a batch run whose K_s ends at its lower bound: 11
+        simulations with sensitivities where one step would do)."""
+        d = np.zeros(len(theta))
+        free = free.copy()
+        while free.any():
+            Jf = J[:, free]
+            A = Jf.T @ Jf
+            step = np.linalg.solve(A + lam * np.diag(np.maximum(np.diag(A), 1e-300)), -(Jf.T @ (r + J @ d)))
+            trial = theta[free] + step
+            lo, hi = self.lower[free], self.upper[free]
+            out = (trial < lo) | (trial > hi)
+            idx = np.flatnonzero(free)
+            if not out.any():
+                d[idx] = step
+                break
+            d[idx[out]] = np.clip(trial[out], lo[out], hi[out]) - theta[idx[out]]
+            free[idx[out]] = False
+        return d
 
 
 def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None = None) -> FitResult:
@@ -329,19 +364,22 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         return FitResult(**base)
 
     guesses = job.guesses()
-    first = None
-    for _, theta in guesses:  # the unmeasured states of every guess come from one simulation
+    courses = {}  # guess -> its anchored course; a guess that cannot be simulated borrows the first one's
+    for k, (_, theta) in enumerate(guesses):
         try:
-            first = job.simulate(theta)
-            break
+            courses[k] = job.anchored(theta)
         except SimulationError:
             continue
+    first = courses[min(courses)] if courses else None
     if first is None:
         return result(FAILED, "the runs cannot be simulated at the start values nor at any guess within the bounds: "
                       "check the initial values, the schedules and the bounds",
                       starts=[{"from": label, "guess": _floats(th), "status": "not run",
                                "message": "its simulation failed"} for label, th in guesses])
-    xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in first], axis=0)
+    # the states' scale from the first such guess simulated without the data (as
+    # before the anchored courses: on 7 seeds of 1, 2 and 8 runs the anchored
+    # course's maxima gave as many IPOPT iterations or a few more)
+    xs = np.max([np.max(np.abs(tr.x), axis=0) for tr in job.simulate(guesses[min(courses)][1], rough=True)], axis=0)
     total = len(guesses) + 1 + (len(job.names) if profile else 0)
     progress("building the calibration NLP", 0, total)
     nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)
@@ -350,7 +388,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
     for k, (label, theta) in enumerate(guesses):
         if interrupted():
             raise KeyboardInterrupt
-        w0 = nlp.pack(data, runs.runs, theta, first)
+        w0 = nlp.pack(data, runs.runs, theta, courses.get(k, first), at_data=k not in courses)
         s = solve(nlp, data, w0, label, profile="cold", tolerance=NLP_TOLERANCE, max_iter=1500)
         # a solve that stops with a finite answer (IPOPT often ends a calibration with an
         # error in its step computation once it sits at the optimum) is handed to the
@@ -418,7 +456,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         estimates.append(Estimate(e.name, e.unit, *(float(v * f) for v in (
             theta[i], stats_.se[i], stats_.ci_low[i], stats_.ci_high[i], e.start, e.lower, e.upper)),
             None if pl is None else float(pl * f), None if ph is None else float(ph * f)))
-    residuals = _residual_table(job, theta)
+    residuals = _residual_table(job, r)
     status = FITTED if settled else NOT_CONVERGED
     head = (f"{len(estimates)} parameter(s) from {runs.n_samples} measured values in {len(runs.runs)} run(s)"
             if settled else f"the polish on the re-simulated runs did not settle in {polish_iterations} steps; "
@@ -445,20 +483,30 @@ def display_unit(q, runs, problem) -> str:
     return quantity_unit(q, runs, problem) or next(r.units[q] for r in runs if q in r.units)
 
 
-def _residual_table(job, theta) -> list:
+def _residual_table(job, r) -> list:
+    """Per run and quantity, the weighted residuals ``r`` (those of the polish's last
+    re-simulation, in :meth:`_Fitter.residuals`' order) with the fitted values they
+    come from (measured + sigma * residual): the runs are not simulated again."""
     out = []
     units = {q: display_unit(q, job.runs.runs, job.problem) for q in job.runs.quantities}
-    for run in job.runs.runs:
-        values, _ = job.sampler.values(run, job.constants(run, theta))
+    place, at = {}, 0  # (run, quantity) -> positions of its residuals in r
+    for i, run in enumerate(job.runs.runs):
+        for k in range(len(run.times)):
+            for q, y in run.values.items():
+                if np.isfinite(y[k]):
+                    place.setdefault((i, q), []).append(at)
+                    at += 1
+    assert at == len(r)
+    for i, run in enumerate(job.runs.runs):
         for q, y in run.values.items():
             ok = np.isfinite(y)
             sig = job.sigma(q, y[ok])
-            w = (values[q][ok] - y[ok]) / sig
+            w = np.asarray(r)[place.get((i, q), [])]
             out.append({"run": run.name, "quantity": q, "unit": units[q], "count": int(ok.sum()),
                         "mean": float(w.mean()) if ok.any() else None,
                         "rms": float(np.sqrt((w ** 2).mean())) if ok.any() else None,
                         "times": _floats(run.times[ok]), "measured": _floats(y[ok]),
-                        "fitted": _floats(values[q][ok]), "sigma": _floats(sig)})
+                        "fitted": _floats(y[ok] + sig * w), "sigma": _floats(sig)})
     return out
 
 
