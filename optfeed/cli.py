@@ -158,7 +158,22 @@ def main(argv=None) -> int:
     except BrokenPipeError:
         _stdout_gone()
         code = st.EXIT_FAILED
+    if argv is None:  # the program itself (the console script, python -m optfeed.cli): it ends now
+        _ending()
     return code
+
+
+def _ending() -> None:
+    """The process ends next, and the operating system takes back its memory: the
+    interpreter's garbage collections at exit would only walk the run's objects
+    (matplotlib's, CasADi's) to free them one by one (measured: 0.2-0.35 s CPU after
+    an optimize run with figures, 0.03 s with them frozen). ``gc.freeze`` puts every
+    object out of their reach; objects are still released by reference counting and
+    exit handlers still run. Not for ``main([...])`` called from Python: that process
+    goes on."""
+    import gc
+
+    gc.freeze()
 
 
 def _out(text: str = "", end: str = "\n") -> None:

@@ -63,12 +63,14 @@ IPOPT_STATUS = {
 # benchmarks. 'cold': a monotone barrier from a small initial mu suits starts from
 # simulated feeds (near-feasible); 'adaptive' rescues some of the rest and explores
 # other basins; 'near': from a good point without multipliers (a coarse answer moved
-# to a finer grid); 'warm': from a nearby solution with its multipliers (back-off
+# to a finer grid; mu_init 1e-6: Park-Ramirez's 320-step refinement 56 -> 31
+# iterations against 1e-5, the fine solves of the published problems 13-42, as
+# before within four); 'warm': from a nearby solution with its multipliers (back-off
 # rounds, a changed bound).
 PROFILES = {
     "cold": {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-3},
     "adaptive": {"ipopt.mu_strategy": "adaptive"},
-    "near": {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-5},
+    "near": {"ipopt.mu_strategy": "monotone", "ipopt.mu_init": 1e-6},
     "warm": {"ipopt.warm_start_init_point": "yes", "ipopt.mu_init": 1e-6, "ipopt.warm_start_bound_push": 1e-9,
              "ipopt.warm_start_mult_bound_push": 1e-9, "ipopt.mu_strategy": "monotone"},
 }
@@ -232,6 +234,23 @@ def get_nlp(problem: Problem, model, limits, grid: Grid, free_time: bool, scenar
     return nlp
 
 
+# Whether this process solves case after case of one structure with the solvers it
+# keeps (a sweep's case process): then an NLP's expansion is paid once for every case,
+# and optimize expands the fine grid's NLP at once instead of solving its first,
+# short solves on the graph (optimize._stage). Set by the sweep's case runner.
+_MANY_CASES = False
+
+
+def expect_many_cases(many: bool) -> None:
+    """Say whether this process will solve many cases of the same structures."""
+    global _MANY_CASES
+    _MANY_CASES = bool(many)
+
+
+def many_cases() -> bool:
+    return _MANY_CASES
+
+
 def cache_info() -> dict:
     return {"entries": len(_CACHE), "solvers": sum(len(n._solvers) for n in _CACHE.values())}
 
@@ -245,7 +264,8 @@ def clear_cache() -> None:
 # differentiating costs about as much CPU as 50 of the graph's slower iterations
 # (measured on Park-Ramirez, 80 pump steps x 160 elements: 0.67 against 0.09 s to
 # build, about 9.5 against 20 ms per iteration). Pump-grid refinements from an exact
-# warm start take 13-40 iterations on the published problems.
+# warm start take 13-40 iterations on the published problems, and so do the fine-grid
+# solves from a re-simulated coarse optimum (14-44; see optimize._stage).
 SHORT_SOLVE = 50
 
 
@@ -317,7 +337,7 @@ class Start:
 
 def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold", tolerance: float = 1e-8,
           max_iter: int = 3000, warm=None, deadline: float | None = None, report=None,
-          guess_objective=None, expected_iterations: int | None = None) -> Start:
+          guess_objective=None, expected_iterations: int | None = None, graph: bool = False) -> Start:
     """One IPOPT solve from ``w0``; never raises for a solver failure.
 
     ``warm`` = (lam_g, lam_x), multipliers of a nearby solution (use with profile
@@ -325,9 +345,11 @@ def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold",
     ``report(label, iteration, objective, infeasibility)`` is called every few
     seconds with the NLP's own (scaled) objective and its largest constraint
     violation (scaled rows). ``expected_iterations`` (e.g. those of the last solve
-    from a point as close): below SHORT_SOLVE, a new NLP is not expanded.
+    from a point as close): below SHORT_SOLVE, a new NLP is not expanded. ``graph``:
+    solve on the NLP's graph whenever its expanded solver is not built yet (the
+    caller expects a short solve and caps it, see ``optimize._stage``).
     """
-    short = expected_iterations is not None and expected_iterations < SHORT_SOLVE
+    short = graph or (expected_iterations is not None and expected_iterations < SHORT_SOLVE)
     solver, watch = _solver(nlp, profile, tolerance, max_iter, graph=short)
     args = nlp.arguments(data)
     watch.reset(deadline, report, label=label, lbg=args["lbg"], ubg=args["ubg"])

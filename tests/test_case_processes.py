@@ -9,6 +9,9 @@ sweeps stopped from outside.
   process whose cache was cleared first).
 * A sweep's case processes build their solvers once, not once per case (counted at
   CasADi's nlpsol, the call that builds an IPOPT solver).
+* A one-off optimize solves on the fine grid on the NLP's graph, and a solve cut
+  short there carries on on the expanded NLP to the same optimum (reference: the
+  run with the NLP expanded from the start, IPOPT's tolerance).
 * SIGTERM and Ctrl-C stop a sweep with exit code 130, leave no case process behind,
   and the same command completes it without computing a finished case again.
 
@@ -166,6 +169,44 @@ def test_a_solver_on_the_nlp_graph_answers_as_the_expanded_one(tmp_path):
     assert on_graph.status == expanded.status == "converged"
     assert on_graph.objective == pytest.approx(expanded.objective, rel=1e-8)
     assert np.max(np.abs(on_graph.w - expanded.w)) <= 1e-6  # scaled variables, near 1
+
+
+def _fine_nlps():
+    """The fine-grid NLPs in this process's cache (more elements than pump steps)."""
+    return [n for n in solve._CACHE.values() if n.grid.elements > n.grid.pump_steps]
+
+
+def test_a_fine_solve_cut_short_on_the_graph_carries_on_expanded_to_the_same_answer(tmp_path, monkeypatch):
+    # the fine grid's first solve runs on the NLP's graph, capped at SHORT_SOLVE
+    # iterations; one that needs more carries on from where it stopped on the
+    # expanded NLP. Reference: the same run with the fine NLP expanded from the start
+    # (as in a sweep's case process), the same optimum to IPOPT's tolerance (1e-8)
+    job = sys.modules["optfeed.optimize"]  # the module (the package binds the name to the function)
+    path = tmp_path / "tiny.yaml"
+    path.write_text(TINY)
+    solve.clear_cache()
+    solve.expect_many_cases(True)
+    try:
+        expanded = optfeed.optimize(path, workers=1)
+    finally:
+        solve.expect_many_cases(False)
+    assert all(n._derivatives is not None for n in _fine_nlps())
+    solve.clear_cache()
+    on_graph = optfeed.optimize(path, workers=1)
+    assert _fine_nlps() and all(n._derivatives is None for n in _fine_nlps())  # never expanded
+    solve.clear_cache()
+    monkeypatch.setattr(job, "SHORT_SOLVE", 2)
+    solves, real = [], job.solve
+    monkeypatch.setattr(job, "solve", lambda *a, **k: solves.append((a[3], k.get("graph", False))) or real(*a, **k))
+    cut = optfeed.optimize(path, workers=1)
+    assert all(n._derivatives is not None for n in _fine_nlps())  # the fallback expanded it
+    # it carried on: the fine solve on the graph, then on the expanded NLP, never a cold restart
+    assert any(g for _, g in solves) and not any(label.endswith("(cold restart)") for label, _ in solves)
+    for r in (on_graph, cut):
+        assert r.status == expanded.status == "optimal, verified", r.message
+        assert r.objective_nlp == pytest.approx(expanded.objective_nlp, rel=1e-7)
+        assert np.max(np.abs(r.points["u"] - expanded.points["u"])) <= 1e-5 * 0.1  # L/h, of a 0.1 L/h pump
+    solve.clear_cache()
 
 
 _NLPSOL = casadi.nlpsol

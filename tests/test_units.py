@@ -91,3 +91,20 @@ def test_power_round_trip():
 def test_bad_quantities(text, match):
     with pytest.raises(ValueError, match=match):
         parse_quantity(text, "volume")
+
+
+def test_units_are_read_without_importing_dask():
+    # pint imports dask on its own import wherever dask is installed (dask arrays of
+    # quantities, which optfeed never makes; 0.2 s CPU per process): optfeed's import
+    # of pint leaves it out, and its conversions are pint's as before (1 mL/h =
+    # 0.001 L/h, 1 W = 1 J/s, by definition). A fresh process: this one has dask already
+    import subprocess
+    import sys
+
+    code = ("import sys, optfeed.cli, optfeed.optimize, optfeed.report\n"
+            "from optfeed.units import parse_quantity, to_internal, factor_to\n"
+            "assert not [m for m in sys.modules if m == 'dask' or m.startswith('dask.')], 'dask was imported'\n"
+            "assert abs(to_internal(parse_quantity('200 mL/h', 'flow')) - 0.2) < 1e-15\n"
+            "assert abs(factor_to('J/s') / factor_to('W') - 1) < 1e-12\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr[-2000:]
