@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import multiprocessing as mp
+import pickle
 import time
 from dataclasses import dataclass, field
 
@@ -290,6 +291,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     else:
         schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     limits = build_limits(model, phases=True)
+    sim = _keep_built(problem, model, limits)
     drawn = scenario_set(problem, model, count=int(samples), seed=int(seed), method="random", nominal=False)
     if workers is None:
         workers = cpu_count()
@@ -298,7 +300,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     workers = max(1, min(int(workers), int(samples)))
 
     t0 = time.perf_counter()
-    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, deadline=deadline)
+    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, sim, deadline=deadline)
     outs = _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline)
     seconds = time.perf_counter() - t0
     return _result(model, limits, drawn, nominal, outs, int(samples), int(seed), seconds, workers,
@@ -349,15 +351,10 @@ def _chunk(job, progress=None) -> list:
     (:meth:`optfeed.simulate.Simulator.run_batch`), each run then judged on its own;
     a batch that fails is simulated again sample by sample, so that a failure is
     reported for the sample it belongs to, as before."""
-    from .limits import build_limits
-    from .model import build_model
     from .processes import report_progress
-    from .simulate import Simulator
 
     problem, schedule, tf, constants, x0, deadline, batch = job
-    model = build_model(problem)
-    limits = build_limits(model, phases=True)
-    sim = Simulator(model)
+    model, limits, sim = _built(problem)
     if sim.phased:
         batch = 1
     n = constants.shape[1]
@@ -376,6 +373,40 @@ def _chunk(job, progress=None) -> list:
             out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline, traj))
             (progress or report_progress)(1)
     return out
+
+
+# (problem, its pickled bytes, model, limits, simulator) of the sample this process
+# judges last: the chunks that a worker process runs one after the other (and, by
+# fork, the parent's nominal run before them) share the model, the limits' Functions
+# and the integrators instead of building their own (measured: 13 chunks of 16
+# samples, each in a fresh process building its own, made two workers do 1.4 times
+# the samples per second of one)
+_KEPT = None
+
+
+def _keep_built(problem, model, limits):
+    """Keep ``model`` and ``limits`` of ``problem`` (with a new Simulator) for the
+    chunks run after this in this process or its forks; the Simulator."""
+    global _KEPT
+    from .simulate import Simulator
+
+    sim = Simulator(model)
+    _KEPT = (problem, pickle.dumps(problem), model, limits, sim)
+    return sim
+
+
+def _built(problem):
+    """(model, limits, simulator) of ``problem``: those kept, when they are of the
+    same problem (the same object, or one pickled from an equal one), else built."""
+    from .limits import build_limits
+    from .model import build_model
+
+    if _KEPT is not None and (_KEPT[0] is problem or _KEPT[1] == pickle.dumps(problem)):
+        return _KEPT[2:]
+    model = build_model(problem)
+    limits = build_limits(model, phases=True)
+    sim = _keep_built(problem, model, limits)
+    return model, limits, sim
 
 
 def batch_size(samples: int) -> int:
@@ -422,7 +453,9 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) 
     def late():
         return deadline is not None and time.monotonic() > deadline
 
-    run_killable(items, _chunk, workers, done, on_progress=lambda key, payload: progress(payload), should_stop=late)
+    # processes that run chunk after chunk (each keeps what it built, see _KEPT)
+    run_killable(items, _chunk, workers, done, on_progress=lambda key, payload: progress(payload), should_stop=late,
+                 reuse=True)
     not_run = {"status": NOT_RUN, "message": "the time limit was reached first"}
     return [d for k, s in enumerate(starts) for d in results.get(k, [not_run] * min(size, n - s))]
 
