@@ -118,15 +118,23 @@ class Limit:
         """(slack, side) of g ``values`` (internal units): distance to the nearest
         bound (negative = violated) and which bound ('max' or 'min') it is."""
         values = np.asarray(values, dtype=float)
-        slack = np.full(values.shape, np.inf)
-        side = np.full(values.shape, "max", dtype=object)
-        if self.upper is not None:
-            slack = self.upper - values
+        side = np.full(values.shape, "max", dtype="<U3")
         if self.lower is not None:
-            low = values - self.lower
-            side = np.where(low < slack, "min", side)
-            slack = np.minimum(slack, low)
-        return slack, side
+            upper = np.inf if self.upper is None else self.upper - values
+            side = np.where(values - self.lower < upper, "min", side)
+        return self.margin(values), side
+
+    def margin(self, values) -> np.ndarray:
+        """The slack alone (what :meth:`slack` returns first): the judgement's
+        narrowing asks for it thousands of times per run and never for the side."""
+        values = np.asarray(values, dtype=float)
+        if self.upper is None and self.lower is None:
+            return np.full(values.shape, np.inf)
+        if self.lower is None:
+            return self.upper - values
+        if self.upper is None:
+            return values - self.lower
+        return np.minimum(self.upper - values, values - self.lower)
 
 
 @dataclass(frozen=True)
@@ -453,7 +461,7 @@ def _between_samples(traj, fs, i, lim, values, window=None):
     samples where its slack has a local minimum (within ``window``, a sample mask)."""
     if lim.kind in ("pump", "setting") or traj.piece is None or traj._simulator is None:
         return np.zeros(0), np.zeros(0)
-    slack, _ = lim.slack(values)
+    slack = lim.margin(values)
     if window is not None:
         slack = np.where(window, slack, np.inf)
     minima = _local_minima(slack, traj.piece)
@@ -508,7 +516,7 @@ def _between_samples(traj, fs, i, lim, values, window=None):
             values = [f.one(i, *r) for f, r in zip(fns, runs)]
         still = []
         for item, (t, x, u), v in zip(open_, runs, values):
-            s, _ = lim.slack(v)
+            s = lim.margin(v)
             j = int(np.argmin(s))
             item[4].append((t[j], v[j]))
             a, b = max(j - 1, 0), min(j + 1, len(t) - 1)
@@ -523,13 +531,13 @@ def _between_samples(traj, fs, i, lim, values, window=None):
 def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None) -> float:
     """First time (h) the slack of limit ``i`` drops below -tol, located between
     samples by narrowing the interval where it first happens (within ``window``)."""
-    slack, _ = lim.slack(values)
+    slack = lim.margin(values)
     if window is not None:
         slack = np.where(window, slack, np.inf)
     bad = np.nonzero(slack < -tol)[0]
     t_bad = traj.t[bad[0]] if len(bad) else np.inf
     if len(extra_t):
-        s_extra, _ = lim.slack(extra_v)
+        s_extra = lim.margin(extra_v)
         early = extra_t[s_extra < -tol]
         if len(early) and early.min() < t_bad:
             t_bad = float(early.min())
@@ -547,7 +555,7 @@ def _first_crossing(traj, fs, i, lim, values, extra_t, extra_v, tol, window=None
     f = _fn(fs, traj, k)
     for _ in range(CROSSING_ROUNDS):
         t, x, u = traj.between(k, t_lo, x_lo, t_hi)
-        s, _ = lim.slack(f.one(i, t, x, u))
+        s = lim.margin(f.one(i, t, x, u))
         j = int(np.argmax(s < -tol))
         if not s[j] < -tol or j == 0:
             break
