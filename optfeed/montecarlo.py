@@ -355,20 +355,10 @@ def _chunk(job, progress=None) -> list:
 
     problem, schedule, tf, constants, x0, deadline, batch = job
     model, limits, sim = _built(problem)
-    if sim.phased:
-        batch = 1
-    n = constants.shape[1]
     out = []
-    for start in range(0, n, batch):
-        cols = range(start, min(start + batch, n))
-        trajs = [None] * len(cols)
-        if len(cols) > 1 and not (deadline is not None and time.monotonic() > deadline):
-            try:
-                trajs = sim.run_batch(schedule, tf, x0[:, cols], constants[:, cols], deadline=deadline)
-            except TimeLimitReached:
-                trajs = [None] * len(cols)  # each sample then meets the time limit on its own
-            except SimulationError:
-                trajs = [None] * len(cols)  # one by one, to name the failing sample
+    # a batch that fails or meets the time limit gives None: its samples are then
+    # simulated one by one (to name the failing one, or to meet the limit each)
+    for cols, trajs in sim.run_in_batches(schedule, tf, x0, constants, batch, deadline):
         for k, traj in zip(cols, trajs):
             out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline, traj))
             (progress or report_progress)(1)

@@ -36,7 +36,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from . import status as st
-from .errors import InputError, Issue, SimulationError
+from .errors import InputError, Issue
 from .limits import REL_TOL, LimitReport, build_limits, judge, limit_function
 from .marginals import is_active
 from .outcome import Outcome, objective_label, outcome_of
@@ -537,27 +537,20 @@ SCENARIO_BATCH = 16  # scenarios re-simulated together as one system in a verifi
 
 def _scenario_runs(sim, schedule, T, inputs) -> list:
     """The runs of ``schedule`` in every scenario but the nominal (the first), made
-    SCENARIO_BATCH at a time as one CVODES system (:meth:`Simulator.run_batch`, with
-    tolerances at least as strict per run as one run's): a Trajectory per scenario,
-    None for the nominal, which is simulated on its own exactly as ``optfeed check``
-    simulates it, and for every scenario of a batch that failed (each is then
-    simulated on its own, so that a failure names its scenario). All None for a
-    problem with phases or additions, or fewer than three scenarios."""
+    SCENARIO_BATCH at a time as one CVODES system (:meth:`Simulator.run_in_batches`,
+    with tolerances at least as strict per run as one run's): a Trajectory per
+    scenario, None for the nominal, which is simulated on its own exactly as
+    ``optfeed check`` simulates it, and for every scenario of a batch that failed
+    (each is then simulated on its own, so that a failure names its scenario). All
+    None for a problem with phases or additions, or fewer than three scenarios."""
     runs = [None] * len(inputs)
-    if sim.phased or len(inputs) < 3:
+    if len(inputs) < 3:
         return runs
-    for a in range(1, len(inputs), SCENARIO_BATCH):
-        cols = range(a, min(a + SCENARIO_BATCH, len(inputs)))
-        if len(cols) < 2:
-            continue
-        x0 = np.column_stack([inputs[s][0] for s in cols])
-        p = np.column_stack([inputs[s][1] for s in cols])
-        try:
-            batch = sim.run_batch(schedule, T, x0, p)
-        except SimulationError:
-            continue
-        for s, traj in zip(cols, batch):
-            runs[s] = traj
+    x0 = np.column_stack([x for x, _ in inputs[1:]])
+    p = np.column_stack([c for _, c in inputs[1:]])
+    for cols, batch in sim.run_in_batches(schedule, T, x0, p, SCENARIO_BATCH):
+        for k, traj in zip(cols, batch):
+            runs[1 + k] = traj
     return runs
 
 
@@ -753,7 +746,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
     # build the solvers the starts use before they fork, so no process builds its own
     # (the fine grid's first solves run on the NLP's graph, see _near_solve)
     _solver(coarse, "cold", s.tolerance, COARSE_ITER)
-    on_graph = not many_cases() and fine._derivatives is None and s.max_iter > SHORT_SOLVE
+    on_graph = _near_on_graph(fine, s.max_iter)
     _solver(fine, "near", s.tolerance, SHORT_SOLVE if on_graph else s.max_iter, graph=on_graph)
 
     # 1 and 2: every start on the coarse grid, then every distinct optimum on the fine grid
@@ -906,7 +899,7 @@ def _near_solve(job, nlp, data, w0, label, max_iter, **kw) -> Start:
     :func:`optfeed.solve.many_cases`) expands at once: it pays for that once."""
     s = job.settings
     common = dict(profile="near", tolerance=s.tolerance, deadline=job.deadline, report=job.report, **kw)
-    if many_cases() or nlp._derivatives is not None or max_iter <= SHORT_SOLVE:
+    if not _near_on_graph(nlp, max_iter):
         return solve(nlp, data, w0, label, max_iter=max_iter, **common)
     first = solve(nlp, data, w0, label, max_iter=SHORT_SOLVE, graph=True, **common)
     if first.status != "iteration limit":
@@ -915,6 +908,13 @@ def _near_solve(job, nlp, data, w0, label, max_iter, **kw) -> Start:
     more.iterations += first.iterations
     more.seconds += first.seconds
     return more
+
+
+def _near_on_graph(nlp, max_iter: int) -> bool:
+    """Whether :func:`_near_solve` starts on the NLP's graph: not in a process that
+    keeps its solvers for many cases, not once the NLP is expanded, and not for an
+    iteration budget of SHORT_SOLVE or less (solved expanded at once)."""
+    return not many_cases() and nlp._derivatives is None and max_iter > SHORT_SOLVE
 
 
 _STAGE_JOB = None  # the job the stage workers see (set before forking)

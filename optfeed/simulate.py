@@ -224,6 +224,26 @@ class Simulator:
             piece=np.concatenate(index), _pieces=tuple(pieces), _simulator=self, _p=p,
         )
 
+    def run_in_batches(self, schedule: Schedule, end_time: float, x0, p, size: int, deadline: float | None = None):
+        """:meth:`run_batch` over the columns of ``x0`` and ``p``, ``size`` runs at a
+        time, one batch as it is asked for: yields (columns, runs), ``runs`` a
+        Trajectory per column, or None for each run the batch did not give (CVODES
+        could not finish the batch, or the time limit came first; a batch of one; a
+        problem with phases or additions). The caller simulates those one by one
+        with :meth:`run`, so that a failure is reported for its own run."""
+        n = np.shape(x0)[1]
+        size = 1 if self.phased else max(1, int(size))
+        for a in range(0, n, size):
+            cols = range(a, min(a + size, n))
+            runs = [None] * len(cols)
+            if len(cols) > 1 and not (deadline is not None and time.monotonic() > deadline):
+                try:
+                    runs = self.run_batch(schedule, end_time, x0[:, a:cols.stop], p[:, a:cols.stop],
+                                          deadline=deadline)
+                except (SimulationError, TimeLimitReached):
+                    pass
+            yield cols, runs
+
     def run_batch(self, schedule: Schedule, end_time: float, x0, p, min_points: int = SAMPLES,
                   deadline: float | None = None) -> list:
         """Integrate ``schedule`` over [0, end_time] h for B runs at once: ``x0`` and
