@@ -29,18 +29,7 @@ def simulate_run(sim: Simulator, run, constants) -> Trajectory:
     """The run re-simulated with ``constants`` (the model's p vector): a Trajectory
     of the full model, sampled densely, with the sample-volume jumps applied just
     after each sampling time (the sample sees the broth before it is taken)."""
-    m = sim.model
-    v = m.index("V")
-    x = np.array(run.x0, dtype=float)
-    ts, xs, us = [], [], []
-    for a, b, _, seg, sample in stretches(run, m.feed_names, run.end_time):
-        t, xx, uu = sim.between(seg, a, x, b, constants)
-        ts.append(t), xs.append(xx), us.append(uu)
-        x = xx[-1].copy()
-        if sample is not None and run.sample_volume:
-            x[v] -= run.sample_volume
-    return Trajectory(np.concatenate(ts), np.vstack(xs), np.vstack(us), tuple(m.state_names), tuple(m.feed_names),
-                      _p=np.asarray(constants, dtype=float))
+    return _stretch_by_stretch(sim, run, constants, pinned=False)
 
 
 def anchored_run(sim: Simulator, run, constants) -> Trajectory:
@@ -62,16 +51,23 @@ def anchored_run(sim: Simulator, run, constants) -> Trajectory:
     before from random guesses far from the estimates.
 
     Raises SimulationError where the integrator cannot follow a stretch."""
+    return _stretch_by_stretch(sim, run, constants, pinned=True)
+
+
+def _stretch_by_stretch(sim: Simulator, run, constants, pinned: bool) -> Trajectory:
+    """The run integrated stretch by stretch (the sample volume taken after each
+    sampling time); with ``pinned``, each stretch ending at a sample is bent onto
+    the measured values there, as :func:`anchored_run` says."""
     m = sim.model
     v = m.index("V")
-    pinned = {m.index(q): y for q, y in run.values.items() if q in m.state_names and q != "V"}
+    pins = {m.index(q): y for q, y in run.values.items() if q in m.state_names and q != "V"} if pinned else {}
     x = np.array(run.x0, dtype=float)
     ts, xs, us = [], [], []
     for a, b, _, seg, sample in stretches(run, m.feed_names, run.end_time):
         t, xx, uu = sim.between(seg, a, x, b, constants)
-        if sample is not None:
+        if pins and sample is not None:
             ramp = (t - a) / (b - a)
-            for i, y in pinned.items():
+            for i, y in pins.items():
                 if np.isfinite(y[sample]):
                     xx[:, i] = np.maximum(xx[:, i] + ramp * (max(y[sample], 0.0) - xx[-1, i]), 0.0)
         ts.append(t), xs.append(xx), us.append(uu)
