@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import casadi as ca
 import numpy as np
 
+from .calls import call
 from .model import Model
 from .simulate import Trajectory
 from .units import factor_to
@@ -277,13 +278,15 @@ class _LimitValues:
         f = self._maps.get((i, n))
         if f is None:
             fn = self._fn
-            if i is not None:
-                ins = fn.sx_in()
-                fn = ca.Function(f"g{i}", ins, [fn.call(ins)[0][i]])
-            f = self._maps[(i, n)] = fn.map(n)
-        values = f(np.asarray(t, dtype=float)[None, :], np.asarray(x, dtype=float).T,
-                   np.asarray(u, dtype=float).T, self._p)
-        return np.asarray(values)
+            ins = fn.sx_in()
+            out = fn.call(ins)[0]
+            # dense, so that the buffer below holds every value (a limit that is
+            # structurally zero, or constant, would otherwise have no entry)
+            fn = ca.Function("g" if i is None else f"g{i}", ins, [ca.densify(out if i is None else out[i])],
+                             ["t", "x", "u", "p"], ["g"])
+            f = self._maps[(i, n)] = fn.map(f"{fn.name()}_{n}", "serial", n, [3], [])  # p shared
+        (g,) = call(f, {"t": t, "x": x, "u": u, "p": self._p}, ["g"])
+        return g.reshape(n, -1).T
 
 
 def _phase_functions(model: Model, limits, traj: Trajectory) -> list:

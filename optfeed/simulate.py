@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 import casadi as ca
 import numpy as np
 
+from .calls import call
 from .errors import InputError, SimulationError, TimeLimitReached
 from .model import Model
 from .phases import condition_function, jump, models_like, phase_constants, phases_of
@@ -290,11 +291,11 @@ class Simulator:
                 q = _law(piece, piece.start, piece.end, m.feed_names)
                 Q = np.vstack([np.repeat(q[:, None], B, axis=1), p])
                 try:
-                    out = integrator(x0=x.ravel(), p=Q.T.ravel())
+                    (xf,) = call(integrator, {"x0": x, "p": Q.T}, ["xf"])
                 except RuntimeError as exc:
                     raise SimulationError(f"the integrator failed ({_short(exc)}) in a batch of {B} runs",
                                           piece.start) from None
-                xf = np.array(out["xf"]).reshape(B, m.nx, -1).transpose(0, 2, 1)  # (B, points, nx)
+                xf = xf.reshape(-1, B, m.nx).transpose(1, 0, 2)  # (B, points, nx)
                 if not np.all(np.isfinite(xf)):
                     raise SimulationError(f"a state became infinite or not a number in a batch of {B} runs",
                                           piece.start)
@@ -506,7 +507,8 @@ class Simulator:
             padded = list(items) + [items[-1]] * (B - len(items))
             X0 = np.array([item[2] for item in padded], dtype=float)
             Q = np.array([np.concatenate([_law(seg, t0, t1, m.feed_names), p]) for seg, t0, _, t1, p in padded])
-            xf = np.array(integrator(x0=X0.ravel(), p=Q.ravel())["xf"]).reshape(B, m.nx, -1).transpose(0, 2, 1)
+            (xf,) = call(integrator, {"x0": X0, "p": Q}, ["xf"])
+            xf = xf.reshape(-1, B, m.nx).transpose(1, 0, 2)  # (B, points, nx)
         except (RuntimeError, SimulationError):
             xf = None
         if xf is None or not np.all(np.isfinite(xf)):
@@ -531,11 +533,11 @@ class Simulator:
         h = t1 - t0
         q = np.concatenate([_law(seg, t0, t1, self.model.feed_names), p])
         try:
-            out = self._integrators[phase](x0=x0, p=q)
+            (xf,) = call(self._integrators[phase], {"x0": x0, "p": q}, ["xf"])
         except RuntimeError as exc:
             raise SimulationError(f"the integrator failed ({_short(exc)}); {self._largest(x0, seg, t0)}",
                                   t0) from None
-        xf = np.array(out["xf"]).T  # (points, nx)
+        xf = xf.reshape(-1, self.models[phase].nx)  # (points, nx)
         t = t0 + h * self._grid
         if not np.all(np.isfinite(xf)):
             row = int(np.argmax(~np.all(np.isfinite(xf), axis=1)))
