@@ -31,7 +31,6 @@ def fast():
     points = {"t": r.trajectory.t[::40], "x": r.trajectory.x[::40]}
     drawings = {d.name: d for d in F.run_drawings(model, r.trajectory, points=points)}
     yield r, model, drawings
-    F.close(drawings.values())
 
 
 def axes_titled(fig, text):
@@ -147,7 +146,6 @@ def test_ranking_labels_are_not_cut_off():
     for text in fig.axes[0].get_yticklabels():
         ext = text.get_window_extent()
         assert ext.x0 >= box.x0 - 0.5 and ext.x1 <= box.x1 + 0.5 and ext.y0 >= box.y0 - 0.5, text.get_text()
-    F.close([d])
 
 
 def test_margins_against_swept_values_mark_broken_cases():
@@ -157,7 +155,6 @@ def test_margins_against_swept_values_mark_broken_cases():
     broken = next(line for line in ax.get_lines() if line.get_label() == "broken")
     assert list(broken.get_xdata()) == [6] and list(broken.get_ydata()) == [-1.2]
     assert any(np.allclose(line.get_ydata(), 0.0) for line in ax.get_lines())
-    F.close([d])
 
 
 def test_svg_and_png_come_from_the_same_drawing(tmp_path, fast):
@@ -198,4 +195,21 @@ def test_fan_draws_the_percentiles_the_limit_and_a_reference():
     labels = ax.get_legend_handles_labels()[1]
     assert "5-95 % of the other plan" in labels and "nominal run" in labels and "maximum 3 g/L" in labels
     assert len(d.figure.axes) == len(mc.bands) == 2  # the pump is not drawn
-    F.close([d])
+
+
+def test_drawings_are_freed_once_dropped(tmp_path, fast):
+    """Nothing keeps a figure alive once its drawing is dropped (no registry, no cache
+    of canvases): the garbage collector frees it (matplotlib's figures hold cycles,
+    so they are not cleared by hand: that rebuilt every panel's axes)."""
+    import gc
+    import weakref
+
+    r, model, _ = fast
+    drawings = F.run_drawings(model, r.trajectory)
+    for d in drawings:
+        F.save_png(d, tmp_path)
+        F.svg_text(d)
+    refs = [weakref.ref(d.figure) for d in drawings]
+    del drawings, d
+    gc.collect()
+    assert all(ref() is None for ref in refs)

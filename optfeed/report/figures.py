@@ -122,12 +122,6 @@ def svg_text(drawing: Drawing, prefix: str = "") -> str:
     return text
 
 
-def close(drawings) -> None:
-    """Free the figures' memory."""
-    for d in drawings:
-        d.figure.clear()
-
-
 # ------------------------------------------------------------------ one run
 
 

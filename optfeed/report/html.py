@@ -697,7 +697,7 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
     png_folder = Path(figure_folder) if figure_folder is not None else folder
     drawings, svgs, note = [], [], ("" if draw is not None else no_figures_note)
     if draw is not None:
-        from .figures import close, save_png, svg_text
+        from .figures import save_png, svg_text
 
         try:
             drawings = draw()
@@ -712,8 +712,6 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
             for d in drawings:
                 (png_folder / f"{d.name}.png").unlink(missing_ok=True)
             drawings, svgs = [], []
-        finally:
-            close(drawings)
     try:
         text = render(page_of(drawings, svgs, note))
     except Exception as exc:  # noqa: BLE001 - never lose a run's numbers for its report
