@@ -265,16 +265,16 @@ class _LimitValues:
 
     def __call__(self, t, x, u) -> np.ndarray:
         """g at samples (t, x, u): shape (len(t), n_limits), internal units."""
-        values = self._mapped(None, len(t), t, x, u)
-        return values.reshape(self.n_limits, len(t)).T
+        return self._mapped(None, len(t), t, x, u)
 
     def one(self, i: int, t, x, u) -> np.ndarray:
         """g of limit ``i`` alone at samples (t, x, u): shape (len(t),) (the
         judgement's re-integrations need one limit at a time; the others cost as
         much again each)."""
-        return self._mapped(i, len(t), t, x, u).ravel()
+        return self._mapped(i, len(t), t, x, u)[:, 0]
 
     def _mapped(self, i, n, t, x, u) -> np.ndarray:
+        """Limit ``i`` (all of them for None) at the ``n`` samples: shape (n, limits)."""
         f = self._maps.get((i, n))
         if f is None:
             fn = self._fn
@@ -286,7 +286,7 @@ class _LimitValues:
                              ["t", "x", "u", "p"], ["g"])
             f = self._maps[(i, n)] = fn.map(f"{fn.name()}_{n}", "serial", n, [3], [])  # p shared
         (g,) = call(f, {"t": t, "x": x, "u": u, "p": self._p}, ["g"])
-        return g.reshape(n, -1).T
+        return g.reshape(n, -1)  # column-major (limits, n) is C-ordered (n, limits)
 
 
 def _phase_functions(model: Model, limits, traj: Trajectory) -> list:
