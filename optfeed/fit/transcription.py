@@ -16,7 +16,7 @@ likelihood estimate under independent normal errors with the stated sigma.
 It offers the interface :func:`optfeed.solve.solve` uses (``nlp``, ``n_w``, ``n_g``,
 ``P``, ``arguments``, ``objective_value``), so it is solved, watched and cached the
 same way as the optimizer's NLP, but with exact derivatives assembled from its
-pieces' own (:mod:`.derivatives`), not from the whole NLP expanded. The measured
+pieces' own (:mod:`optfeed.derivatives`), not from the whole NLP expanded. The measured
 values, their weights, the runs'
 initial states and constants are parameters of the NLP, not numbers in its graph:
 fits of the same design (sampling times, schedules, what was measured) share one
@@ -35,7 +35,7 @@ import numpy as np
 
 from ..collocation import Block, Layout, element_function
 from ..model import Model, build_model
-from .derivatives import Assembled, Kind
+from ..derivatives import Assembled, Kind
 
 
 @dataclass
@@ -248,14 +248,14 @@ class FitNLP:
         self.n_w, self.n_g = W.size, g.shape[0]
         self._res_fun = ca.Function("res", [self.nlp["x"], self.nlp["p"]], [res])
         # what optfeed.solve hands to IPOPT: the same NLP with exact derivatives
-        # assembled from the pieces' own (see optfeed.fit.derivatives)
+        # assembled from the pieces' own (see optfeed.derivatives)
         assembled = self._assemble(f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index)
         self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": assembled.f, "g": assembled.g}
         self._solvers, self._derivatives = {}, assembled.functions
 
     def _assemble(self, f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index) -> Assembled:
         """The NLP as a sum of pieces (each element's collocation equations, each
-        measured value's squared weighted residual), for optfeed.fit.derivatives."""
+        measured value's squared weighted residual), for optfeed.derivatives."""
         m, d, n_theta = self.model, self.degree, len(self.estimated)
         nx, nu, nc = m.nx, m.nu, m.n_constants
         runs_x0, runs_c = self._run_x0, self._run_constants
