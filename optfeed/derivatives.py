@@ -17,6 +17,14 @@ A piece kind is (function, variable indices, inputs): ``function`` maps
 (z, *inputs) to its outputs, z the piece's variables; ``variable indices``
 (n_z x count) says which NLP variable each z entry is, -1 for an entry that is not
 a variable of the NLP (its derivatives are dropped).
+
+What is not worth writing as pieces (a few rows at the end of a run, an objective
+that combines scenarios) comes as a remainder: an expression of the NLP's variables
+that CasADi differentiates on its own graph. It must stay small and never reach
+the pieces' mapped calls, or its derivatives cost what the pieces save.
+
+Used by the calibration NLP (:mod:`optfeed.fit.transcription`) and by the
+optimizer's (:mod:`optfeed.transcription`).
 """
 
 from __future__ import annotations
@@ -91,9 +99,14 @@ class Assembled:
         Each piece's single output is a term of the objective.
     constraints : list of Kind
         Each piece's outputs are rows of g (``rows`` says which).
+    rest_f : casadi.MX, optional
+        A remainder of the objective (an expression of w and p).
+    rest_g, rest_rows : casadi.MX (n x 1) and int array (n,), optional
+        The rows of g that no piece gives, and where they land in g.
     """
 
-    def __init__(self, w: ca.MX, p: ca.MX, n_g: int, objective: list, constraints: list):
+    def __init__(self, w: ca.MX, p: ca.MX, n_g: int, objective: list, constraints: list,
+                 rest_f: ca.MX | None = None, rest_g: ca.MX | None = None, rest_rows=None):
         n_w = w.shape[0]
         lam_f = ca.MX.sym("lam_f")
         lam_g = ca.MX.sym("lam_g", n_g)
@@ -145,15 +158,21 @@ class Assembled:
             hess_vals.append(ca.vec(hvv))
             hess_r.append(kind.index[hr, :].ravel(order="F"))
             hess_c.append(kind.index[hc, :].ravel(order="F"))
-        f, f_d = sum(f_terms[1:], f_terms[0]), sum(f_terms_d[1:], f_terms_d[0])
+        if rest_f is not None:
+            f_terms.append(rest_f)
+            f_terms_d.append(rest_f)
+        f = sum(f_terms[1:], f_terms[0]) if f_terms else ca.MX(0)
+        f_d = sum(f_terms_d[1:], f_terms_d[0]) if f_terms_d else ca.MX(0)
         # gradient: a column of the n_w x 1 matrix; rows are variables
-        rows = np.concatenate(grad_rows)
+        rows = np.concatenate(grad_rows) if grad_rows else np.zeros(0, dtype=np.int64)
         sp_g, S_g = summing_matrix(n_w, 1, rows, np.zeros_like(rows))
-        grad = ca.densify(ca.MX(sp_g, ca.mtimes(S_g, ca.vertcat(*grad_vals))))
-        g_rows_all = np.concatenate(g_rows)
+        grad = ca.densify(ca.MX(sp_g, ca.mtimes(S_g, ca.vertcat(*grad_vals)))) if grad_rows else ca.MX.zeros(n_w)
+        rest_rows = np.zeros(0, dtype=np.int64) if rest_g is None else np.asarray(rest_rows, dtype=np.int64)
+        g_rows_all = np.concatenate(g_rows + [rest_rows])
         order = np.argsort(g_rows_all, kind="stable")
         assert np.array_equal(g_rows_all[order], np.arange(n_g)), "every row of g exactly once"
-        g, g_d = ca.vertcat(*g_vals)[order.tolist()], ca.vertcat(*g_vals_d)[order.tolist()]
+        rest = [] if rest_g is None else [rest_g]
+        g, g_d = ca.vertcat(*g_vals, *rest)[order.tolist()], ca.vertcat(*g_vals_d, *rest)[order.tolist()]
         sp_j, S_j = summing_matrix(n_g, n_w, np.concatenate(jac_r), np.concatenate(jac_c))
         jac = ca.MX(sp_j, ca.mtimes(S_j, ca.vertcat(*jac_vals)))
         hr, hc = np.concatenate(hess_r), np.concatenate(hess_c)
@@ -161,6 +180,18 @@ class Assembled:
         upper_r[(hr < 0) | (hc < 0)] = -1
         sp_h, S_h = summing_matrix(n_w, n_w, upper_r, upper_c)
         hess = ca.MX(sp_h, ca.mtimes(S_h, ca.vertcat(*hess_vals)))
+        # the remainder: CasADi's derivatives on its own (small) graph
+        lagrangian = ca.MX(0)
+        if rest_f is not None:
+            grad = grad + ca.gradient(rest_f, w)
+            lagrangian = lam_f * rest_f
+        if rest_g is not None and rest_rows.size:
+            place = ca.DM(ca.Sparsity.triplet(n_g, len(rest_rows), rest_rows.tolist(),
+                                              list(range(len(rest_rows)))), 1.0)
+            jac = jac + ca.mtimes(place, ca.jacobian(rest_g, w))
+            lagrangian = lagrangian + ca.dot(lam_g[rest_rows.tolist()], rest_g)
+        if rest_f is not None or rest_rows.size:
+            hess = hess + ca.triu(ca.hessian(lagrangian, w)[0])
         self.f, self.g = f, g
         self.functions = {
             "grad_f": ca.Function("nlp_grad_f", [w, p], [f_d, grad], ["x", "p"], ["f", "grad_f_x"]),

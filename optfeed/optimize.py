@@ -7,8 +7,7 @@ the answer does not depend on how busy the machine is):
    finite element per pump step): cheap, and each start settles in its own basin.
 2. **Refine the distinct optima that can win.** The best coarse answer is
    re-simulated and solved again on the fine grid, starting from that exact
-   trajectory (on the NLP's graph, unexpanded: a few iterations do not repay
-   expanding it; see ``_stage``); how far that moved its objective is the coarse
+   trajectory; how far that moved its objective is the coarse
    grid's error. Every other distinct coarse optimum within twice that error of
    the best is refined
    too (a heuristic: one further below overtakes the best only if its own grid
@@ -48,8 +47,8 @@ from .report.text import unit_words
 from .results import result_repr, result_trajectory_table
 from .schedule import piecewise_constant, round_schedule
 from .simulate import Simulator
-from .solve import (SHORT_SOLVE, Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard,
-                    interrupted, make_guesses, many_cases, models, scaling_for, solve, states_for)
+from .solve import (Guess, Scaling, Start, _solver, end_time_info, get_nlp, interrupt_guard,
+                    interrupted, make_guesses, models, scaling_for, solve, states_for)
 from .phases import (base_model, condition_function, decide, guess_switches, models_like, phase_constants,
                      phase_models)
 from .transcription import Grid, NLPData, plan_stretches
@@ -249,15 +248,6 @@ class _Answer:
     backoff: dict = field(default_factory=dict)
     label: str = ""
     pump: tuple | None = None  # step-by-step pump bounds, when an on/off pattern is fixed
-    # iterations of the solve that found start.w (start.iterations adds those of the
-    # solves before it, e.g. the answer before a back-off round); None: the same
-    own_iterations: int | None = None
-
-    @property
-    def last_iterations(self) -> int:
-        """IPOPT iterations of the last solve alone (what a warm start from this
-        answer is expected to need, at most)."""
-        return self.start.iterations if self.own_iterations is None else self.own_iterations
 
 
 class _Job:
@@ -744,10 +734,8 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
     coarse = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
     fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
     # build the solvers the starts use before they fork, so no process builds its own
-    # (the fine grid's first solves run on the NLP's graph, see _near_solve)
     _solver(coarse, "cold", s.tolerance, COARSE_ITER)
-    on_graph = _near_on_graph(fine, s.max_iter)
-    _solver(fine, "near", s.tolerance, SHORT_SOLVE if on_graph else s.max_iter, graph=on_graph)
+    _solver(fine, "near", s.tolerance, s.max_iter)
 
     # 1 and 2: every start on the coarse grid, then every distinct optimum on the fine grid
     workers = min(len(guesses), workers or cpu_count())
@@ -885,36 +873,11 @@ def _stage(task):
 
 def _near_solve(job, nlp, data, w0, label, max_iter, **kw) -> Start:
     """A solve from a point near its optimum without multipliers (a coarse optimum
-    re-simulated on the fine grid, a refined pump grid): profile 'near'.
-
-    From such a point the solve needs few iterations (13-42 on the published
-    problems), and for those the NLP's graph is the cheaper solver: built in a
-    fifth of the time of the expanded NLP (160 elements: 0.08-0.13 against
-    0.36-0.63 s), at two to four times the CPU per iteration; it pays most on a
-    new, larger grid (Park-Ramirez's 320 elements: 0.21 against 1.06 s to build,
-    31 iterations). A heuristic, with a fallback: on the graph (when the NLP is not
-    expanded yet) the solve is capped at SHORT_SOLVE iterations, and one not
-    converged by then carries on from where it stopped on the expanded NLP. A
-    process that keeps its solvers for case after case (a sweep's,
-    :func:`optfeed.solve.many_cases`) expands at once: it pays for that once."""
+    re-simulated on the fine grid, a refined pump grid): profile 'near' (13-42
+    iterations on the published problems)."""
     s = job.settings
-    common = dict(profile="near", tolerance=s.tolerance, deadline=job.deadline, report=job.report, **kw)
-    if not _near_on_graph(nlp, max_iter):
-        return solve(nlp, data, w0, label, max_iter=max_iter, **common)
-    first = solve(nlp, data, w0, label, max_iter=SHORT_SOLVE, graph=True, **common)
-    if first.status != "iteration limit":
-        return first
-    more = solve(nlp, data, first.w, label, max_iter=max_iter - first.iterations, **common)
-    more.iterations += first.iterations
-    more.seconds += first.seconds
-    return more
-
-
-def _near_on_graph(nlp, max_iter: int) -> bool:
-    """Whether :func:`_near_solve` starts on the NLP's graph: not in a process that
-    keeps its solvers for many cases, not once the NLP is expanded, and not for an
-    iteration budget of SHORT_SOLVE or less (solved expanded at once)."""
-    return not many_cases() and nlp._derivatives is None and max_iter > SHORT_SOLVE
+    return solve(nlp, data, w0, label, profile="near", tolerance=s.tolerance, max_iter=max_iter,
+                 deadline=job.deadline, report=job.report, **kw)
 
 
 _STAGE_JOB = None  # the job the stage workers see (set before forking)
@@ -1091,12 +1054,11 @@ def _verified(job, ans: _Answer, scaling) -> _Answer:
         data = job.data(scaling, trial, ans.pump)
         st_ = solve(ans.nlp, data, ans.start.w, ans.start.label + ", backed off", profile="warm",
                     tolerance=s.tolerance, max_iter=s.max_iter, warm=(ans.start.lam_g, ans.start.lam_x),
-                    deadline=job.deadline, report=job.report, expected_iterations=ans.last_iterations)
+                    deadline=job.deadline, report=job.report)
         if st_.status != "converged" or st_.objective is None:
             break
-        own = st_.iterations
         st_.iterations += ans.start.iterations
-        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump, own)
+        ans = _Answer(st_, ans.nlp, data, job.verify(ans.nlp, data, st_), trial, ans.label, ans.pump)
     return ans
 
 
@@ -1144,7 +1106,7 @@ def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:
             w0, lam_g, lam_x = moved
             st_ = solve(nlp, best.data, w0, label, profile="warm", tolerance=s.tolerance,
                         max_iter=min(s.max_iter, REFINE_ITER), warm=(lam_g, lam_x), deadline=job.deadline,
-                        report=job.report, expected_iterations=best.last_iterations)
+                        report=job.report)
         else:  # finer elements too: start from the simulated schedule, with a capped budget
             un = best.nlp.unpack(best.start.w, best.data)
             if nlp.phased:

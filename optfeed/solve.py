@@ -3,11 +3,10 @@
 Build once, solve many. :func:`get_nlp` returns the :class:`~optfeed.transcription.FeedNLP`
 of a problem's structure from a per-process cache, so starts, back-off rounds and the
 cases of a sweep that differ only in numbers reuse one graph. For each IPOPT option
-profile (a cold start, a warm start...) the NLP builds its solver once; the
-profiles share the expanded NLP and its derivatives, which are most of the cost. A
-solve expected to be short (a warm start next to the answer, :data:`SHORT_SOLVE`) on an
-NLP not yet expanded gets a solver on the NLP's graph instead, which is built in a
-tenth of the time and costs about twice as much per iteration.
+profile (a cold start, a warm start...) the NLP builds its solver once; every
+profile uses the NLP's own exact derivatives, assembled from its pieces' when the
+NLP is built (:mod:`optfeed.derivatives`), so a solver costs little to build and
+an iteration as little as on the NLP expanded to one scalar graph.
 
 Every solve is watched after each IPOPT iteration (:class:`Watch`): it reports
 progress, stops at a deadline (``--time-limit``) and stops at once on Ctrl-C, so an
@@ -234,23 +233,6 @@ def get_nlp(problem: Problem, model, limits, grid: Grid, free_time: bool, scenar
     return nlp
 
 
-# Whether this process solves case after case of one structure with the solvers it
-# keeps (a sweep's case process): then an NLP's expansion is paid once for every case,
-# and optimize expands the fine grid's NLP at once instead of solving its first,
-# short solves on the graph (optimize._stage). Set by the sweep's case runner.
-_MANY_CASES = False
-
-
-def expect_many_cases(many: bool) -> None:
-    """Say whether this process will solve many cases of the same structures."""
-    global _MANY_CASES
-    _MANY_CASES = bool(many)
-
-
-def many_cases() -> bool:
-    return _MANY_CASES
-
-
 def cache_info() -> dict:
     return {"entries": len(_CACHE), "solvers": sum(len(n._solvers) for n in _CACHE.values())}
 
@@ -259,43 +241,18 @@ def clear_cache() -> None:
     _CACHE.clear()
 
 
-# A solve expected to take fewer iterations than this, on an NLP whose expanded
-# derivatives are not built yet, gets a solver on the NLP's own graph: expanding and
-# differentiating costs about as much CPU as 50 of the graph's slower iterations
-# (measured on Park-Ramirez, 80 pump steps x 160 elements: 0.67 against 0.09 s to
-# build, about 9.5 against 20 ms per iteration). Pump-grid refinements from an exact
-# warm start take 13-40 iterations on the published problems, and so do the fine-grid
-# solves from a re-simulated coarse optimum (14-44; see optimize._stage).
-SHORT_SOLVE = 50
-
-
-def _solver(nlp: FeedNLP, profile: str, tolerance: float, max_iter: int, graph: bool = False):
-    """The built solver of ``nlp`` for this profile: on the expanded NLP (the
-    default), or on its graph (``graph``, when the expanded one is not built)."""
-    graph = graph and nlp._derivatives is None
-    key = (profile, tolerance, max_iter, graph)
+def _solver(nlp, profile: str, tolerance: float, max_iter: int):
+    """The built solver of ``nlp`` (a FeedNLP, or a calibration NLP) for this
+    profile, on the NLP's own values and its assembled derivatives."""
+    key = (profile, tolerance, max_iter)
     if key in nlp._solvers:
         return nlp._solvers[key]
     opts = ipopt_options(tolerance, profile, nlp.copies)
     opts["ipopt.max_iter"] = int(max_iter)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
     opts["iteration_callback"] = watch
-    if graph:
-        solver = ca.nlpsol(f"optfeed_{profile}_graph", "ipopt", nlp.nlp, opts)
-    else:
-        if nlp._derivatives is None:  # expanded once; the first solver makes the derivatives
-            F = ca.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
-            x = ca.SX.sym("x", nlp.nlp["x"].shape[0])
-            p = ca.SX.sym("p", nlp.nlp["p"].shape[0])
-            f, g = F(x, p)
-            nlp._sx = {"x": x, "p": p, "f": f, "g": g}
-            nlp._derivatives = {}
-        opts.update(nlp._derivatives)
-        solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
-        if not nlp._derivatives:  # the first solver made them; the others reuse them
-            nlp._derivatives = {"grad_f": solver.get_function("nlp_grad_f"),
-                                "jac_g": solver.get_function("nlp_jac_g"),
-                                "hess_lag": solver.get_function("nlp_hess_l")}
+    opts.update(nlp._derivatives)
+    solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
     nlp._solvers[key] = (solver, watch)
     return solver, watch
 
@@ -337,20 +294,16 @@ class Start:
 
 def solve(nlp: FeedNLP, data: NLPData, w0, label: str, *, profile: str = "cold", tolerance: float = 1e-8,
           max_iter: int = 3000, warm=None, deadline: float | None = None, report=None,
-          guess_objective=None, expected_iterations: int | None = None, graph: bool = False) -> Start:
+          guess_objective=None) -> Start:
     """One IPOPT solve from ``w0``; never raises for a solver failure.
 
     ``warm`` = (lam_g, lam_x), multipliers of a nearby solution (use with profile
     'warm'). ``deadline`` (time.monotonic) stops the solve ('time limit');
     ``report(label, iteration, objective, infeasibility)`` is called every few
     seconds with the NLP's own (scaled) objective and its largest constraint
-    violation (scaled rows). ``expected_iterations`` (e.g. those of the last solve
-    from a point as close): below SHORT_SOLVE, a new NLP is not expanded. ``graph``:
-    solve on the NLP's graph whenever its expanded solver is not built yet (the
-    caller expects a short solve and caps it, see ``optimize._stage``).
+    violation (scaled rows).
     """
-    short = graph or (expected_iterations is not None and expected_iterations < SHORT_SOLVE)
-    solver, watch = _solver(nlp, profile, tolerance, max_iter, graph=short)
+    solver, watch = _solver(nlp, profile, tolerance, max_iter)
     args = nlp.arguments(data)
     watch.reset(deadline, report, label=label, lbg=args["lbg"], ubg=args["ubg"])
     if warm is not None:

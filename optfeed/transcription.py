@@ -35,7 +35,8 @@ from dataclasses import dataclass, field
 import casadi as ca
 import numpy as np
 
-from .collocation import Block, Layout
+from .collocation import Block, Layout, element_function, radau_coefficients
+from .derivatives import Assembled, Kind
 from .limits import Limit, bound_scale, build_limits
 from .model import Model
 from .phases import condition_function, jump, phase_constants, phase_limits, phases_of
@@ -218,7 +219,6 @@ class FeedNLP:
         self.end_window = self._end_window()
         self._build()
         self._solvers = {}
-        self._derivatives = None
 
     # ------------------------------------------------------------------ build
     def _end_window(self) -> tuple:
@@ -349,24 +349,46 @@ class FeedNLP:
 
         g, groups = [], []
         row = 0
+        # rows that the assembled derivatives give piece by piece (see _assemble); the
+        # others are their remainder, differentiated by CasADi on their own graph
+        pieces, rest = [], []
 
-        def add(expr, grp_kind, name, scenario, **extra):
+        def keep(expr, idx, piece):
+            """Rows ``idx`` as pieces (``piece``: what _assemble needs to restate them;
+            its 'first' expression, the rows of a block's first element or pump step
+            when the block starts from an addition's jump, is left to the remainder)
+            or, without a piece, as part of the remainder."""
+            if piece is None:
+                rest.append((expr, idx))
+                return
+            first = piece.pop("first", None)
+            if first is not None:
+                rest.append((first, idx[:first.shape[0]]))
+            pieces.append(dict(piece, rows=idx))
+
+        def add(expr, grp_kind, name, scenario, piece=None, **extra):
             nonlocal row
             n = expr.shape[0]
             g.append(expr)
             idx = np.arange(row, row + n)
             groups.append(_RowGroup(grp_kind, name, idx, scenario, **extra))
+            keep(expr, idx, piece)
             row += n
             return idx
 
-        def add_limit_rows(vals, lims, n_cols, scenario):
+        def limit_scales(lims):
+            return ca.vertcat(*[scale_of[l.name] for l in lims])
+
+        def add_limit_rows(vals, lims, n_cols, scenario, piece=None):
             """Rows of limits ``lims`` evaluated at ``n_cols`` points (vals: L x n_cols)."""
             nonlocal row
             L = len(lims)
-            flat = ca.vec(vals / ca.repmat(ca.vertcat(*[scale_of[l.name] for l in lims]), 1, n_cols))
+            flat = ca.vec(vals / ca.repmat(limit_scales(lims), 1, n_cols))
             g.append(flat)
             for i, lim in enumerate(lims):
                 groups.append(_RowGroup("limit", lim.name, row + i + L * np.arange(n_cols), scenario))
+            idx = np.arange(row, row + flat.shape[0])
+            keep(flat, idx, piece)
             row += flat.shape[0]
 
         self.blocks, self.block_bounds, J_s = [], [], []
@@ -375,8 +397,10 @@ class FeedNLP:
         t_starts = [ca.MX(0.0)] if self.phased else [0.0]
         for i in range(1, len(self.stretches)):
             t_starts.append(t_starts[-1] + D[i - 1])
+        element_of = {q: element_function(fn["f"], d, nu) for q, fn in enumerate(funs)}
         for s in range(S):
             xa = x0[:, s]
+            start = ("x0", None)  # where the block's start state comes from (see _assemble)
             row_blocks = []
             for i, st in enumerate(self.stretches):
                 q = st.phase
@@ -395,19 +419,29 @@ class FeedNLP:
                 self.blocks.append(blk)
                 row_blocks.append(blk)
                 self.block_bounds.append((blk, fn["bounds"]))
-                add(blk.residuals, "model", "model equations", s)
+                # what _assemble needs to restate this block's rows piece by piece
+                piece = dict(q=q, s=s, i=i, start=start, X=W.indices(blk.var), fractions=blk.fractions,
+                             u_cols=offsets[i] + np.arange(Ni) // ki, ki=ki)
+                jumped = start[0] == "jump"
+                first = None
+                if jumped:  # the first element starts from the jump: its rows go to the remainder
+                    h0 = Di * (blk.fractions[1] - blk.fractions[0])
+                    first = ca.vec(element_of[q](xa, blk.X[:, :d], u_pts[:, :d], blk.t_points[:, :d], h0, p_q, xs))
+                add(blk.residuals, "model", "model equations", s, piece=dict(piece, what="model", first=first))
                 if fn["rows_lim"]:
                     vals = fn["g_pts"].map(Ni * d)(blk.t_points, blk.X, u_pts, p_q)
-                    add_limit_rows(vals, fn["rows_lim"], Ni * d, s)
+                    add_limit_rows(vals, fn["rows_lim"], Ni * d, s, piece=dict(piece, what="points"))
                 if fn["u_dep"]:
                     cols = [j * ki for j in range(Mi)]  # element that starts each pump step
                     vals = fn["g_steps"].map(Mi)(blk.t_start[:, cols], blk.x_start[:, cols], ui, p_q)
-                    add_limit_rows(vals, fn["u_dep"], Mi, s)
+                    first = (fn["g_steps"](blk.t_start[:, 0], xa, ui[:, 0], p_q) / limit_scales(fn["u_dep"])
+                             if jumped else None)
+                    add_limit_rows(vals, fn["u_dep"], Mi, s, piece=dict(piece, what="steps", first=first))
                 if fn["until"] is not None:
                     # the phase goes on (distance >= 0) at its points, and ends where it reaches 0
                     vals = fn["until"].map(Ni * d)(blk.t_points, blk.X, u_pts, p_q) / fn["until_scale"]
                     add(ca.vec(vals), "timing", f"phase {self.phases[q].name} goes on", s, lower=0.0,
-                        upper=np.inf)
+                        upper=np.inf, piece=dict(piece, what="until"))
                 st_end = st.end
                 if st_end[0] == "phase" and fn["until"] is not None:
                     last = fn["until"](t_starts[i] + Di, blk.x_end, ui[:, Mi - 1], p_q) / fn["until_scale"]
@@ -415,8 +449,10 @@ class FeedNLP:
                 if st_end[0] == "addition":
                     xa = jump(self.phase_models[q], self.model.problem.additions[st_end[1]], blk.x_end,
                               chosen_of.get(st_end[1]))
+                    start = ("jump", piece["X"][:, -1])
                 else:
                     xa = blk.x_end
+                    start = ("var", piece["X"][:, -1])
             self.stretch_blocks.append(row_blocks)
             last_blk = row_blocks[-1]
             q_last = self.stretches[-1].phase
@@ -478,6 +514,140 @@ class FeedNLP:
         self.n_w = W.size
         self._J_fun = ca.Function("J", [self.nlp["x"], self.nlp["p"]], [self.J_combined, self.J_scenarios])
         self._g_fun = None
+        syms = dict(const=const, x0=x0, xs=xs, us=us, time=ts if (self.phased or self.free_time) else T,
+                    scale_of=scale_of)
+        assembled = self._assemble(funs, syms, obj, pieces, rest)
+        # what optfeed.solve hands to IPOPT: the NLP's own values, the assembled derivatives
+        self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": obj, "g": self.nlp["g"]}
+        self._derivatives = assembled.functions
+
+    def _assemble(self, funs: list, syms: dict, obj, pieces: list, rest: list) -> Assembled:
+        """Exact derivatives of the NLP assembled from its pieces' own
+        (:mod:`optfeed.derivatives`): every element's collocation equations and
+        every row of a limit or a phase's condition at a collocation point or a pump
+        step's start, each kind differentiated once as a small function of its own
+        variables and mapped over all of its kind (every block, every scenario).
+        What is left (the end of the run, the objective, the time line's rows, the
+        first element after an addition's jump) is small and differentiated by
+        CasADi on its own graph.
+
+        The pieces restate what :class:`~optfeed.collocation.Block` and ``_build``
+        write as one graph (the definition); tests/test_transcription.py compares
+        the two.
+        """
+        m, d = self.model, self.grid.degree
+        nx, nu, nc = m.nx, m.nu, m.n_constants
+        W = self.W
+        u_idx = W.indices("u")
+        if self.phased:
+            t_idx = W.indices("D").ravel()
+        else:
+            t_idx = W.indices("T").ravel() if self.free_time else np.zeros(0, dtype=np.int64)
+        n_t = len(t_idx)
+        tau = radau_coefficients(d)[0][1:]
+
+        # one piece's symbols: its variables and its inputs
+        prev, own, u, zt = ca.SX.sym("prev", nx), ca.SX.sym("X", nx * d), ca.SX.sym("u", nu), ca.SX.sym("T", n_t)
+        x_pt = ca.SX.sym("x", nx)
+        x0, first, c = ca.SX.sym("x0", nx), ca.SX.sym("first"), ca.SX.sym("c", nc)
+        xs, us, tq = ca.SX.sym("xs", nx), ca.SX.sym("us", nu), ca.SX.sym("tq")
+        frac, dfr, a0, a1 = ca.SX.sym("fr"), ca.SX.sym("dfr"), ca.SX.sym("a0", n_t), ca.SX.sym("a1", n_t)
+        # the block's start and duration (h): tq is t_scale where time is a variable,
+        # else the fixed end time; a0 and a1 pick the durations before the block and its own
+        t0 = tq * ca.dot(a0, zt) if n_t else ca.SX(0)
+        dur = tq * ca.dot(a1, zt) if n_t else tq
+        x_start = first * x0 + (1 - first) * prev * xs
+        uu = u * us
+        common_sym = [xs, us, tq]
+
+        def time_masks(i):
+            if self.phased:
+                return [float(j < i) for j in range(n_t)], [float(j == i) for j in range(n_t)]
+            return [0.0] * n_t, [1.0] * n_t
+
+        def prev_of(pc, e):  # the variables of element e's start state (-1: the initial state)
+            if e > 0:
+                return pc["X"][:, e * d - 1]
+            return np.full(nx, -1) if pc["start"][0] == "x0" else pc["start"][1]
+
+        groups = {}
+        for pc in pieces:
+            groups.setdefault((pc["what"], pc["q"]), []).append(pc)
+        kinds = []
+        for (what, q), pcs in groups.items():
+            fn, pm, ph = funs[q], self.phase_models[q], self.phases[q]
+            p = phase_constants(pm, ph, c)
+            index, num, mx_cols, rows = [], [], [], []  # per column: variables, numeric inputs, (x0, c), rows
+            for pc in pcs:
+                s, fr = pc["s"], pc["fractions"]
+                m0, m1 = time_masks(pc["i"])
+                skip = pc["start"][0] == "jump"  # its first element or step is in the remainder
+                if what == "model":
+                    n_e = len(fr) - 1
+                    es = range(1 if skip else 0, n_e)
+                    for e in es:
+                        index.append(np.concatenate([prev_of(pc, e), pc["X"][:, e * d:(e + 1) * d].ravel(order="F"),
+                                                     u_idx[:, pc["u_cols"][e]], t_idx]))
+                        num.append([float(e == 0 and pc["start"][0] == "x0"), fr[e], fr[e + 1] - fr[e], *m0, *m1])
+                    rows.append(pc["rows"][len(pc["rows"]) - len(es) * nx * d:].reshape(len(es), nx * d).T)
+                    count = len(es)
+                elif what in ("points", "until"):
+                    n_p = pc["X"].shape[1]
+                    t_frac = (fr[:-1, None] + tau[None, :] * np.diff(fr)[:, None]).ravel()
+                    for k in range(n_p):
+                        index.append(np.concatenate([pc["X"][:, k], u_idx[:, pc["u_cols"][k // d]], t_idx]))
+                        num.append([t_frac[k], *m0, *m1])
+                    rows.append(pc["rows"].reshape(n_p, -1).T)
+                    count = n_p
+                else:  # "steps": at each pump step's start (the start of every ki-th element)
+                    ki = pc["ki"]
+                    js = range(1 if skip else 0, len(pc["u_cols"]) // ki)
+                    for j in js:
+                        e = j * ki
+                        index.append(np.concatenate([prev_of(pc, e), u_idx[:, pc["u_cols"][e]], t_idx]))
+                        num.append([float(e == 0 and pc["start"][0] == "x0"), fr[e], *m0, *m1])
+                    L = len(fn["u_dep"])
+                    rows.append(pc["rows"][len(pc["rows"]) - len(js) * L:].reshape(len(js), L).T)
+                    count = len(js)
+                if count:
+                    mx_cols.append((ca.repmat(syms["x0"][:, s], 1, count), ca.repmat(syms["const"][:, s], 1, count)))
+            if not index:
+                continue
+            total = len(index)
+            index, num = np.array(index).T, np.array(num).T
+            x0_in = ca.horzcat(*[a for a, _ in mx_cols])
+            c_in = ca.horzcat(*[b for _, b in mx_cols])
+            common = [ca.repmat(syms[k], 1, total) for k in ("xs", "us", "time")]
+            if what == "model":
+                R = element_function(fn["f"], d, nu)(
+                    x_start, ca.reshape(own, nx, d) * ca.repmat(xs, 1, d), ca.repmat(uu, 1, d),
+                    (t0 + dur * (frac + ca.DM(tau) * dfr)).T, dur * dfr, p, xs)
+                fun = ca.Function("collocation", [ca.vertcat(prev, own, u, zt), x0, first, frac, dfr, a0, a1, c,
+                                                  *common_sym], [ca.vec(R)])
+                inputs = [x0_in, *numeric(num, 3, n_t, total), c_in, *common]
+            elif what in ("points", "until"):
+                if what == "points":
+                    sc = ca.SX.sym("scale", len(fn["rows_lim"]))
+                    vals = fn["g_pts"](t0 + dur * frac, x_pt * xs, uu, p) / sc
+                    extra_sym, extra_in = [sc], [ca.repmat(syms_scales(syms, fn["rows_lim"]), 1, total)]
+                else:
+                    vals = fn["until"](t0 + dur * frac, x_pt * xs, uu, p) / fn["until_scale"]
+                    extra_sym, extra_in = [], []
+                fun = ca.Function(what, [ca.vertcat(x_pt, u, zt), frac, a0, a1, c, *common_sym, *extra_sym], [vals])
+                inputs = [*numeric(num, 1, n_t, total), c_in, *common, *extra_in]
+            else:
+                sc = ca.SX.sym("scale", len(fn["u_dep"]))
+                vals = fn["g_steps"](t0 + dur * frac, x_start, uu, p) / sc
+                fun = ca.Function("steps", [ca.vertcat(prev, u, zt), x0, first, frac, a0, a1, c, *common_sym, sc],
+                                  [vals])
+                inputs = [x0_in, *numeric(num, 2, n_t, total), c_in, *common,
+                          ca.repmat(syms_scales(syms, fn["u_dep"]), 1, total)]
+            kinds.append(Kind(fun, index, inputs, rows=np.hstack(rows)))
+        rest_g = ca.vertcat(*[e for e, _ in rest]) if rest else None
+        rest_rows = np.concatenate([r for _, r in rest]) if rest else np.zeros(0, dtype=np.int64)
+        self.remainder_rows = rest_rows
+        return Assembled(self.nlp["x"], self.nlp["p"], self.n_g, [], kinds, rest_f=obj, rest_g=rest_g,
+                         rest_rows=rest_rows)
 
     # ------------------------------------------------------------------ numbers of a solve
     def parameters(self, data: NLPData) -> np.ndarray:
@@ -832,6 +1002,20 @@ class FeedNLP:
                 lam = np.append(lam, min(last, 0.0))
             add("end time", lam, data.t_scale)
         return {n: (_gain(self.sense, a), _gain(self.sense, b)) for n, (a, b) in sums.items()}
+
+
+def numeric(num: np.ndarray, scalars: int, n_t: int, count: int) -> list:
+    """Numeric inputs of ``count`` pieces from ``num`` (rows: ``scalars`` scalar
+    inputs, then the two time masks of ``n_t`` rows each): one matrix per input."""
+    out = [ca.DM(num[k][None, :]) for k in range(scalars)]
+    for k in range(2):
+        out.append(ca.DM(num[scalars + k * n_t: scalars + (k + 1) * n_t, :]) if n_t else ca.DM(0, count))
+    return out
+
+
+def syms_scales(syms: dict, lims) -> ca.MX:
+    """The row scales (NLP parameters) of limits ``lims``, as a column."""
+    return ca.vertcat(*[syms["scale_of"][l.name] for l in lims])
 
 
 def _pump_scale(data: NLPData) -> np.ndarray:

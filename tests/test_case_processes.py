@@ -9,9 +9,8 @@ sweeps stopped from outside.
   process whose cache was cleared first).
 * A sweep's case processes build their solvers once, not once per case (counted at
   CasADi's nlpsol, the call that builds an IPOPT solver).
-* A one-off optimize solves on the fine grid on the NLP's graph, and a solve cut
-  short there carries on on the expanded NLP to the same optimum (reference: the
-  run with the NLP expanded from the start, IPOPT's tolerance).
+* A solver on the NLP's assembled derivatives meets the optimum that a solver on
+  the same NLP expanded and differentiated by CasADi meets (IPOPT's tolerance).
 * SIGTERM and Ctrl-C stop a sweep with exit code 130, leave no case process behind,
   and the same command completes it without computing a finished case again.
 
@@ -147,9 +146,10 @@ def test_a_kept_solver_answers_a_changed_parameter_as_a_fresh_one(tmp_path, monk
     assert abs(kept.objective_nlp - optfeed.optimize(path, workers=1).objective_nlp) > 1e-3 * kept.objective_nlp
 
 
-def test_a_solver_on_the_nlp_graph_answers_as_the_expanded_one(tmp_path):
-    # the same NLP, its derivatives taken on the graph or on the expansion: IPOPT
-    # meets the same optimum (tolerance 1e-8)
+def test_a_solver_on_the_assembled_derivatives_answers_as_casadi_s_expanded_nlp(tmp_path):
+    # the same NLP, its derivatives assembled from its pieces (what optfeed hands to
+    # IPOPT) or taken by CasADi on the NLP expanded to one scalar graph (reference):
+    # IPOPT meets the same optimum (tolerance 1e-8), with the same options
     from optfeed.optimize import _Job
     from optfeed.transcription import Grid
 
@@ -162,51 +162,16 @@ def test_a_solver_on_the_nlp_graph_answers_as_the_expanded_one(tmp_path):
     data = job.data(solve.scaling_for(problem, job.lean, [guess], job.full))
     nlp = job.nlp(Grid(10, 20, 3))
     w0 = nlp.pack(data, guess.steps_u, guess.T, guess.times, solve.states_for(job.lean, job.full, guess.states))
-    on_graph = solve.solve(nlp, data, w0, "graph", expected_iterations=1)
-    assert nlp._derivatives is None  # nothing was expanded
-    expanded = solve.solve(nlp, data, w0, "expanded")
-    assert nlp._derivatives is not None
-    assert on_graph.status == expanded.status == "converged"
-    assert on_graph.objective == pytest.approx(expanded.objective, rel=1e-8)
-    assert np.max(np.abs(on_graph.w - expanded.w)) <= 1e-6  # scaled variables, near 1
-
-
-def _fine_nlps():
-    """The fine-grid NLPs in this process's cache (more elements than pump steps)."""
-    return [n for n in solve._CACHE.values() if n.grid.elements > n.grid.pump_steps]
-
-
-def test_a_fine_solve_cut_short_on_the_graph_carries_on_expanded_to_the_same_answer(tmp_path, monkeypatch):
-    # the fine grid's first solve runs on the NLP's graph, capped at SHORT_SOLVE
-    # iterations; one that needs more carries on from where it stopped on the
-    # expanded NLP. Reference: the same run with the fine NLP expanded from the start
-    # (as in a sweep's case process), the same optimum to IPOPT's tolerance (1e-8)
-    job = sys.modules["optfeed.optimize"]  # the module (the package binds the name to the function)
-    path = tmp_path / "tiny.yaml"
-    path.write_text(TINY)
-    solve.clear_cache()
-    solve.expect_many_cases(True)
-    try:
-        expanded = optfeed.optimize(path, workers=1)
-    finally:
-        solve.expect_many_cases(False)
-    assert all(n._derivatives is not None for n in _fine_nlps())
-    solve.clear_cache()
-    on_graph = optfeed.optimize(path, workers=1)
-    assert _fine_nlps() and all(n._derivatives is None for n in _fine_nlps())  # never expanded
-    solve.clear_cache()
-    monkeypatch.setattr(job, "SHORT_SOLVE", 2)
-    solves, real = [], job.solve
-    monkeypatch.setattr(job, "solve", lambda *a, **k: solves.append((a[3], k.get("graph", False))) or real(*a, **k))
-    cut = optfeed.optimize(path, workers=1)
-    assert all(n._derivatives is not None for n in _fine_nlps())  # the fallback expanded it
-    # it carried on: the fine solve on the graph, then on the expanded NLP, never a cold restart
-    assert any(g for _, g in solves) and not any(label.endswith("(cold restart)") for label, _ in solves)
-    for r in (on_graph, cut):
-        assert r.status == expanded.status == "optimal, verified", r.message
-        assert r.objective_nlp == pytest.approx(expanded.objective_nlp, rel=1e-7)
-        assert np.max(np.abs(r.points["u"] - expanded.points["u"])) <= 1e-5 * 0.1  # L/h, of a 0.1 L/h pump
-    solve.clear_cache()
+    ours = solve.solve(nlp, data, w0, "assembled")
+    F = casadi.Function("nlp", [nlp.nlp["x"], nlp.nlp["p"]], [nlp.nlp["f"], nlp.nlp["g"]]).expand()
+    x, p = casadi.SX.sym("x", nlp.n_w), casadi.SX.sym("p", nlp.P.size)
+    f, g = F(x, p)
+    reference = casadi.nlpsol("reference", "ipopt", {"x": x, "p": p, "f": f, "g": g},
+                              solve.ipopt_options(problem.settings.tolerance, "cold"))
+    ref = reference(x0=w0, **nlp.arguments(data))
+    assert ours.status == "converged" and reference.stats()["success"]
+    assert ours.objective == pytest.approx(nlp.objective_value(np.array(ref["x"]).ravel(), data), rel=1e-8)
+    assert np.max(np.abs(ours.w - np.array(ref["x"]).ravel())) <= 1e-6  # scaled variables, near 1
 
 
 _NLPSOL = casadi.nlpsol

@@ -91,7 +91,6 @@ def _run_case(task: Task) -> dict:
     from ..provenance import problem_digest
     from ..report import write_check_run, write_optimize_run
     from ..schedule import load_schedule
-    from ..solve import expect_many_cases
     from .outputs import PHASE_END, limit_figures
 
     t0 = time.perf_counter()
@@ -103,7 +102,6 @@ def _run_case(task: Task) -> dict:
     remove_entry(target)  # landed by an earlier run of a case run again (--retry-failed)
     problem = problem_from_data(task.data, task.source)
     if task.job == "optimize":
-        expect_many_cases(not task.fresh_process)  # a kept case process: its solvers serve the next cases
         r = optimize(problem, workers=1)
         write_optimize_run(r, staged)
         figures = {"objective_nlp": r.objective_nlp, "spread": r.spread}
