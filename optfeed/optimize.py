@@ -791,7 +791,7 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
 
     # 4: a pump grid fine enough
     if best is not None and s.refine_grid and not _stop_now(job):
-        best = _refine_grid(job, best, scaling, record)
+        best = _refine_with_rivals(job, best, converged, fine, data, scaling, record)
 
     # 5: pumps as they are: off, or at least their minimum setting
     if best is not None and any(f.min_on > f.min_rate for f in problem.feeds) and not _stop_now(job):
@@ -1071,6 +1071,42 @@ def next_change(changes) -> float | None:
     if len(changes) < 2 or not 0 < changes[-1] < changes[-2]:
         return None
     return changes[-1] * changes[-1] / changes[-2]
+
+
+def _refine_with_rivals(job, best: _Answer, converged, fine, data, scaling, record) -> _Answer:
+    """Refine the best answer's pump grid (:func:`_refine_grid`), then every other
+    distinct fine-grid optimum that the refinement's own gain could let overtake it
+    (within REFINE_WITHIN times that gain below the best before refining), verified
+    first; the best refined answer wins. Local optima of one problem gain unequally
+    from a finer pump grid: on Park-Ramirez two fine optima 0.012 % apart ended
+    0.14 % apart, the lower one ahead, after refinement."""
+    before = best.start.objective
+    best = _refine_grid(job, best, scaling, record)
+    gain = abs(best.start.objective - before) / max(abs(best.start.objective), 1e-12)
+    if not job.better(best.start.objective, before):
+        return best
+    rivals, seen = [], [before]
+    for fs, _ in sorted(converged, key=lambda c: job.sense * c[0].objective):
+        short = abs(before - fs.objective) / max(abs(before), 1e-12)
+        if job.better(fs.objective, before) or short >= REFINE_WITHIN * gain:
+            continue
+        if any(abs(fs.objective - o) <= DISTINCT_REL * max(abs(o), 1e-12) for o in seen):
+            continue  # the best's own optimum, or one already taken
+        seen.append(fs.objective)
+        rivals.append(fs)
+    for fs in rivals:
+        if _stop_now(job):
+            break
+        ans = _verified(job, _Answer(fs, fine, data, label=fs.label), scaling)
+        if not ans.verification.verified:
+            continue
+        own = {}
+        ans = _refine_grid(job, ans, scaling, own)
+        record["rivals_refined"] = record.get("rivals_refined", 0) + 1
+        if job.better(ans.start.objective, best.start.objective):
+            best = ans
+            record.update(own)
+    return best
 
 
 def _refine_grid(job, best: _Answer, scaling, record) -> _Answer:

@@ -30,8 +30,9 @@ def test_the_demo_reaches_its_better_optimum_from_defaults(optimized):
     assert r.objective_sim >= 62.99  # the better local optimum; the earlier default found 62.03
     assert r.record["local_optima_coarse"] >= 2  # it met more than one local optimum on the way
     # coarse optima too far below the best to overtake it were not refined, and say so
+    # (each on the starts that met it: one optimum may be met by several starts)
     left_out = [s for s in r.starts if "coarse grid only: too far below" in s.label]
-    assert len(left_out) == r.record.get("coarse_optima_not_refined", 0) >= 1
+    assert 1 <= r.record.get("coarse_optima_not_refined", 0) <= len(left_out)
     assert all(s.objective < r.objective_nlp for s in left_out)
 
 

@@ -301,6 +301,11 @@ class FitNLP:
                               rows=start + np.arange(n_c * n_theta).reshape(n_c, n_theta).T))
         return Assembled(self.nlp["x"], self.nlp["p"], self.n_g, terms, kinds)
 
+    def derivatives(self) -> dict:
+        """IPOPT's derivative Functions (grad_f, jac_g, hess_lag) for nlpsol, as
+        assembled (expanding them to scalar graphs made the 8-run fits slower)."""
+        return self._derivatives
+
     def data(self, runs, sigma, lower, upper, scale, x_scale) -> FitData:
         """The numbers of a solve for ``runs`` (of this NLP's structure);
         ``sigma(quantity, measured values)`` gives the standard deviations;
