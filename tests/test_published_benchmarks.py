@@ -46,6 +46,11 @@ def test_reaches_best_known_optimum(name, best_known, tf, rel, optimized):
     assert r.objective_nlp == pytest.approx(best_known, rel=rel)
     if name == "lee_ramirez.yaml":
         assert r.objective_sim >= LEE_RAMIREZ_REFERENCE * (1 - 1e-4)
+    if name == "park_ramirez.yaml":
+        # within 0.1 % of the best-known optimum (or above it: a finer pump grid than
+        # Luus's), not the 80-step answer of a local optimum that a finer grid helps
+        # less (32.650: the rival optimum's grid must be refined too)
+        assert r.objective_sim >= best_known * (1 - 1e-3)
     if tf is not None:
         assert r.end_time == pytest.approx(tf, abs=1.0)
     assert r.exit_code == 0
