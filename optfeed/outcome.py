@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -43,8 +44,10 @@ class Outcome:
         return next(f for f in self.finals if f.label == label)
 
 
+@functools.lru_cache(maxsize=64)
 def extensive_unit(unit: str) -> str:
-    """Unit of (a concentration in ``unit``) times litres: g/L -> g, mmol/L -> mmol."""
+    """Unit of (a concentration in ``unit``) times litres: g/L -> g, mmol/L -> mmol
+    (cached: a Monte Carlo asks for the same few units for every sample)."""
     dims = (UREG.Quantity(1, unit) * UREG.Quantity(1, "L")).dimensionality
     if dims == UREG.Quantity(1, "g").dimensionality:
         return "g"

@@ -384,14 +384,11 @@ class FeedNLP:
             row += n
             return idx
 
-        def limit_scales(lims):
-            return ca.vertcat(*[scale_of[l.name] for l in lims])
-
         def add_limit_rows(vals, lims, n_cols, scenario, piece=None):
             """Rows of limits ``lims`` evaluated at ``n_cols`` points (vals: L x n_cols)."""
             nonlocal row
             L = len(lims)
-            flat = ca.vec(vals / ca.repmat(limit_scales(lims), 1, n_cols))
+            flat = ca.vec(vals / ca.repmat(row_scales(scale_of, lims), 1, n_cols))
             g.append(flat)
             for i, lim in enumerate(lims):
                 groups.append(_RowGroup("limit", lim.name, row + i + L * np.arange(n_cols), scenario))
@@ -442,7 +439,7 @@ class FeedNLP:
                 if fn["u_dep"]:
                     cols = [j * ki for j in range(Mi)]  # element that starts each pump step
                     vals = fn["g_steps"].map(Mi)(blk.t_start[:, cols], blk.x_start[:, cols], ui, p_q)
-                    first = (fn["g_steps"](blk.t_start[:, 0], xa, ui[:, 0], p_q) / limit_scales(fn["u_dep"])
+                    first = (fn["g_steps"](blk.t_start[:, 0], xa, ui[:, 0], p_q) / row_scales(scale_of, fn["u_dep"])
                              if jumped else None)
                     add_limit_rows(vals, fn["u_dep"], Mi, s, piece=dict(piece, what="steps", first=first))
                 if fn["until"] is not None:
@@ -648,7 +645,7 @@ class FeedNLP:
                 if what == "points":
                     sc = ca.SX.sym("scale", len(fn["rows_lim"]))
                     vals = fn["g_pts"](t0 + dur * frac, x_pt * xs, uu, p) / sc
-                    extra_sym, extra_in = [sc], [ca.repmat(syms_scales(syms, fn["rows_lim"]), 1, total)]
+                    extra_sym, extra_in = [sc], [ca.repmat(row_scales(syms["scale_of"], fn["rows_lim"]), 1, total)]
                 else:
                     vals = fn["until"](t0 + dur * frac, x_pt * xs, uu, p) / fn["until_scale"]
                     extra_sym, extra_in = [], []
@@ -660,7 +657,7 @@ class FeedNLP:
                 fun = ca.Function("steps", [ca.vertcat(prev, u, zt), x0, first, frac, a0, a1, c, *common_sym, sc],
                                   [vals])
                 inputs = [x0_in, *numeric(num, 2, n_t, total), c_in, *common,
-                          ca.repmat(syms_scales(syms, fn["u_dep"]), 1, total)]
+                          ca.repmat(row_scales(syms["scale_of"], fn["u_dep"]), 1, total)]
             kinds.append(Kind(fun, index, inputs, rows=np.hstack(rows)))
         rest_g = ca.vertcat(*[e for e, _ in rest]) if rest else None
         rest_rows = np.concatenate([r for _, r in rest]) if rest else np.zeros(0, dtype=np.int64)
@@ -1032,9 +1029,10 @@ def numeric(num: np.ndarray, scalars: int, n_t: int, count: int) -> list:
     return out
 
 
-def syms_scales(syms: dict, lims) -> ca.MX:
-    """The row scales (NLP parameters) of limits ``lims``, as a column."""
-    return ca.vertcat(*[syms["scale_of"][l.name] for l in lims])
+def row_scales(scale_of: dict, lims) -> ca.MX:
+    """The row scales (NLP parameters, by limit name in ``scale_of``) of limits
+    ``lims``, as a column."""
+    return ca.vertcat(*[scale_of[l.name] for l in lims])
 
 
 def _pump_scale(data: NLPData) -> np.ndarray:

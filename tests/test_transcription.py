@@ -100,15 +100,18 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path, free, sce
     assert_same_derivatives(nlp_of(tmp_path, free, scenarios=scenarios, combine=combine, smoothing=smoothing))
 
 
+TIMED = ("mu: monod(S, mu_max, K_s)", "mu: monod(S, mu_max, K_s) * (1 + 0.01 * t)")  # growth that depends on t
+
+
 @pytest.mark.parametrize("name,text", [
     # a batch phase that ends when the substrate runs low (a condition's rows at every point)
-    ("batch_then_feed", BATCH_THEN_FEED.replace("mu: monod(S, mu_max, K_s)", "mu: monod(S, mu_max, K_s) * (1 + 0.01 * t)")),
+    ("batch_then_feed", BATCH_THEN_FEED.replace(*TIMED)),
     # other constants and rates after induction, samples every 3 h (state jumps), a free end
     ("induction", INDUCTION.format(tag="a", until="{between: [3 h, 8 h]}").replace(
         "horizon: {end_time: 16 h}", "horizon: {end_time: {min: 10 h, max: 20 h, guess: 15 h}}").replace(
         "solver: {", "additions:\n  - {sample: 10 mL, every: 3 h}\nsolver: {")),
     # a bolus whose amount optimize chooses (a jump with a decision in it)
-    ("bolus", BOLUS.replace("mu: monod(S, mu_max, K_s)", "mu: monod(S, mu_max, K_s) * (1 + 0.01 * t)")),
+    ("bolus", BOLUS.replace(*TIMED)),
 ])
 def test_assembled_derivatives_of_a_run_with_phases_and_additions(tmp_path, name, text):
     path = tmp_path / f"{name}.yaml"
