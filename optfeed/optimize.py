@@ -21,7 +21,9 @@ the answer does not depend on how busy the machine is):
 4. **A grid fine enough.** Unless the pump grid is the user's own, the pump grid is
    doubled (warm-started) until the objective changes by less than
    ``solver.grid_tolerance``, or until two shrinking changes predict that the next
-   doubling would; the last change is reported as the grid's gap.
+   doubling would; the last change is reported as the grid's gap. Another verified
+   fine optimum that lies less than twice the best's refinement gain below it is
+   refined too, and the better refined answer wins (local optima gain unequally).
 """
 
 from __future__ import annotations
