@@ -966,12 +966,17 @@ def _worth_refining(job, groups, coarse_starts, best_fine):
     if best_fine.status != "converged" or best_fine.objective is None:
         return groups, []
     error = abs(best_fine.objective - first.objective)
-    reach = REFINE_WITHIN * error + DISTINCT_REL * abs(first.objective)
     refine, skipped = groups[:1], []
     for g in groups[1:]:
-        behind = job.sense * (coarse_starts[g[0]].objective - first.objective)
-        (refine if behind <= reach else skipped).append(g)
+        (refine if _within_reach(job, first.objective, coarse_starts[g[0]].objective, error) else skipped).append(g)
     return refine, skipped
+
+
+def _within_reach(job, best: float, other: float, error: float) -> bool:
+    """Whether an optimum at objective ``other`` lies close enough behind the best's
+    (``best``) that a grid error of ``error`` (what refining moved the best) could
+    let it overtake: within REFINE_WITHIN times that error (plus DISTINCT_REL)."""
+    return job.sense * (other - best) <= REFINE_WITHIN * error + DISTINCT_REL * abs(best)
 
 
 def _summaries(job, guesses, coarse_starts, groups, fine_starts, skipped=()):
@@ -1078,19 +1083,18 @@ def next_change(changes) -> float | None:
 def _refine_with_rivals(job, best: _Answer, converged, fine, data, scaling, record) -> _Answer:
     """Refine the best answer's pump grid (:func:`_refine_grid`), then every other
     distinct fine-grid optimum that the refinement's own gain could let overtake it
-    (within REFINE_WITHIN times that gain below the best before refining), verified
+    (:func:`_within_reach`, the rule that picks the coarse optima to refine), verified
     first; the best refined answer wins. Local optima of one problem gain unequally
     from a finer pump grid: on Park-Ramirez two fine optima 0.012 % apart ended
     0.14 % apart, the lower one ahead, after refinement."""
     before = best.start.objective
     best = _refine_grid(job, best, scaling, record)
-    gain = abs(best.start.objective - before) / max(abs(best.start.objective), 1e-12)
     if not job.better(best.start.objective, before):
         return best
+    gain = abs(best.start.objective - before)
     rivals, seen = [], [before]
     for fs, _ in sorted(converged, key=lambda c: job.sense * c[0].objective):
-        short = abs(before - fs.objective) / max(abs(before), 1e-12)
-        if job.better(fs.objective, before) or short >= REFINE_WITHIN * gain:
+        if job.better(fs.objective, before) or not _within_reach(job, before, fs.objective, gain):
             continue
         if any(abs(fs.objective - o) <= DISTINCT_REL * max(abs(o), 1e-12) for o in seen):
             continue  # the best's own optimum, or one already taken

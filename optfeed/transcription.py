@@ -402,7 +402,6 @@ class FeedNLP:
         t_starts = [ca.MX(0.0)] if self.phased else [0.0]
         for i in range(1, len(self.stretches)):
             t_starts.append(t_starts[-1] + D[i - 1])
-        element_of = {q: element_function(fn["f"], d, nu) for q, fn in enumerate(funs)}
         for s in range(S):
             xa = x0[:, s]
             start = ("x0", None)  # where the block's start state comes from (see _assemble)
@@ -431,7 +430,8 @@ class FeedNLP:
                 first = None
                 if jumped:  # the first element starts from the jump: its rows go to the remainder
                     h0 = Di * (blk.fractions[1] - blk.fractions[0])
-                    first = ca.vec(element_of[q](xa, blk.X[:, :d], u_pts[:, :d], blk.t_points[:, :d], h0, p_q, xs))
+                    first = ca.vec(element_function(fn["f"], d, nu)(xa, blk.X[:, :d], u_pts[:, :d],
+                                                                    blk.t_points[:, :d], h0, p_q, xs))
                 add(blk.residuals, "model", "model equations", s, piece=dict(piece, what="model", first=first))
                 if fn["rows_lim"]:
                     vals = fn["g_pts"].map(Ni * d)(blk.t_points, blk.X, u_pts, p_q)
@@ -523,7 +523,7 @@ class FeedNLP:
                     scale_of=scale_of)
         assembled = self._assemble(funs, syms, obj, pieces, rest)
         # what optfeed.solve hands to IPOPT: the NLP's own values, the assembled derivatives
-        self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": obj, "g": self.nlp["g"]}
+        self._sx = self.nlp
         self._derivatives = assembled.functions
         self._expanded = None
 
