@@ -241,12 +241,40 @@ def clear_cache() -> None:
     _CACHE.clear()
 
 
+# glibc hands a freed block above its mmap threshold (at most 32 MiB by itself) back
+# to the system, and the next allocation of that size faults every page in anew.
+# MUMPS allocates its factors at every factorization: on a 16-scenario NLP they
+# pass 32 MiB, and that cost 2.6 s of system time in a 19 s solve (0.02 s with
+# the thresholds below; the same iterations; benchmarks/scenario_benchmark.py)
+MMAP_THRESHOLD = 512 << 20  # bytes: blocks up to this come from the heap and are reused
+TRIM_THRESHOLD = 512 << 20  # bytes: free memory the heap keeps before it shrinks
+_MEMORY_SET = False
+
+
+def _reuse_freed_memory() -> None:
+    """Raise the C library's thresholds for handing freed memory back (glibc's
+    mallopt; elsewhere nothing happens). Once per process, at the first solver."""
+    global _MEMORY_SET
+    if _MEMORY_SET:
+        return
+    _MEMORY_SET = True
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(-3, MMAP_THRESHOLD)  # M_MMAP_THRESHOLD
+        libc.mallopt(-1, TRIM_THRESHOLD)  # M_TRIM_THRESHOLD
+    except (OSError, AttributeError):
+        pass
+
+
 def _solver(nlp, profile: str, tolerance: float, max_iter: int):
     """The built solver of ``nlp`` (a FeedNLP, or a calibration NLP) for this
     profile, on the NLP's own values and its assembled derivatives."""
     key = (profile, tolerance, max_iter)
     if key in nlp._solvers:
         return nlp._solvers[key]
+    _reuse_freed_memory()
     opts = ipopt_options(tolerance, profile, nlp.copies)
     opts["ipopt.max_iter"] = int(max_iter)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
@@ -349,7 +377,9 @@ class Scaling:
 @dataclass
 class Guess:
     """A candidate feed, simulated: its pump steps (M, nu) L/h, run length T (h),
-    the simulated states (of the full model) and objective."""
+    the simulated states (of the full model) and objective; ``profile``, the IPOPT
+    profile its first solve starts with ('cold' for a candidate feed, 'seeded' for
+    the optimum of a neighbouring problem)."""
 
     label: str
     steps_u: np.ndarray
