@@ -571,7 +571,7 @@ def _seed_guesses(job, seeds) -> list:
         except Exception:  # noqa: BLE001 - a seed the integrator cannot follow is left out
             continue
         J = job.full.end_value(traj.final, T, traj.u[-1])
-        out.append(Guess(label, steps, T, traj.t, traj.x, float(J), traj))
+        out.append(Guess(label, steps, T, traj.t, traj.x, float(J), traj, profile="seeded"))
     return out
 
 
@@ -843,7 +843,7 @@ def _stage(task):
         g = payload
         w0 = nlp.pack(data, g.steps_u, g.T, g.times, states_for(job.lean, job.full, g.states),
                       switches=getattr(g.trajectory, "switches", None))
-        st_ = solve(nlp, data, w0, g.label, profile="cold", tolerance=s.tolerance,
+        st_ = solve(nlp, data, w0, g.label, profile=g.profile, tolerance=s.tolerance,
                     max_iter=min(COARSE_ITER, s.max_iter), deadline=job.deadline, report=job.report,
                     guess_objective=g.objective)
         if st_.status in ("iteration limit", "failed") and s.max_iter > st_.iterations:
