@@ -7,7 +7,7 @@ shared and seconds move with its load; CPU seconds move less than wall seconds).
    with free end times, Lee-Ramirez with two feeds): the whole `optfeed optimize
    PROBLEM` command as a user runs it (default settings: multistart on the cores,
    pump-grid refinement, verification, every file and figure written), as a process
-   of its own, against `benchmarks/reference_<problem>.py`, a single-start textbook
+   of its own (and again with `--no-figures`, to show what the figures cost), against `benchmarks/reference_<problem>.py`, a single-start textbook
    direct collocation in raw CasADi on optfeed's default grid (40 pump steps x 4
    elements, Radau degree 3, IPOPT tolerance 1e-8), also a process of its own.
    Cost: CPU seconds (user + system) of the process and everything it started, from
@@ -97,9 +97,10 @@ def run_reference(name: str, *args) -> dict:
     return {**m, **last_json(m["stdout"])}
 
 
-def run_optfeed(name: str, work: Path) -> dict:
+def run_optfeed(name: str, work: Path, figures: bool = True) -> dict:
     out = work / f"{name}-{time.monotonic_ns()}"
-    m = measured([*optfeed_command(), "optimize", str(PUBLISHED / f"{name}.yaml"), "--out", str(out), "--quiet"])
+    m = measured([*optfeed_command(), "optimize", str(PUBLISHED / f"{name}.yaml"), "--out", str(out), "--quiet",
+                  *([] if figures else ["--no-figures"])])
     summary = json.loads((out / "summary.json").read_text())
     shutil.rmtree(out, ignore_errors=True)
     rec = summary.get("record", {})
@@ -112,26 +113,32 @@ def run_optfeed(name: str, work: Path) -> dict:
 def part_published(repeats: int, work: Path) -> None:
     print("\n1. The whole `optfeed optimize` command against a single-start raw CasADi script "
           f"(CPU of each process, median of {repeats})")
-    print(f"   {'problem':<13} {'optfeed CPU':>11} {'ref CPU':>8} {'ratio':>6}   {'optfeed objective':>18} "
+    print(f"   {'problem':<13} {'optfeed CPU':>11} {'ref CPU':>8} {'ratio':>6} {'no figures':>10}   "
+          f"{'optfeed objective':>18} "
           f"{'reference objective':>19} {'optfeed vs ref':>14}   optfeed: status, final grid; reference: status, "
           "iterations")
     ratios = {}
     for name in PROBLEMS:
-        opt, ref = [], []
-        for _ in range(repeats):  # interleaved, so a change in the machine's load hits both
+        opt, ref, bare = [], [], []
+        for _ in range(repeats):  # interleaved, so a change in the machine's load hits all three
             ref.append(run_reference(name))
             opt.append(run_optfeed(name, work))
+            bare.append(run_optfeed(name, work, figures=False))
         o_cpu, r_cpu = median([r["cpu"] for r in opt]), median([r["cpu"] for r in ref])
+        b_cpu = median([r["cpu"] for r in bare])
         o, r = opt[0], ref[0]
         diff = (o["objective"] - r["objective"]) / abs(r["objective"])
         ratios[name] = o_cpu / r_cpu
         grid = o["grid"]
-        print(f"   {name:<13} {o_cpu:>10.2f}s {r_cpu:>7.2f}s {o_cpu / r_cpu:>6.2f}   {o['objective']:>18.7g} "
+        print(f"   {name:<13} {o_cpu:>10.2f}s {r_cpu:>7.2f}s {o_cpu / r_cpu:>6.2f} {b_cpu / r_cpu:>10.2f}   "
+              f"{o['objective']:>18.7g} "
               f"{r['objective']:>19.7g} {diff:>+14.4%}   {o['status']}, {grid.get('pump_steps')}x"
               f"{grid.get('elements', 0) // max(grid.get('pump_steps', 1), 1)}; {r['status']}, {r['iterations']} it")
         if o.get("end_time") and r.get("end_time") and abs(o["end_time"] - r["end_time"]) > 1e-6:
             print(f"   {'':<13} end time: optfeed {o['end_time']:.3f} h, reference {r['end_time']:.3f} h")
-    print("   ratio = optfeed CPU / reference CPU (target: at most 1.0 on every problem); objectives re-simulated; "
+    print("   ratio = optfeed CPU / reference CPU (target: at most 1.0 on every problem); 'no figures': the same "
+          "command with --no-figures (what the figures cost: matplotlib's import, drawing, PNG and inline SVG)")
+    print("   objectives re-simulated; "
           f"largest ratio {max(ratios.values()):.2f} ({max(ratios, key=ratios.get)})")
 
 
