@@ -1087,13 +1087,15 @@ def _refine_with_rivals(job, best: _Answer, converged, fine, data, scaling, reco
     first; the best refined answer wins. Local optima of one problem gain unequally
     from a finer pump grid: on Park-Ramirez two fine optima 0.012 % apart ended
     0.14 % apart, the lower one ahead, after refinement."""
-    before = best.start.objective
+    before, own = best.start.objective, best.label
     best = _refine_grid(job, best, scaling, record)
     if not job.better(best.start.objective, before):
         return best
     gain = abs(best.start.objective - before)
     rivals, seen = [], [before]
     for fs, _ in sorted(converged, key=lambda c: job.sense * c[0].objective):
+        if fs.label == own:
+            continue  # the best's own fine optimum: its back-off can move the objective either way
         if job.better(fs.objective, before) or not _within_reach(job, before, fs.objective, gain):
             continue
         if any(abs(fs.objective - o) <= DISTINCT_REL * max(abs(o), 1e-12) for o in seen):

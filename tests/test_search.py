@@ -49,6 +49,41 @@ def test_the_next_grid_doubling_is_predicted_from_two_shrinking_changes():
     assert next_change([0.001, 0.002]) is None  # changes that grow: no estimate, solve the next grid
 
 
+def test_the_best_fine_optimum_is_not_refined_again_as_its_own_rival(monkeypatch):
+    """The pump grid of the best answer is refined once: its own fine-grid optimum is
+    not a rival even when the back-off moved the best's objective past it (seen on
+    configs/fast_microbe.yaml: 1047.18 on the fine grid, 1054.79 backed off, and the
+    same refinement then ran twice). A distinct optimum within reach still is."""
+    import dataclasses
+    import importlib
+    from types import SimpleNamespace
+
+    O = importlib.import_module("optfeed.optimize")
+    from optfeed.solve import Start
+
+    def start(label, objective):
+        empty = np.zeros(0)
+        return Start(label, "converged", "Solve_Succeeded", objective, 10, 0.1, empty, empty, empty)
+
+    refined = []
+
+    def refine(job, ans, scaling, record):  # a finer grid gains 0.5 % for everyone
+        refined.append(ans.label)
+        return dataclasses.replace(ans, start=dataclasses.replace(ans.start, objective=ans.start.objective * 1.005))
+
+    monkeypatch.setattr(O, "_refine_grid", refine)
+    monkeypatch.setattr(O, "_verified", lambda job, ans, scaling: dataclasses.replace(
+        ans, verification=SimpleNamespace(verified=True)))
+    job = SimpleNamespace(sense=-1.0, better=lambda a, b: a > b, deadline=None)  # maximize
+    best = O._Answer(start("50 %, backed off", 1054.79), None, None, label="50 %")
+    converged = [(start("50 %", 1047.18), None), (start("e^3", 1052.0), None)]
+    record = {}
+    out = O._refine_with_rivals(job, best, converged, None, None, None, record)
+    assert refined == ["50 %", "e^3"]
+    assert record["rivals_refined"] == 1
+    assert out.label == "50 %" and out.start.objective == pytest.approx(1054.79 * 1.005)
+
+
 def test_optima_left_out_are_refined_when_the_best_does_not_verify(monkeypatch):
     """A multistart keeps every candidate that verifies (definition of a multistart):
     when the best fine answer does not verify, the coarse optima that were left out
