@@ -106,6 +106,26 @@ def test_active_means_the_limit_holds_the_optimum_back(optimized):
     assert not is_active(dataclasses.replace(rep, min_slack=0.0), 1e-9, 0.0, result.objective_nlp)
 
 
+def test_numeric_tables_are_written_as_the_csv_module_writes_them(tmp_path):
+    """trajectory.csv and points.csv take a fast path for float arrays; its text is
+    the standard library's csv.writer with each number formatted to 10 significant
+    digits (the reference), for ordinary, tiny, huge and non-finite values alike."""
+    import numpy as np
+
+    from optfeed.report.files import write_csv
+
+    rng = np.random.default_rng(3)
+    rows = rng.normal(size=(300, 6)) * 10.0 ** rng.integers(-300, 300, size=(300, 6))
+    rows[0, :5] = [np.nan, np.inf, -np.inf, -0.0, 1.0 / 3.0]
+    write_csv(tmp_path / "fast.csv", ["t [h]", "X [g/L]", "S", "P", "V [L]", "F"], rows)
+    with (tmp_path / "ref.csv").open("w", newline="") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(["t [h]", "X [g/L]", "S", "P", "V [L]", "F"])
+        for row in rows.tolist():
+            w.writerow([format(v, ".10g") for v in row])
+    assert (tmp_path / "fast.csv").read_text() == (tmp_path / "ref.csv").read_text()
+
+
 def test_tiny_slacks_read_as_zero():
     from optfeed.report.text import limits_table
 

@@ -78,9 +78,16 @@ def _table(cols: dict) -> tuple[list[str], np.ndarray]:
 
 
 def write_csv(path: Path, header, rows) -> None:
+    """``header`` and ``rows``, numbers to 10 significant digits. A float array (a
+    trajectory's thousands of rows) is written line by line from one format, which
+    gives the same text as the general path at a fraction of its cost."""
     with path.open("w", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(header)
+        if isinstance(rows, np.ndarray) and rows.ndim == 2 and rows.dtype.kind == "f":
+            line = ",".join(["%.10g"] * rows.shape[1]) + "\n"
+            fh.writelines(line % tuple(r) for r in rows.tolist())
+            return
         for row in rows:
             w.writerow([f"{v:.10g}" if isinstance(v, (float, np.floating)) else v for v in row])
 
