@@ -284,7 +284,7 @@ def _solver(nlp, profile: str, tolerance: float, max_iter: int):
     opts["ipopt.max_iter"] = int(max_iter)
     watch = Watch(nlp.n_w, nlp.n_g, nlp.P.size)
     opts["iteration_callback"] = watch
-    opts.update(nlp.derivatives())
+    opts.update(nlp.derivatives(few_iterations=profile == "warm"))
     solver = ca.nlpsol(f"optfeed_{profile}", "ipopt", nlp._sx, opts)
     nlp._solvers[key] = (solver, watch)
     return solver, watch

@@ -301,7 +301,7 @@ class FitNLP:
                               rows=start + np.arange(n_c * n_theta).reshape(n_c, n_theta).T))
         return Assembled(self.nlp["x"], self.nlp["p"], self.n_g, terms, kinds)
 
-    def derivatives(self) -> dict:
+    def derivatives(self, few_iterations: bool = False) -> dict:
         """IPOPT's derivative Functions (grad_f, jac_g, hess_lag) for nlpsol, as
         assembled (expanding them to scalar graphs made the 8-run fits slower)."""
         return self._derivatives
