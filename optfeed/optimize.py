@@ -736,7 +736,8 @@ def _optimize(problem, workers, on_progress, deadline, t_start, scenarios=None, 
     coarse = job.nlp(Grid(s.pump_steps, s.pump_steps, s.degree))
     fine = job.nlp(Grid(s.pump_steps, s.elements, s.degree))
     # build the solvers the starts use before they fork, so no process builds its own
-    _solver(coarse, "cold", s.tolerance, COARSE_ITER)
+    for profile in sorted({g.profile for g in guesses}):
+        _solver(coarse, profile, s.tolerance, COARSE_ITER)
     _solver(fine, "near", s.tolerance, s.max_iter)
 
     # 1 and 2: every start on the coarse grid, then every distinct optimum on the fine grid
@@ -1087,19 +1088,19 @@ def _refine_with_rivals(job, best: _Answer, converged, fine, data, scaling, reco
     first; the best refined answer wins. Local optima of one problem gain unequally
     from a finer pump grid: on Park-Ramirez two fine optima 0.012 % apart ended
     0.14 % apart, the lower one ahead, after refinement."""
-    before, own = best.start.objective, best.label
+    before, own_label = best.start.objective, best.label
     best = _refine_grid(job, best, scaling, record)
     if not job.better(best.start.objective, before):
         return best
     gain = abs(best.start.objective - before)
     rivals, seen = [], [before]
     for fs, _ in sorted(converged, key=lambda c: job.sense * c[0].objective):
-        if fs.label == own:
+        if fs.label == own_label:
             continue  # the best's own fine optimum: its back-off can move the objective either way
         if job.better(fs.objective, before) or not _within_reach(job, before, fs.objective, gain):
             continue
         if any(abs(fs.objective - o) <= DISTINCT_REL * max(abs(o), 1e-12) for o in seen):
-            continue  # the best's own optimum, or one already taken
+            continue  # the same optimum as one already taken
         seen.append(fs.objective)
         rivals.append(fs)
     for fs in rivals:
