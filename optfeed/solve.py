@@ -249,26 +249,35 @@ def clear_cache() -> None:
 # glibc hands a freed block above its mmap threshold (at most 32 MiB by itself) back
 # to the system, and the next allocation of that size faults every page in anew.
 # MUMPS allocates its factors at every factorization: on a 16-scenario NLP they
-# pass 32 MiB, and that cost 2.6 s of system time in a 19 s solve (0.02 s with
-# the thresholds below; the same iterations; benchmarks/scenario_benchmark.py)
+# pass 32 MiB, and that cost 2.6 s of system time in a 19.9 s solve (0.02 s with
+# the thresholds below; the same iterations; benchmarks/scenario_benchmark.py).
+# The environment variable OPTFEED_SYSTEM_MALLOC=1 leaves the C library as it is
+# (for a notebook or a host program that tunes its own memory).
 MMAP_THRESHOLD = 512 << 20  # bytes: blocks up to this come from the heap and are reused
+MMAP_THRESHOLD_SMALL = 32 << 20  # what older glibc accepts at most on 64-bit systems
 TRIM_THRESHOLD = 512 << 20  # bytes: free memory the heap keeps before it shrinks
 _MEMORY_SET = False
 
 
 def _reuse_freed_memory() -> None:
     """Raise the C library's thresholds for handing freed memory back (glibc's
-    mallopt; elsewhere nothing happens). Once per process, at the first solver."""
+    mallopt; elsewhere, or with OPTFEED_SYSTEM_MALLOC=1, nothing happens). Once per
+    process, at the first solver. The trim threshold is set only when an mmap
+    threshold was taken (setting either stops glibc's own adjustment of both)."""
     global _MEMORY_SET
     if _MEMORY_SET:
         return
     _MEMORY_SET = True
+    import os
+
+    if os.environ.get("OPTFEED_SYSTEM_MALLOC", "") not in ("", "0"):
+        return
     try:
         import ctypes
 
         libc = ctypes.CDLL("libc.so.6")
-        libc.mallopt(-3, MMAP_THRESHOLD)  # M_MMAP_THRESHOLD
-        libc.mallopt(-1, TRIM_THRESHOLD)  # M_TRIM_THRESHOLD
+        if libc.mallopt(-3, MMAP_THRESHOLD) or libc.mallopt(-3, MMAP_THRESHOLD_SMALL):  # M_MMAP_THRESHOLD
+            libc.mallopt(-1, TRIM_THRESHOLD)  # M_TRIM_THRESHOLD
     except (OSError, AttributeError):
         pass
 
