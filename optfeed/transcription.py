@@ -532,11 +532,15 @@ class FeedNLP:
         assembled ones, on a small NLP (:data:`SCALAR_ELEMENTS`) expanded to scalar
         graphs once (cheap: they are already derivatives, CasADi only inlines them).
 
-        ``few_iterations``: the solver is for a warm start (a refined pump grid from
-        its coarser answer, a back-off round), which takes too few iterations for the
-        expansion to pay for itself (Park-Ramirez, 160 elements: 0.08-0.09 s to
-        expand, about 2 ms less per iteration, and its refinements take 11-31
-        iterations); an NLP already expanded is used expanded all the same."""
+        ``few_iterations``: the solver is for a warm start with multipliers (a pump
+        grid refined on the same elements, a back-off round), which takes too few
+        iterations for the expansion to pay for itself (Park-Ramirez, 160 elements:
+        0.08-0.09 s to expand, about 2 ms less per iteration, and its refinements
+        take 11-31 iterations): the assembled ones, unless the NLP was expanded
+        already (its fine grid's back-off rounds after the 'near' solve). Within one
+        optimize run the order of solves fixes which; a sweep's kept process may
+        have expanded an NLP that a fresh process has not, and its warm solvers then
+        differ from a fresh one's in rounding only (both derivatives are exact)."""
         if self.S * self.grid.elements > SCALAR_ELEMENTS:
             return self._derivatives
         if self._expanded is None:
