@@ -7,8 +7,9 @@ shared and seconds move with its load; CPU seconds move less than wall seconds).
    with free end times, Lee-Ramirez with two feeds): the whole `optfeed optimize
    PROBLEM` command as a user runs it (default settings: multistart on the cores,
    pump-grid refinement, verification, every file and figure written), as a process
-   of its own (and again with `--no-figures`, to show what the figures cost), against `benchmarks/reference_<problem>.py`, a single-start textbook
-   direct collocation in raw CasADi on optfeed's default grid (40 pump steps x 4
+   of its own (and again with `--no-figures`, to show what the figures cost),
+   against `benchmarks/reference_<problem>.py`, a single-start textbook direct
+   collocation in raw CasADi on optfeed's default grid (40 pump steps x 4
    elements, Radau degree 3, IPOPT tolerance 1e-8), also a process of its own.
    Cost: CPU seconds (user + system) of the process and everything it started, from
    process start to exit, from wait4(2); optfeed's modules are byte-compiled first,

@@ -17,6 +17,7 @@ wall time, so a run's answer does not depend on how busy the machine is.
 from __future__ import annotations
 
 import math
+import os
 import signal
 import threading
 import time
@@ -268,8 +269,6 @@ def _reuse_freed_memory() -> None:
     if _MEMORY_SET:
         return
     _MEMORY_SET = True
-    import os
-
     if os.environ.get("OPTFEED_SYSTEM_MALLOC", "") not in ("", "0"):
         return
     try:
