@@ -145,7 +145,9 @@ def _overrides(pairs) -> dict:
 def _output_args(p):
     p.add_argument("--out", help="run folder to write (must not exist)")
     p.add_argument("--results", default="results", help="parent of the run folder (default: results)")
-    p.add_argument("--no-figures", action="store_true", help="skip the figures (PNG files and those in report.html)")
+    p.add_argument("--no-figures", action="store_true", help="skip the figures (SVG files and those in report.html)")
+    p.add_argument("--png", action="store_true",
+                   help="also write each figure as a PNG file (drawn with matplotlib: about a second more)")
     p.add_argument("--json", action="store_true", help="print summary.json to stdout instead of the report")
     p.add_argument("--quiet", action="store_true", help="print only the status line")
 
@@ -286,12 +288,12 @@ def _check(args) -> int:
                      samples=args.samples, seed=args.seed, workers=args.workers, on_progress=progress)
 
     result = job() if args.quiet or args.json or not args.uncertainty else _with_progress(job, "Monte Carlo")
-    write_check_run(result, target, figures=not args.no_figures)
+    write_check_run(result, target, figures=not args.no_figures, png=args.png)
     files = "summary.json, report.txt, report.html, limits.csv, schedule.csv, trajectory.csv"
     if result.uncertainty is not None:
         files += ", montecarlo.csv"
     if not args.no_figures and result.trajectory is not None:
-        files += ", figure-*.png"
+        files += ", figure-*.svg" + (" and .png" if args.png else "")
     return _show(args, result, check_summary(result), check_text(result), target, f" ({files})")
 
 
@@ -318,7 +320,7 @@ def _optimize(args) -> int:
     else:
         result = _with_progress(lambda cb: optimize(problem, workers=args.workers, on_progress=cb,
                                                     time_limit=limit))
-    write_optimize_run(result, target, figures=not args.no_figures)
+    write_optimize_run(result, target, figures=not args.no_figures, png=args.png)
     return _show(args, result, optimize_summary(result), optimize_text(result), target, "")
 
 
@@ -337,12 +339,12 @@ def _fit(args) -> int:
         result = fit(problem, runs, profile=args.profile)
     else:
         result = _with_progress(lambda cb: fit(problem, runs, profile=args.profile, on_progress=cb), "fitting")
-    write_fit_run(result, target, figures=not args.no_figures)
+    write_fit_run(result, target, figures=not args.no_figures, png=args.png)
     files = "summary.json, report.txt, report.html"
     if result.estimates:
         files += ", fitted.yaml, covariance.csv, residuals.csv, trajectory-*.csv"
         if not args.no_figures:
-            files += ", figure-*.png"
+            files += ", figure-*.svg" + (" and .png" if args.png else "")
     return _show(args, result, fit_summary(result), fit_text(result), target, f" ({files})")
 
 
@@ -373,7 +375,7 @@ def _recipe(args) -> int:
     result = recipe(args.run_folder, unit=args.unit, step=args.step, start=args.start, problem=args.problem,
                     resolution=args.resolution)
     target = Path(args.out) if args.out else default_run_dir(Path(args.results), result.problem.name, "recipe")
-    write_recipe_run(result, target, figures=not args.no_figures)
+    write_recipe_run(result, target, figures=not args.no_figures, png=args.png)
     return _show(args, result, recipe_summary(result), recipe_text(result), target,
                  " (recipe.csv, schedule.csv, summary.json, report.txt, report.html, limits.csv)")
 

@@ -485,7 +485,7 @@ def recipe_schedule_text(result: RecipeResult) -> str:
     return "\n".join(lines) + "\n"
 
 
-def write_recipe_run(result: RecipeResult, target, figures: bool = True) -> Path:
+def write_recipe_run(result: RecipeResult, target, figures: bool = True, png: bool = False) -> Path:
     """Write ``result`` to the run folder ``target`` (must not exist), all at once.
 
     Files: recipe.csv (the setpoint table), schedule.csv (the rounded recipe in the
@@ -512,5 +512,6 @@ def write_recipe_run(result: RecipeResult, target, figures: bool = True) -> Path
             draw = lambda: run_drawings(model, result.check.trajectory,  # noqa: E731
                                         title=f"{result.problem.name}: rounded recipe - {result.status}")
         write_report(tmp, lambda d, s, n: recipe_page(result, d, s, n), draw,
-                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).",
+                     png=png)
     return Path(target)

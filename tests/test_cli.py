@@ -20,16 +20,28 @@ def test_check_each_example(tmp_path, capsys, problem, schedule, code):
     assert "STATUS: " + ("LIMIT BROKEN" if code else "WITHIN LIMITS") in text
     assert "verify it at small scale first" in text.lower()
     assert sorted(p.name for p in out.iterdir()) == [
-        "figure-culture.png", "figure-feeds.png", "figure-limits.png", "limits.csv", "report.html", "report.txt",
+        "figure-culture.svg", "figure-feeds.svg", "figure-limits.svg", "limits.csv", "report.html", "report.txt",
         "schedule.csv", "summary.json", "trajectory.csv"]
     summary = json.loads((out / "summary.json").read_text())
     assert summary["status"] == ("limit broken" if code else "within limits")
     assert summary["exit_code"] == code
     assert len(summary["record"]["problem_digest"]) == 64
     assert summary["objective"]["value"] > 0
+    for svg in out.glob("figure-*.svg"):
+        assert svg.read_text(encoding="utf-8").startswith("<svg")
+    assert not list(tmp_path.glob(".run.*")), "temporary folder left behind"
+
+
+def test_png_on_request_beside_each_svg(tmp_path, capsys):
+    """--png adds a PNG of every figure (the same drawing, through matplotlib)."""
+    out = tmp_path / "run"
+    rc = main(["check", str(CONFIGS / "animal_cell.yaml"), "--schedule", str(CONFIGS / "animal_cell_plan.csv"),
+               "--out", str(out), "--png", "--quiet"])
+    assert rc == 0
+    svgs = sorted(p.stem for p in out.glob("figure-*.svg"))
+    assert svgs and svgs == sorted(p.stem for p in out.glob("figure-*.png"))
     for png in out.glob("figure-*.png"):
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    assert not list(tmp_path.glob(".run.*")), "temporary folder left behind"
 
 
 def test_violation_report_names_first_break(tmp_path, capsys):

@@ -264,7 +264,7 @@ def test_check_uncertainty_command(tmp_path):
     assert len(rows) == 13
     html = (out / "report.html").read_text()
     assert 'id="uncertainty"' in html and "Over the uncertain values" in html and 'id="figure-fan"' in html
-    assert (out / "figure-fan.png").stat().st_size > 1000
+    assert (out / "figure-fan.svg").stat().st_size > 1000
     for proc, words in ((none, "--uncertainty needs an 'uncertainty' section"),
                         (lone, "--seed is used only with --uncertainty")):
         stdout, stderr = proc.communicate(timeout=120)

@@ -101,14 +101,16 @@ def test_every_figure_is_inline_and_every_reference_resolves(check_run):
     _, out = check_run
     text = (out / "report.html").read_text()
     page = parse(out / "report.html")
-    pngs = sorted(p.stem for p in out.glob("*.png"))
-    assert pngs == ["figure-culture", "figure-feeds", "figure-limits"]
+    files = sorted(p.stem for p in out.glob("*.svg"))
+    assert files == ["figure-culture", "figure-feeds", "figure-limits"]
     figures = [attrs["id"] for tag, attrs in page.tags if tag == "figure"]
-    assert sorted(figures) == pngs  # the folder's figures and the report's are the same drawings
+    assert sorted(figures) == files  # the folder's figures and the report's are the same drawings
+    for name in figures:
+        assert (out / f"{name}.svg").read_text(encoding="utf-8") in text
     for name in figures:
         block = text[text.index(f'<figure id="{name}">'):]
         block = block[:block.index("</figure>")]
-        assert block.count("<svg") == 1 and block.count("<path") > 50, name  # drawn, not a placeholder
+        assert block.count("<svg") == 1 and block.count("<polyline") >= 5 and block.count("<text") > 20, name  # drawn
     ids = {attrs["id"] for _, attrs in page.tags if "id" in attrs}
     assert len(ids) == sum(1 for _, attrs in page.tags if "id" in attrs), "duplicate ids"
     refs = [attrs.get("xlink:href") or attrs.get("href") for tag, attrs in page.tags
@@ -153,7 +155,7 @@ def test_no_figures_still_writes_the_report(tmp_path):
     out = write_check_run(r, tmp_path / "run", figures=False)
     html = (out / "report.html").read_text()
     assert "Figures were not drawn" in html and "<svg" not in html
-    assert not list(out.glob("*.png"))
+    assert not list(out.glob("*.png")) and not list(out.glob("*.svg"))
     assert '<h1 id="status">Within every limit</h1>' in html
 
 

@@ -225,7 +225,7 @@ def test_robust_profile_breaks_the_ceiling_less_often(tmp_path):
             assert ("OTR ceiling" in run.broken) == (peak > 40.0 + tol), (Y, peak)
     # the report draws the answer against the nominal optimum
     out = write_optimize_run(r, tmp_path / "run")
-    assert (out / "figure-fan.png").stat().st_size > 0 and (out / "figure-robust-feeds.png").stat().st_size > 0
+    assert (out / "figure-fan.svg").stat().st_size > 0 and (out / "figure-robust-feeds.svg").stat().st_size > 0
 
 
 def test_scenarios_verified_in_a_batch_agree_with_scipy(tmp_path):

@@ -197,7 +197,7 @@ def test_an_infeasible_problem_explains_itself(write, tmp_path):
     # and the run folder still shows the closest schedule: figures and the limit table
     out = write_optimize_run(r, tmp_path / "run")
     names = {p.name for p in out.iterdir()}
-    assert {"figure-limits.png", "limits.csv", "trajectory.csv", "report.html"} <= names
+    assert {"figure-limits.svg", "limits.csv", "trajectory.csv", "report.html"} <= names
     assert "acetate ceiling" in (out / "limits.csv").read_text()
     assert "schedule.csv" not in names and "closest-schedule.csv" in names  # not an answer to run
     assert "NOT AN ANSWER" in (out / "closest-schedule.csv").read_text()

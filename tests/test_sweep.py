@@ -107,12 +107,12 @@ def test_run_store_outputs_and_resume(tmp_path):
     for row in r.rows:
         assert (Path(row["run_dir"]) / "summary.json").exists()
     assert (out / "summary.csv").read_text().count("\n") == 5
-    assert (out / "figures" / "heatmap.png").exists() and (out / "figures" / "ranking.png").exists()
+    assert (out / "figures" / "heatmap.svg").exists() and (out / "figures" / "ranking.svg").exists()
     # each limit's margin against the swept values, and the sweep's own report
-    assert (out / "figures" / "margins_vs_vessel_oxygen_transfer_max.png").exists()
+    assert (out / "figures" / "margins_vs_vessel_oxygen_transfer_max.svg").exists()
     html = (out / "report.html").read_text()
     assert '<h1 id="status">2 of 4 cases within every limit</h1>' in html
-    assert html.count('<figure id="') == len(list((out / "figures").glob("*.png")))
+    assert html.count('<figure id="') == len(list((out / "figures").glob("*.svg")))
     for row in r.rows:
         assert (Path(row["run_dir"]) / "report.html").exists()
     # the case table as a DataFrame: the swept values as numbers, units in the header (as in the sweep file)

@@ -1,12 +1,11 @@
-"""Figures of a run and of a sweep, drawn once and saved as PNG and as inline SVG.
+"""Figures of a run, of a fit and of a sweep, drawn once and saved as SVG (PNG on request).
 
-Every function here returns :class:`Drawing` objects (a matplotlib figure with a
-file name and a caption); :func:`save_png` writes one into a run folder and
-:func:`svg_text` gives the same figure as SVG for the HTML report, so the folder and
-the report always show the same drawing.
-
-matplotlib is imported inside the functions only: importing optfeed (or its command
-line) does not pay for it.
+Every function here returns :class:`Drawing` objects (a :class:`~.canvas.Canvas`
+with a file name and a caption). :func:`svg_text` gives the drawing as SVG, which
+goes both into the run folder (:func:`save_svg`) and inline into the HTML report,
+so the folder and the report always show the same drawing. :func:`save_png`
+replays the same drawing onto matplotlib for a PNG file, when one is asked for
+(``--png``); only then is matplotlib imported.
 
 Colours are chosen so that the meaning never depends on a shade a limit also uses:
 the simulated run is :data:`INK`, a limit's bound is :data:`LIMIT` (its broken
@@ -17,13 +16,15 @@ the use panel is :data:`REFERENCE`, which is in no limit's :data:`PALETTE`.
 
 from __future__ import annotations
 
-import io
 import math
 import re
 import textwrap
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
+
+from .canvas import Canvas
 
 INK = "#17364a"        # simulated run
 POINTS = "#d9822b"     # solver's collocation points (hollow)
@@ -47,79 +48,49 @@ class Drawing:
 
     name: str
     caption: str
-    figure: object  # matplotlib.figure.Figure
-
-
-def _rc():
-    import matplotlib
-
-    return matplotlib.rc_context({
-        "font.size": 8, "axes.titlesize": 9, "axes.titlelocation": "left", "axes.titley": 1.02,
-        "axes.titlepad": 2.0, "axes.labelsize": 8,
-        "xtick.labelsize": 7.5, "ytick.labelsize": 7.5, "legend.fontsize": 7, "axes.grid": True,
-        "grid.alpha": 0.28, "grid.linewidth": 0.6, "axes.spines.top": False, "axes.spines.right": False,
-        "svg.fonttype": "path", "svg.hashsalt": "optfeed", "path.simplify": True,
-    })
+    figure: Canvas
 
 
 # margins around the panels, inches: room for tick labels and an axis label on the
-# left, a title above each panel, the time axis below (a fixed layout: measuring
-# every label to place the panels costs more than drawing them)
+# left, a title above each panel, the time axis below
 LEFT, RIGHT, TOP, BOTTOM, GAP_W, GAP_H = 0.78, 0.2, 0.55, 0.5, 0.85, 0.62
 
 
 def _figure(nrow: int, ncol: int, width: float = 5.0, height: float = 2.7, left=LEFT):
-    """A figure of nrow x ncol panels placed with fixed margins; panels of a run share
-    their time range through :func:`_finish` (not through matplotlib's shared axes,
-    which make every label placement look at every panel)."""
-    from matplotlib.figure import Figure
-
+    """A canvas of nrow x ncol panels placed with fixed margins, and its panels (a
+    flat object array, row by row); panels of a run share their time range through
+    :func:`_finish`."""
     fig_w, fig_h = width * ncol, height * nrow
-    fig = Figure(figsize=(fig_w, fig_h))
+    fig = Canvas(fig_w, fig_h)
     ax_w = (fig_w - left - RIGHT - GAP_W * (ncol - 1)) / ncol
     ax_h = (fig_h - TOP - BOTTOM - GAP_H * (nrow - 1)) / nrow
-    axes = fig.subplots(nrow, ncol, squeeze=False, gridspec_kw=dict(
-        left=left / fig_w, right=1 - RIGHT / fig_w, top=1 - TOP / fig_h, bottom=BOTTOM / fig_h,
-        wspace=GAP_W / ax_w, hspace=GAP_H / ax_h)).ravel()
+    axes = np.empty(nrow * ncol, dtype=object)
+    for r in range(nrow):
+        for c in range(ncol):
+            axes[r * ncol + c] = fig.panel(left + c * (ax_w + GAP_W), TOP + r * (ax_h + GAP_H), ax_w, ax_h)
     return fig, axes
 
 
-def save_png(drawing: Drawing, folder, dpi: int = 110):
-    """Write ``<folder>/<name>.png`` and return its path."""
-    from pathlib import Path
+def svg_text(drawing: Drawing, prefix: str = "") -> str:
+    """The figure as one ``<svg>`` element (a file of its own, or inline in HTML), ids
+    prefixed with ``prefix`` so several figures can share a page."""
+    return drawing.figure.svg(prefix)
 
-    path = Path(folder) / f"{drawing.name}.png"
-    with _rc():
-        drawing.figure.savefig(path, dpi=dpi, metadata={"Software": None})
-    _freeze(drawing.figure)
+
+def save_svg(drawing: Drawing, folder, text: str | None = None) -> Path:
+    """Write ``<folder>/<name>.svg`` (``text``: the drawing's SVG, if already made)
+    and return its path."""
+    path = Path(folder) / f"{drawing.name}.svg"
+    path.write_text(text if text is not None else svg_text(drawing), encoding="utf-8")
     return path
 
 
-def _freeze(fig) -> None:
-    """Keep the layout of the first save for the next (the layout costs half the time)."""
-    if fig.get_layout_engine() is not None:
-        fig.set_layout_engine("none")
-
-
-def svg_text(drawing: Drawing, prefix: str = "") -> str:
-    """The figure as an ``<svg>`` element for inline use in HTML: no XML prolog, no
-    metadata, ids prefixed with ``prefix`` so several figures can share a page."""
-    buf = io.StringIO()
-    with _rc():
-        drawing.figure.savefig(buf, format="svg", metadata={"Creator": None, "Date": None, "Format": None,
-                                                            "Type": None})
-    _freeze(drawing.figure)
-    text = buf.getvalue()
-    text = text[text.index("<svg"):]
-    text = re.sub(r"<metadata>.*?</metadata>", "", text, flags=re.S)
-    # scale with the page, never beyond the drawn size
-    text = re.sub(r'^<svg ([^>]*?)width="([\d.]+pt)"', r'<svg \1style="max-width:\2" width="\2"', text, count=1)
-    if prefix:
-        ids = set(re.findall(r'\bid="([^"]+)"', text))
-        text = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{prefix}{m.group(1)}"', text)
-        text = re.sub(r'#([^")\s]+)([")])', lambda m: f"#{prefix}{m.group(1)}{m.group(2)}"
-                      if m.group(1) in ids else m.group(0), text)
-    return text
+def save_png(drawing: Drawing, folder, dpi: int = 110) -> Path:
+    """Write ``<folder>/<name>.png``, the drawing replayed onto matplotlib, and
+    return its path."""
+    path = Path(folder) / f"{drawing.name}.png"
+    drawing.figure.matplotlib().savefig(path, dpi=dpi, metadata={"Software": None})
+    return path
 
 
 # ------------------------------------------------------------------ one run
@@ -149,9 +120,8 @@ def run_drawings(model, traj, points=None, title: str = "") -> list[Drawing]:
         and amounts fed).
     """
     idx = plot_indices(traj.t, traj.u)
-    with _rc():
-        return [_limits_figure(model, traj, idx, title), _culture_figure(model, _thin(traj, idx), points, title),
-                _feeds_figure(model, traj, idx, title)]
+    return [_limits_figure(model, traj, idx, title), _culture_figure(model, _thin(traj, idx), points, title),
+            _feeds_figure(model, traj, idx, title)]
 
 
 def plot_indices(t, u, max_points: int = 1500) -> np.ndarray:
@@ -452,41 +422,40 @@ def fan_drawing(bands, title: str = "", name: str = "figure-fan", reference=None
     """
     bands = list(bands)
     ref = {b.name: b for b in reference or ()}
-    with _rc():
-        n = max(1, len(bands))
-        ncol = 2 if n > 1 else 1
-        nrow = math.ceil(n / ncol)
-        fig, axes = _figure(nrow, ncol)
-        for ax, b in zip(axes, bands):
-            ax.fill_between(b.t, b.p5, b.p95, color=FAN, alpha=0.28, lw=0, zorder=1,
-                            label=f"5-95 % of the {label}")
-            ax.plot(b.t, b.p50, color=FAN, lw=1.0, ls=(0, (4, 2)), zorder=2, label=f"median of the {label}")
-            broken = () if b.broken is None else b.broken
-            for k, y in enumerate(broken):
-                ax.plot(b.t, y, color=LIMIT, lw=0.6, alpha=0.45, zorder=2,
-                        label=f"{label} that break it" if k == 0 else None)
-            if b.name in ref:
-                r = ref[b.name]
-                for k, y in enumerate((r.p5, r.p95)):
-                    ax.plot(r.t, y, color=FAN_REFERENCE, lw=1.0, zorder=2,
-                            label=f"5-95 % of the {reference_label}" if k == 0 else None)
-            if np.any(np.isfinite(b.nominal)):
-                ax.plot(b.t, b.nominal, color=INK, lw=1.5, zorder=3, label="nominal run")
-            for bound, word in ((b.upper, "maximum"), (b.lower, "minimum")):
-                if bound is None:
-                    continue
-                text = f"{word} {_num(bound)} {b.unit}".strip()
-                if b.at_end:
-                    ax.plot([b.t[-1]], [bound], marker="_", ms=18, mew=2, color=LIMIT, zorder=4,
-                            label=f"end {text}")
-                else:
-                    ax.axhline(bound, color=LIMIT, ls="--", lw=1.1, zorder=2, label=text)
-            what = _LIMIT_TITLES.get(b.kind, b.name + (" (bound at the end)" if b.at_end else ""))
-            ax.set_title(what)
-            ax.set_ylabel(b.unit or "-")
-            ax.legend(loc="best")
-        t = bands[0].t if bands else np.array([0.0, 1.0])
-        _finish(fig, axes, n, ncol, title, t)
+    n = max(1, len(bands))
+    ncol = 2 if n > 1 else 1
+    nrow = math.ceil(n / ncol)
+    fig, axes = _figure(nrow, ncol)
+    for ax, b in zip(axes, bands):
+        ax.fill_between(b.t, b.p5, b.p95, color=FAN, alpha=0.28, lw=0, zorder=1,
+                        label=f"5-95 % of the {label}")
+        ax.plot(b.t, b.p50, color=FAN, lw=1.0, ls=(0, (4, 2)), zorder=2, label=f"median of the {label}")
+        broken = () if b.broken is None else b.broken
+        for k, y in enumerate(broken):
+            ax.plot(b.t, y, color=LIMIT, lw=0.6, alpha=0.45, zorder=2,
+                    label=f"{label} that break it" if k == 0 else None)
+        if b.name in ref:
+            r = ref[b.name]
+            for k, y in enumerate((r.p5, r.p95)):
+                ax.plot(r.t, y, color=FAN_REFERENCE, lw=1.0, zorder=2,
+                        label=f"5-95 % of the {reference_label}" if k == 0 else None)
+        if np.any(np.isfinite(b.nominal)):
+            ax.plot(b.t, b.nominal, color=INK, lw=1.5, zorder=3, label="nominal run")
+        for bound, word in ((b.upper, "maximum"), (b.lower, "minimum")):
+            if bound is None:
+                continue
+            text = f"{word} {_num(bound)} {b.unit}".strip()
+            if b.at_end:
+                ax.plot([b.t[-1]], [bound], marker="_", ms=18, mew=2, color=LIMIT, zorder=4,
+                        label=f"end {text}")
+            else:
+                ax.axhline(bound, color=LIMIT, ls="--", lw=1.1, zorder=2, label=text)
+        what = _LIMIT_TITLES.get(b.kind, b.name + (" (bound at the end)" if b.at_end else ""))
+        ax.set_title(what)
+        ax.set_ylabel(b.unit or "-")
+        ax.legend(loc="best")
+    t = bands[0].t if bands else np.array([0.0, 1.0])
+    _finish(fig, axes, n, ncol, title, t)
     return Drawing(name, f"Each limited quantity over the {label}: shaded, where 90 % of the {label} lie at each "
                    "time (5th to 95th percentile); dashed, their median; solid, the nominal run; red dashed, the "
                    f"limit; thin red lines, {label} that break it (the first twenty).", fig)
@@ -498,42 +467,40 @@ def fan_drawing(bands, title: str = "", name: str = "figure-fan", reference=None
 def objective_against(path: str, xunit: str, xs, ys, unit: str, bad_xs=()) -> Drawing:
     """Objective of each answered case against one swept value; ``bad_xs``: values
     of cases without an answer (drawn as thin vertical lines)."""
-    with _rc():
-        fig, axes = _figure(1, 1, width=6.0, height=3.8)
-        ax = axes[0]
-        ax.plot(xs, ys, "o", color=INK, ms=5)
-        for k, x in enumerate(bad_xs):
-            ax.axvline(x, color=LIMIT, lw=0.8, alpha=0.6, label="no answer" if k == 0 else None)
-        ax.set_xlabel(f"{path} ({xunit})" if xunit else path)
-        ax.set_ylabel(f"objective ({unit})" if unit else "objective")
-        ax.set_title(f"objective against {path}")
-        if len(bad_xs):
-            ax.legend(loc="best")
+    fig, axes = _figure(1, 1, width=6.0, height=3.8)
+    ax = axes[0]
+    ax.plot(xs, ys, "o", color=INK, ms=5)
+    for k, x in enumerate(bad_xs):
+        ax.axvline(x, color=LIMIT, lw=0.8, alpha=0.6, label="no answer" if k == 0 else None)
+    ax.set_xlabel(f"{path} ({xunit})" if xunit else path)
+    ax.set_ylabel(f"objective ({unit})" if unit else "objective")
+    ax.set_title(f"objective against {path}")
+    if len(bad_xs):
+        ax.legend(loc="best")
     return Drawing(f"objective_vs_{_safe(path)}", f"The objective of every answered case against {path}.", fig)
 
 
 def margins_against(path: str, xunit: str, limits: list) -> Drawing:
     """Each limit's smallest margin (its unit; below zero: broken) against one swept
     value. ``limits``: list of (name, unit, xs, margins)."""
-    with _rc():
-        n = len(limits)
-        ncol = 2 if n > 1 else 1
-        nrow = max(1, math.ceil(n / ncol))
-        fig, axes = _figure(nrow, ncol, width=5.0, height=2.8)
-        for ax, (name, unit, xs, ms) in zip(axes, limits):
-            xs, ms = np.asarray(xs, float), np.asarray(ms, float)
-            broken = ms < 0
-            ax.plot(xs[~broken], ms[~broken], "o", color=INK, ms=4.5, label="inside")
-            if broken.any():
-                ax.plot(xs[broken], ms[broken], "o", color=LIMIT, ms=5, label="broken")
-            ax.axhline(0.0, color=REFERENCE, ls=(0, (6, 3)), lw=1.1, label="the limit (no margin)")
-            ax.set_title(f"{name}: smallest margin")
-            ax.set_ylabel(unit or "-")
-            ax.legend(loc="best")
-        for ax in axes[n:]:
-            ax.set_visible(False)
-        for ax in axes[:n]:
-            ax.set_xlabel(f"{path} ({xunit})" if xunit else path)
+    n = len(limits)
+    ncol = 2 if n > 1 else 1
+    nrow = max(1, math.ceil(n / ncol))
+    fig, axes = _figure(nrow, ncol, width=5.0, height=2.8)
+    for ax, (name, unit, xs, ms) in zip(axes, limits):
+        xs, ms = np.asarray(xs, float), np.asarray(ms, float)
+        broken = ms < 0
+        ax.plot(xs[~broken], ms[~broken], "o", color=INK, ms=4.5, label="inside")
+        if broken.any():
+            ax.plot(xs[broken], ms[broken], "o", color=LIMIT, ms=5, label="broken")
+        ax.axhline(0.0, color=REFERENCE, ls=(0, (6, 3)), lw=1.1, label="the limit (no margin)")
+        ax.set_title(f"{name}: smallest margin")
+        ax.set_ylabel(unit or "-")
+        ax.legend(loc="best")
+    for ax in axes[n:]:
+        ax.set_visible(False)
+    for ax in axes[:n]:
+        ax.set_xlabel(f"{path} ({xunit})" if xunit else path)
     return Drawing(f"margins_vs_{_safe(path)}", f"The smallest margin of each limit over the run against {path} "
                    "(distance to the nearest bound; below zero the limit is broken).", fig)
 
@@ -543,48 +510,45 @@ def ranking(labels, values, unit: str, width_chars: int = 46) -> Drawing:
     and the layout makes room for them."""
     wrapped = [textwrap.fill(str(s), width_chars) for s in labels]
     lines = sum(w.count("\n") + 1 for w in wrapped)
-    with _rc():
-        longest = max((len(line) for w in wrapped for line in w.splitlines()), default=10)
-        left = 0.35 + 0.068 * longest  # inches for the labels (7.5 pt characters are ~0.06 in wide)
-        fig, axes = _figure(1, 1, width=left + 4.5, height=0.26 * lines + 0.3 * len(labels) + 1.2, left=left)
-        ax = axes[0]
-        pos = np.arange(len(values))[::-1]
-        # dots, not bars: close objectives stay apart without a cut-off axis
-        ax.hlines(pos, min(values), values, color=PALETTE[0], lw=0.8, alpha=0.5)
-        ax.plot(values, pos, "o", color=INK, ms=6)
-        ax.set_yticks(pos, wrapped)
-        ax.grid(axis="y", visible=False)
-        ax.set_xlabel(f"objective ({unit})" if unit else "objective")
-        ax.set_title("ranking of the answered cases (best at the top)")
+    longest = max((len(line) for w in wrapped for line in w.splitlines()), default=10)
+    left = 0.35 + 0.068 * longest  # inches for the labels (7.5 pt characters are ~0.06 in wide)
+    fig, axes = _figure(1, 1, width=left + 4.5, height=0.26 * lines + 0.3 * len(labels) + 1.2, left=left)
+    ax = axes[0]
+    pos = np.arange(len(values))[::-1]
+    # dots, not bars: close objectives stay apart without a cut-off axis
+    ax.hlines(pos, min(values), values, color=PALETTE[0], lw=0.8, alpha=0.5)
+    ax.plot(values, pos, "o", color=INK, ms=6)
+    ax.set_yticks(pos, wrapped)
+    ax.grid(axis="y", visible=False)
+    ax.set_xlabel(f"objective ({unit})" if unit else "objective")
+    ax.set_title("ranking of the answered cases (best at the top)")
     return Drawing("ranking", "The best cases, ranked by their objective.", fig)
 
 
 def heatmap(p1: str, p2: str, v1, v2, z, unit: str) -> Drawing:
     """The objective over a two-way grid (``z[j, i]`` at ``v1[i]``, ``v2[j]``; NaN blank)."""
-    with _rc():
-        fig, axes = _figure(1, 1, width=6.2, height=4.6)
-        ax = axes[0]
-        im = ax.imshow(z, origin="lower", aspect="auto", cmap="cividis")
-        ax.set_xticks(range(len(v1)), [_num(v) for v in v1])
-        ax.set_yticks(range(len(v2)), [_num(v) for v in v2])
-        ax.grid(False)
-        ax.set_xlabel(p1)
-        ax.set_ylabel(p2)
-        fig.colorbar(im, ax=ax, label=f"objective ({unit})" if unit else "objective")
-        ax.set_title("objective over the grid (blank: no answer)")
+    fig, axes = _figure(1, 1, width=6.2, height=4.6)
+    ax = axes[0]
+    im = ax.imshow(z, origin="lower", aspect="auto", cmap="cividis")
+    ax.set_xticks(range(len(v1)), [_num(v) for v in v1])
+    ax.set_yticks(range(len(v2)), [_num(v) for v in v2])
+    ax.grid(False)
+    ax.set_xlabel(p1)
+    ax.set_ylabel(p2)
+    fig.colorbar(im, ax=ax, label=f"objective ({unit})" if unit else "objective")
+    ax.set_title("objective over the grid (blank: no answer)")
     return Drawing("heatmap", f"The objective over the grid of {p1} and {p2}.", fig)
 
 
 def feed_profile(label: str, t, columns: dict) -> Drawing:
     """Step plot of a schedule: ``columns`` header -> rates (held until the next row)."""
-    with _rc():
-        fig, axes = _figure(1, 1, width=7.0, height=3.4)
-        ax = axes[0]
-        for j, (name, rates) in enumerate(columns.items()):
-            ax.step(t, rates, where="post", color=PALETTE[j % len(PALETTE)], lw=1.5, label=name)
-        ax.set_xlabel("time (h)")
-        ax.set_title(textwrap.shorten(f"feed profile of the best case: {label}", 110))
-        ax.legend(loc="best")
+    fig, axes = _figure(1, 1, width=7.0, height=3.4)
+    ax = axes[0]
+    for j, (name, rates) in enumerate(columns.items()):
+        ax.step(t, rates, where="post", color=PALETTE[j % len(PALETTE)], lw=1.5, label=name)
+    ax.set_xlabel("time (h)")
+    ax.set_title(textwrap.shorten(f"feed profile of the best case: {label}", 110))
+    ax.legend(loc="best")
     return Drawing("best_feed", "The pump schedule of the best case.", fig)
 
 
@@ -602,24 +566,23 @@ def feeds_against(feeds, answer, answer_end: float, nominal, nominal_end: float,
     """
     from ..units import factor_to
 
-    with _rc():
-        n = max(1, len(feeds))
-        fig, axes = _figure(n, 1, width=7.0, height=2.6)
-        names = [f.name for f in feeds]
-        for ax, feed in zip(axes, feeds):
-            k = names.index(feed.name)
-            f = factor_to(feed.unit)
-            for schedule, end, label, color, style in (
-                    (nominal, nominal_end, "the nominal optimum", FAN_REFERENCE, "--"),
-                    (answer, answer_end, "the answer over the scenarios", INK, "-")):
-                pieces = [(sg, np.linspace(sg.start, sg.end, 20)) for sg in schedule.segments(names, end)]
-                tt = np.concatenate([t for _, t in pieces])
-                rr = np.concatenate([sg.rates(t)[:, k] for sg, t in pieces])
-                ax.plot(tt, rr * f, color=color, ls=style, lw=1.4, label=label)
-            ax.set_title(f"pump {feed.name}")
-            ax.set_ylabel(feed.unit)
-            ax.legend(loc="best")
-        _finish(fig, axes, n, 1, title, np.array([0.0, max(answer_end, nominal_end)]))
+    n = max(1, len(feeds))
+    fig, axes = _figure(n, 1, width=7.0, height=2.6)
+    names = [f.name for f in feeds]
+    for ax, feed in zip(axes, feeds):
+        k = names.index(feed.name)
+        f = factor_to(feed.unit)
+        for schedule, end, label, color, style in (
+                (nominal, nominal_end, "the nominal optimum", FAN_REFERENCE, "--"),
+                (answer, answer_end, "the answer over the scenarios", INK, "-")):
+            pieces = [(sg, np.linspace(sg.start, sg.end, 20)) for sg in schedule.segments(names, end)]
+            tt = np.concatenate([t for _, t in pieces])
+            rr = np.concatenate([sg.rates(t)[:, k] for sg, t in pieces])
+            ax.plot(tt, rr * f, color=color, ls=style, lw=1.4, label=label)
+        ax.set_title(f"pump {feed.name}")
+        ax.set_ylabel(feed.unit)
+        ax.legend(loc="best")
+    _finish(fig, axes, n, 1, title, np.array([0.0, max(answer_end, nominal_end)]))
     return Drawing("figure-robust-feeds", "The pump profile chosen over the scenarios (solid) against the "
                    "nominal problem's optimum (dashed).", fig)
 
@@ -647,11 +610,10 @@ def fit_drawings(result) -> list[Drawing]:
         run in its colour) and ``figure-correlation`` (the correlation matrix of the
         estimates).
     """
-    with _rc():
-        out = _fit_figures(result)
-        out.append(_residuals_figure(result))
-        if len(result.estimates) > 1:
-            out.append(_correlation_figure(result))
+    out = _fit_figures(result)
+    out.append(_residuals_figure(result))
+    if len(result.estimates) > 1:
+        out.append(_correlation_figure(result))
     return out
 
 

@@ -209,14 +209,14 @@ def phases_dict(result) -> dict:
     return out
 
 
-def write_check_run(result, target, figures: bool = True) -> Path:
+def write_check_run(result, target, figures: bool = True, png: bool = False) -> Path:
     """Write a check result to the run folder ``target`` (must not exist).
 
     Files: summary.json, report.txt, limits.csv, schedule.csv (the schedule
     checked), report.html, trajectory.csv and the
-    figures figure-limits.png, figure-culture.png, figure-feeds.png (if the
-    simulation reached the end and ``figures``); with a Monte Carlo result also
-    montecarlo.csv (one row per sample) and figure-fan.png.
+    figures figure-limits.svg, figure-culture.svg, figure-feeds.svg (if the
+    simulation reached the end and ``figures``; each also as PNG if ``png``); with a
+    Monte Carlo result also montecarlo.csv (one row per sample) and figure-fan.svg.
     """
     from ..model import build_model
     from ..schedule import schedule_csv_text
@@ -251,7 +251,8 @@ def write_check_run(result, target, figures: bool = True) -> Path:
         elif figures and mc is not None and mc.bands:
             draw = lambda: [fan_drawing(mc.bands, f"{result.problem.name}: check over {mc.samples} samples")]  # noqa: E731
         write_report(tmp, lambda d, s, note: check_page(result, d, s, note), draw,
-                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).",
+                     png=png)
     return Path(target)
 
 
@@ -341,17 +342,18 @@ def _robust_summary(result) -> dict:
     return out
 
 
-def write_optimize_run(result, target, figures: bool = True) -> Path:
+def write_optimize_run(result, target, figures: bool = True, png: bool = False) -> Path:
     """Write an optimize result to the run folder ``target`` (must not exist).
 
     Files: summary.json, report.txt, limits.csv, report.html; when there is an
     answer also schedule.csv (the pump schedule, readable by ``optfeed check
     --schedule``), trajectory.csv (re-simulated), points.csv (the NLP's collocation
-    points) and the figures figure-limits.png, figure-culture.png, figure-feeds.png.
-    With an uncertainty section also montecarlo.csv and figure-fan.png (the answer
+    points) and the figures figure-limits.svg, figure-culture.svg, figure-feeds.svg
+    (each also as PNG if ``png``). With an uncertainty section also montecarlo.csv
+    and figure-fan.svg (the answer
     over the Monte Carlo sample) and, for a scenario solve, nominal-schedule.csv
     and montecarlo-nominal.csv (the nominal optimum, for comparison; not the
-    answer) and figure-robust-feeds.png (the two pump profiles). When the solve failed, the closest schedule the solver found is written as
+    answer) and figure-robust-feeds.svg (the two pump profiles). When the solve failed, the closest schedule the solver found is written as
     closest-schedule.csv (with its trajectory and figures), never as schedule.csv.
     """
     from ..model import build_model
@@ -417,7 +419,8 @@ def write_optimize_run(result, target, figures: bool = True) -> Path:
             draw = lambda: run_drawings(model, result.trajectory, points=result.points,  # noqa: E731
                                         title=f"{result.problem.name}: optimize - {result.status}") + fan
         write_report(tmp, lambda d, s, note: optimize_page(result, d, s, note), draw,
-                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: there is no simulated run." if figures else "Figures were not drawn (--no-figures).",
+                     png=png)
     return Path(target)
 
 
@@ -511,14 +514,14 @@ def residual_rows(result):
     return header, rows
 
 
-def write_fit_run(result, target, figures: bool = True) -> Path:
+def write_fit_run(result, target, figures: bool = True, png: bool = False) -> Path:
     """Write a fit result to the run folder ``target`` (must not exist).
 
     Files: summary.json, report.txt, report.html; when there are estimates also
     fitted.yaml (the problem file with the estimates written in), covariance.csv,
     residuals.csv, trajectory-<k>.csv (each run re-simulated at the estimates) and
-    the figures figure-fit.png (measured points with error bars against the fitted
-    runs), figure-residuals.png and figure-correlation.png.
+    the figures figure-fit.svg (measured points with error bars against the fitted
+    runs), figure-residuals.svg and figure-correlation.svg (each also as PNG if ``png``).
     """
     from ..fit.fitted import covariance_csv_text, fitted_yaml_text
     from ..model import build_model
@@ -550,5 +553,6 @@ def write_fit_run(result, target, figures: bool = True) -> Path:
         if figures and answer:
             draw = lambda: fit_drawings(result)  # noqa: E731
         write_report(tmp, lambda d, s, note: fit_page(result, d, s, note), draw,
-                     "No figures: the fit has no estimates." if figures else "Figures were not drawn (--no-figures).")
+                     "No figures: the fit has no estimates." if figures else "Figures were not drawn (--no-figures).",
+                     png=png)
     return Path(target)

@@ -206,7 +206,7 @@ def figures_section(drawings, svgs, note: str = "") -> Section:
     parts = []
     for d, svg in zip(drawings, svgs):
         parts.append(f'<figure id="{esc(d.name)}">{svg}<figcaption>{esc(d.caption)} '
-                     f'<span class=file>({esc(d.name)}.png in the folder)</span></figcaption></figure>')
+                     f'<span class=file>({esc(d.name)}.svg in the folder)</span></figcaption></figure>')
     return Section("figures", "Figures", "".join(parts) + (f"<p class=note>{esc(note)}</p>" if note else ""))
 
 
@@ -680,10 +680,10 @@ a{color:inherit;text-decoration:none}
 
 
 def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures: there is no simulated run.",
-                 figure_folder=None) -> None:
+                 figure_folder=None, png: bool = False) -> None:
     """Write ``folder/report.html``, with the figures of ``draw()`` (a list of
-    Drawing) saved as PNG in ``figure_folder`` (default: ``folder``) and shown
-    inline as SVG.
+    Drawing) saved as SVG in ``figure_folder`` (default: ``folder``), and as PNG
+    too if ``png``, and shown inline as SVG (the same text as the files).
 
     ``page_of(drawings, svgs, note)`` builds the :class:`Page`. Figures are a
     convenience: if drawing fails, the report says so (and figure-not-drawn.txt),
@@ -694,23 +694,26 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
     from pathlib import Path
 
     folder = Path(folder)
-    png_folder = Path(figure_folder) if figure_folder is not None else folder
+    fig_folder = Path(figure_folder) if figure_folder is not None else folder
     drawings, svgs, note = [], [], ("" if draw is not None else no_figures_note)
     if draw is not None:
-        from .figures import save_png, svg_text
+        from .figures import save_png, save_svg, svg_text
 
         try:
             drawings = draw()
-            png_folder.mkdir(parents=True, exist_ok=True)
+            fig_folder.mkdir(parents=True, exist_ok=True)
             for k, d in enumerate(drawings):
-                save_png(d, png_folder)
                 svgs.append(svg_text(d, f"f{k}-"))
+                save_svg(d, fig_folder, svgs[-1])
+                if png:
+                    save_png(d, fig_folder)
         except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figures a convenience
             note = f"The figures could not be drawn: {exc}"
-            png_folder.mkdir(parents=True, exist_ok=True)
-            (png_folder / "figure-not-drawn.txt").write_text(note + "\n")
+            fig_folder.mkdir(parents=True, exist_ok=True)
+            (fig_folder / "figure-not-drawn.txt").write_text(note + "\n")
             for d in drawings:
-                (png_folder / f"{d.name}.png").unlink(missing_ok=True)
+                (fig_folder / f"{d.name}.svg").unlink(missing_ok=True)
+                (fig_folder / f"{d.name}.png").unlink(missing_ok=True)
             drawings, svgs = [], []
     try:
         text = render(page_of(drawings, svgs, note))

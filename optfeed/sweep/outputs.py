@@ -170,7 +170,7 @@ def write_outputs(sweep, rows, folder: Path) -> None:
 
 
 def _report(sweep, rows, best, folder: Path, paths) -> None:
-    """figures/*.png and report.html (figures are a convenience; the CSV is the record)."""
+    """figures/*.svg and report.html (figures are a convenience; the CSV is the record)."""
     from ..report.html import sweep_page, write_report
 
     write_report(folder, lambda d, s, note: sweep_page(sweep, rows, best, d, s, note),
