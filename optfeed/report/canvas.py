@@ -415,7 +415,10 @@ def _attrs(**kw) -> str:
 
 
 def _points(xs, ys) -> str:
-    return " ".join(f"{x:.2f},{y:.2f}" for x, y in zip(xs, ys))
+    """'x,y x,y ...' to 0.01 pt (one formatting of the whole array: a line has up to
+    1500 points)."""
+    flat = np.column_stack([np.asarray(xs, float), np.asarray(ys, float)]).ravel()
+    return ("%.2f,%.2f " * (len(flat) // 2) % tuple(flat.tolist())).rstrip()
 
 
 class _SvgWriter:
@@ -487,20 +490,18 @@ class _SvgWriter:
 
     def markers(self, xs, ys, marker, ms, face, edge, mew, alpha=None, clip=None):
         r = ms / 2
-        parts = []
-        for x, y in zip(xs, ys):
-            if marker == "o":
-                parts.append(f'<circle cx="{x:.2f}" cy="{y:.2f}" r="{r:.2f}"/>')
-            elif marker == "x":
-                parts.append(f'<path d="M{x - r:.2f},{y - r:.2f}L{x + r:.2f},{y + r:.2f}'
-                             f'M{x - r:.2f},{y + r:.2f}L{x + r:.2f},{y - r:.2f}"/>')
-            elif marker == "_":
-                parts.append(f'<path d="M{x - r:.2f},{y:.2f}L{x + r:.2f},{y:.2f}"/>')
-            else:
-                raise ValueError(f"marker {marker!r} is not drawn by optfeed's canvas")
+        flat = tuple(np.column_stack([np.asarray(xs, float), np.asarray(ys, float)]).ravel().tolist())
+        n = len(flat) // 2
         fill = "none" if marker != "o" or face in (None, "none") else face
-        self.out.append(f'<g {_attrs(fill=fill, stroke=edge, stroke_width=f"{mew:g}", opacity=alpha, clip_path=clip)}>'
-                        + "".join(parts) + "</g>")
+        group = _attrs(fill=fill, stroke=edge, stroke_width=f"{mew:g}", opacity=alpha, clip_path=clip)
+        if marker == "o":  # circles; a cross and a bar as one path, each relative to its point
+            self.out.append(f"<g {group}>" + f'<circle cx="%.2f" cy="%.2f" r="{r:.2f}"/>' * n % flat + "</g>")
+            return
+        shape = {"x": f"m{-r:.2f},{-r:.2f}l{2 * r:.2f},{2 * r:.2f}m{-2 * r:.2f},0l{2 * r:.2f},{-2 * r:.2f}",
+                 "_": f"m{-r:.2f},0h{2 * r:.2f}"}.get(marker)
+        if shape is None:
+            raise ValueError(f"marker {marker!r} is not drawn by optfeed's canvas")
+        self.out.append(f'<path d="{("M%.2f,%.2f" + shape) * n % flat}" {group}/>')
 
     # ------------------------------------------------------------ a panel
 
@@ -829,10 +830,9 @@ def _along(px, py, spacing: float = 4.0):
     if len(px) < 2:
         return px, py
     seg = np.hypot(np.diff(px), np.diff(py))
-    n = np.minimum(np.ceil(seg / spacing).astype(int), 200) + 1
-    n[:] = np.maximum(n, 1)
-    t = np.concatenate([np.arange(k) / k for k in n])
+    n = np.minimum(np.ceil(seg / spacing).astype(int), 200) + 1  # points per segment, its start included
     i = np.repeat(np.arange(len(seg)), n)
+    t = (np.arange(len(i)) - np.repeat(np.cumsum(n) - n, n)) / np.repeat(n, n)
     out_x = px[i] + (px[i + 1] - px[i]) * t
     out_y = py[i] + (py[i + 1] - py[i]) * t
     return np.append(out_x, px[-1]), np.append(out_y, py[-1])
