@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from xml.sax.saxutils import escape
+from html import escape as _escape
 
 import numpy as np
 
@@ -307,6 +307,12 @@ def _fixed(v: float, decimals: int) -> str:
 
 def _short(v: float) -> str:
     return "0" if v == 0 else f"{v:.3g}".replace("-", "\u2212")
+
+
+def escape(text: str) -> str:
+    """Text for an SVG element's content (&, < and > escaped; html's escape is light
+    to import, xml.sax's pulls in urllib)."""
+    return _escape(text, quote=False)
 
 
 def _finite(values) -> np.ndarray:
