@@ -416,7 +416,7 @@ def _fit(problem, runs, profile, progress, t0) -> FitResult:
         if interrupted():
             raise KeyboardInterrupt
         w0 = nlp.pack(data, runs.runs, theta, courses.get(k, first), at_data=k not in courses)
-        s = solve(nlp, data, w0, label, profile="cold", tolerance=NLP_TOLERANCE, max_iter=1500)
+        s = solve(nlp, data, w0, label, profile="calibration", tolerance=NLP_TOLERANCE, max_iter=1500)
         # a solve that stops with a finite answer (IPOPT often ends a calibration with an
         # error in its step computation once it sits at the optimum) is handed to the
         # polish, which judges stationarity on the re-simulated runs; only a solve with
