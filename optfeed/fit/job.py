@@ -144,9 +144,9 @@ class FitResult:
 class _Fitter:
     """The pieces every stage of one fit shares."""
 
-    def __init__(self, problem, runs: Runs):
+    def __init__(self, problem, runs: Runs, model=None):
         self.problem, self.runs = problem, runs
-        self.model = build_model(problem)
+        self.model = build_model(problem) if model is None else model
         self.sim = Simulator(self.model)
         # the NLP's initial courses and scale only: a looser integrator (8 runs: 0.13
         # -> 0.075 s for both); every re-simulation that is reported or judged uses
@@ -401,14 +401,16 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     """
     t0 = time.perf_counter()
     problem = as_problem(problem, set)
+    model = None  # the model that read the runs file, used again by the fit
     if not isinstance(runs, Runs):
-        runs = load_runs(runs, problem, build_model(problem))
+        model = build_model(problem)
+        runs = load_runs(runs, problem, model)
     with interrupt_guard():
-        return _fit(problem, runs, profile, on_progress or (lambda text, done, total: None), t0)
+        return _fit(problem, runs, profile, on_progress or (lambda text, done, total: None), t0, model)
 
 
-def _fit(problem, runs, profile, progress, t0) -> FitResult:
-    job = _Fitter(problem, runs)
+def _fit(problem, runs, profile, progress, t0, model=None) -> FitResult:
+    job = _Fitter(problem, runs, model)
     record = {"problem_file": problem.source, "runs_file": runs.source, "problem_digest": problem_digest(problem),
               **stamp()}
 

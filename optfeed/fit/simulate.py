@@ -109,7 +109,7 @@ class Sampler:
     def __init__(self, model, estimated):
         self.model, self.estimated = model, list(estimated)
         self.idx = [model.constant_index(n) for n in self.estimated]
-        self._plain = Simulator(model, points_per_piece=1)
+        self._plain_sim = None  # built on first use: a fit without profiles needs only the sensitivities
         self._sens = Simulator(sensitivity_model(model, self.estimated), points_per_piece=1)
         m = model
         names = [q for q in m.values if q != "F_total"]
@@ -119,6 +119,12 @@ class Sampler:
             v_x = ca.jacobian(v, m.x)
             v_p = ca.jacobian(v, m.p)[:, self.idx]
             self._v = ca.Function("v", [m.t, m.x, m.u, m.p], [v, v_x, v_p])
+
+    @property
+    def _plain(self) -> Simulator:
+        if self._plain_sim is None:
+            self._plain_sim = Simulator(self.model, points_per_piece=1)
+        return self._plain_sim
 
     def values(self, run, constants, jacobian: bool = False):
         """(values, derivatives) at the run's sampling times.
