@@ -138,7 +138,7 @@ def part_published(repeats: int, work: Path) -> None:
         if o.get("end_time") and r.get("end_time") and abs(o["end_time"] - r["end_time"]) > 1e-6:
             print(f"   {'':<13} end time: optfeed {o['end_time']:.3f} h, reference {r['end_time']:.3f} h")
     print("   ratio = optfeed CPU / reference CPU (target: at most 1.0 on every problem); 'no figures': the same "
-          "command with --no-figures (what the figures cost: matplotlib's import, drawing, PNG and inline SVG)")
+          "command with --no-figures (what the figures cost: drawing them and writing their SVG)")
     print("   objectives re-simulated; "
           f"largest ratio {max(ratios.values()):.2f} ({max(ratios, key=ratios.get)})")
 
