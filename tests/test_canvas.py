@@ -138,3 +138,58 @@ def test_images_and_colour_bars_replay_and_draw():
     assert C.colormap("RdBu_r", 1.0) in fills and C.colormap("RdBu_r", 0.25) in fills
     fig = cv.matplotlib()
     assert len(fig.axes) == 2  # the panel and its colour bar
+
+
+def test_tick_labels_tell_every_tick_apart():
+    for lo, hi in ((1e6, 1.005e6), (0.2, 0.2003), (5.0, 5.00004)):
+        labels = C.tick_labels(C.nice_ticks(lo, hi, 6))
+        assert len(labels) >= 2 and len(set(labels)) == len(labels), labels
+
+
+def test_a_line_flat_up_to_rounding_gets_a_range_around_its_value():
+    for y in ([2.0, 2.0000000000000004], [0.0, 1e-300], [7.0, 7.0]):
+        cv = C.Canvas(4.0, 3.0)
+        ax = cv.panel(0.5, 0.5, 3.0, 2.0)
+        ax.plot([0.0, 1.0], y)
+        lo, hi = C._Frame(ax, 36, 36, 216, 144).ylim
+        assert lo < min(y) and hi > max(y) and hi - lo >= 0.09 * max(abs(v) for v in y + [1.0]) - 1e-12
+    ax = C.Canvas(4.0, 3.0).panel(0.5, 0.5, 3.0, 2.0)
+    ax.plot([0.0, 1.0], [1.0, 2.0])
+    ax.set_xlim(3.0, 3.0)  # a run that ends where it starts
+    assert np.all(np.isfinite(C._Frame(ax, 36, 36, 216, 144).x([3.0])))
+
+
+def test_missing_values_draw_nothing_and_break_a_band():
+    """NaN positions draw nothing (matplotlib's rule); a band with a gap is two
+    polygons, as matplotlib's fill_between leaves the gap open."""
+    cv = C.Canvas(4.0, 3.0)
+    ax = cv.panel(0.5, 0.5, 3.0, 2.0)
+    x = np.arange(10.0)
+    lo = np.where((x > 3) & (x < 6), np.nan, x)
+    ax.fill_between(x, lo, lo + 1.0, color="#4f7ea8", alpha=0.3)
+    ax.axhline(float("nan"), color="#000000")
+    ax.axvline(float("nan"), color="#000000")
+    ax.hlines([1.0, np.nan], 0.0, [2.0, 3.0], color="#000000")
+    ax.text(float("nan"), 1.0, "nowhere")
+    svg = cv.svg()
+    root = ET.fromstring(svg)
+    assert len(list(root.iter(f"{NS}polygon"))) == 2
+    assert "nan" not in svg.lower()
+
+
+def test_text_with_control_characters_still_parses():
+    cv = C.Canvas(4.0, 3.0)
+    ax = cv.panel(0.5, 0.5, 3.0, 2.0)
+    ax.plot([0, 1], [0, 1])
+    ax.set_title("batch\x01 run & <2>")
+    texts = [el.text for el in ET.fromstring(cv.svg()).iter(f"{NS}text")]
+    assert "batch\ufffd run & <2>" in texts
+
+
+def test_one_value_image_is_the_middle_of_its_colour_bar():
+    """A heat map whose answered cells all hold one value (matplotlib widens such a
+    colour scale around the value): the cell takes the bar's middle colour."""
+    cv = C.Canvas(5.0, 4.0)
+    ax = cv.panel(0.8, 0.4, 3.8, 3.0)
+    im = ax.imshow(np.array([[2.0, np.nan]]), cmap="cividis")
+    assert im.vmin < 2.0 < im.vmax and im.color(2.0) == C.colormap("cividis", 0.5)

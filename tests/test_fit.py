@@ -253,6 +253,37 @@ def test_covariance_file_feeds_a_problem_s_uncertainty_section(case1, tmp_path):
 # ---------------------------------------------------------------- the command line and its files
 
 
+def test_fit_figures_show_each_run_s_samples_and_fitted_course(case1):
+    """The fit's figures: one panel per run and measured quantity with the measured
+    samples' error bars (one standard deviation of the error model) and the fitted
+    re-simulation; the residual panels; the correlation matrix (symmetric, ones on
+    its diagonal). Read back through the matplotlib replay."""
+    import xml.etree.ElementTree as ET
+
+    from optfeed.report import figures as F
+
+    _, _, _, _, r = case1
+    drawings = {d.name: d for d in F.fit_drawings(r)}
+    assert set(drawings) == {"figure-fit", "figure-residuals", "figure-correlation"}
+    for d in drawings.values():
+        ET.fromstring(F.svg_text(d))  # well-formed
+    fig = drawings["figure-fit"].figure.matplotlib()
+    quantities = list(r.runs.quantities)
+    assert len(fig.axes) == len(r.runs.runs) * len(quantities)
+    first = r.runs.runs[0].name
+    d = next(x for x in r.residuals if x["run"] == first and x["quantity"] == quantities[0] and x["count"])
+    ax = next(ax for ax in fig.axes if ax.get_title(loc="left") == f"{first}: {quantities[0]}")
+    bars = ax.containers[0]  # matplotlib's ErrorbarContainer: (points, caps, bars)
+    segments = bars.lines[2][0].get_segments()
+    spans = np.array([abs(s[1][1] - s[0][1]) for s in segments])
+    unit = {x["quantity"]: x["unit"] for x in r.residuals}[quantities[0]]
+    from optfeed.units import factor_to
+
+    assert spans == pytest.approx(2 * np.asarray(d["sigma"]) * factor_to(unit), rel=1e-9)
+    corr = drawings["figure-correlation"].figure.matplotlib().axes[0].get_images()[0].get_array()
+    assert np.allclose(np.diag(corr), 1.0) and np.allclose(corr, corr.T)
+
+
 def test_command_line_writes_a_run_folder_that_optimize_reads(case1, tmp_path):
     """fitted.yaml reads back with the estimates (to the digits written) and is the
     problem that was fitted otherwise; summary.json holds what the result holds."""

@@ -18,6 +18,7 @@ tick labels needs.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from html import escape as _escape
 
@@ -32,6 +33,7 @@ GRID = "#b0b0b0"
 GRID_OPACITY = 0.28
 DEFAULT_COLOR = "#1f77a8"
 MARGIN = 0.05  # of the data range, added on each side of an axis scaled to its data
+TINY = 1e-200  # values all smaller than this are drawn as zero (tick arithmetic fails near 1e-308)
 
 # colour maps: eleven evenly spaced anchors each, interpolated linearly
 # (cividis and the reversed ColorBrewer RdBu, both open colour maps)
@@ -132,6 +134,8 @@ class Panel:
         self._record("plot", (x, y) if fmt is None else (x, y, fmt), kw)
 
     def step(self, x, y, **kw):
+        if kw.get("where", "pre") != "post":
+            raise ValueError("optfeed's canvas draws steps held until the next x only: where='post'")
         self._record("step", (x, y), kw)
 
     def axhline(self, y, **kw):
@@ -150,6 +154,8 @@ class Panel:
         self._record("hlines", (y, xmin, xmax), kw)
 
     def errorbar(self, x, y, **kw):
+        if kw.get("fmt") != "o":
+            raise ValueError("optfeed's canvas draws error bars on circles without a line only: fmt='o'")
         self._record("errorbar", (x, y), kw)
 
     def text(self, x, y, s, **kw):
@@ -161,6 +167,8 @@ class Panel:
         finite = values[np.isfinite(values)]
         lo = kw.get("vmin", float(finite.min()) if finite.size else 0.0)
         hi = kw.get("vmax", float(finite.max()) if finite.size else 1.0)
+        if hi <= lo:  # one value: a range around it, as matplotlib's colour scale takes
+            lo, hi = (lo - 0.1 * abs(lo), hi + 0.1 * abs(hi)) if lo else (-0.1, 0.1)
         image = Image(values, kw.get("cmap", "cividis"), lo, hi)
         self.calls[-1] = ("imshow", (z,), kw, image)
         return image
@@ -292,8 +300,12 @@ def tick_labels(ticks: list[float]) -> list[str]:
         return [_short(ticks[0])]
     step = abs(ticks[1] - ticks[0])
     big = max(abs(t) for t in ticks)
-    if big >= 1e6 or step < 1e-4:
-        return [_short(t) for t in ticks]
+    if big >= 1e6 or step < 1e-4:  # significant digits, as many as tell the ticks apart
+        for digits in range(3, 16):
+            labels = [_short(t, digits) for t in ticks]
+            if len(set(labels)) == len(labels):
+                return labels
+        return labels
     decimals = 0
     while decimals < 8 and abs(round(step, decimals) - step) > 1e-9 * step:
         decimals += 1
@@ -305,14 +317,17 @@ def _fixed(v: float, decimals: int) -> str:
     return text[1:] if text.startswith("-") and float(text) == 0 else text.replace("-", "\u2212")
 
 
-def _short(v: float) -> str:
-    return "0" if v == 0 else f"{v:.3g}".replace("-", "\u2212")
+def _short(v: float, digits: int = 3) -> str:
+    return "0" if v == 0 else f"{v:.{digits}g}".replace("-", "\u2212")
+
+
+_CONTROL = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f]")  # not allowed in XML 1.0
 
 
 def escape(text: str) -> str:
     """Text for an SVG element's content (&, < and > escaped; html's escape is light
     to import, xml.sax's pulls in urllib)."""
-    return _escape(text, quote=False)
+    return _escape(_CONTROL.sub("\ufffd", text), quote=False)
 
 
 def _finite(values) -> np.ndarray:
@@ -386,8 +401,12 @@ class _Frame:
                 self.xticks = (list(args[0]), None if len(args) < 2 else list(args[1]), kw)
             elif name == "set_yticks":
                 self.yticks = (list(args[0]), None if len(args) < 2 else list(args[1]), kw)
-        self.xlim = self.xlim or _limits(xs, x_tight)
-        self.ylim = self.ylim or _limits(ys, y_tight)
+        self.xlim = _limits(xs, x_tight) if self.xlim is None else self.xlim
+        self.ylim = _limits(ys, y_tight) if self.ylim is None else self.ylim
+        if self.xlim[0] == self.xlim[1]:  # set_xlim(a, a): a run that ends where it starts
+            self.xlim = _widened(*self.xlim)
+        if self.ylim[0] == self.ylim[1]:
+            self.ylim = _widened(*self.ylim)
         if self.image is not None and self.image[1] == "upper":
             self.ylim = (self.ylim[1], self.ylim[0])
 
@@ -407,13 +426,21 @@ def _limits(parts, tight: bool) -> tuple[float, float]:
     if values.size == 0:
         return (0.0, 1.0)
     lo, hi = float(values.min()), float(values.max())
-    if hi == lo:
-        d = 0.05 * abs(lo) if lo else 0.05
-        return (lo - d, hi + d)
+    if not np.isfinite(hi - lo):  # beyond what a float spans: the finite middle part
+        lo, hi = np.percentile(values, [1, 99])
+    if hi - lo <= 1e-12 * max(abs(lo), abs(hi)) or max(abs(lo), abs(hi)) < TINY:
+        return _widened(lo, hi)  # constant, up to rounding
     if tight:
         return (lo, hi)
     pad = MARGIN * (hi - lo)
     return (lo - pad, hi + pad)
+
+
+def _widened(lo: float, hi: float) -> tuple[float, float]:
+    """A range around one value: 5 % of it on each side (0.05 around zero)."""
+    mid = 0.5 * (lo + hi)
+    d = 0.05 * abs(mid) if abs(mid) > TINY else 0.05
+    return (mid - d, mid + d)
 
 
 def _attrs(**kw) -> str:
@@ -633,6 +660,9 @@ class _SvgWriter:
                 self.markers(f.x(x[ok]), f.y(y[ok]), marker, ms, mfc, mec, mew, alpha, clip)
                 style.update(marker=marker, ms=ms, mfc=mfc, mec=mec, mew=mew, line=joined)
             entry = ("line", style)
+        elif name in ("axhline", "axvline", "axvspan", "text") and not all(
+                np.isfinite(float(v)) for v in args[:2 if name != "axhline" and name != "axvline" else 1]):
+            return None  # nothing to draw where a position is missing (as matplotlib)
         elif name == "axhline":
             self.line([f.x0, f.x0 + f.w], [f.y(args[0])] * 2, color, lw, kw.get("ls"), alpha, clip)
             entry = ("line", {"color": color, "lw": lw, "ls": kw.get("ls"), "alpha": alpha})
@@ -645,15 +675,20 @@ class _SvgWriter:
             entry = ("patch", {"color": color, "alpha": alpha})
         elif name == "fill_between":
             x, y1, y2 = (np.asarray(a, float) for a in args)
+            y1, y2 = np.broadcast_to(y1, x.shape), np.broadcast_to(y2, x.shape)
             ok = np.isfinite(x) & np.isfinite(y1) & np.isfinite(y2)
-            xs, top, low = f.x(x[ok]), f.y(y2[ok]), f.y(y1[ok])
-            pts = _points(np.concatenate([xs, xs[::-1]]), np.concatenate([top, low[::-1]]))
-            self.out.append(f'<polygon points="{pts}" {_attrs(fill=color, fill_opacity=alpha, clip_path=clip)}/>')
+            edges = np.flatnonzero(np.diff(np.concatenate([[0], ok.astype(int), [0]])))
+            for a, b in zip(edges[::2], edges[1::2]):  # one polygon per stretch without gaps
+                xs, top, low = f.x(x[a:b]), f.y(y2[a:b]), f.y(y1[a:b])
+                pts = _points(np.concatenate([xs, xs[::-1]]), np.concatenate([top, low[::-1]]))
+                self.out.append(f'<polygon points="{pts}" {_attrs(fill=color, fill_opacity=alpha, clip_path=clip)}/>')
             entry = ("patch", {"color": color, "alpha": alpha})
         elif name == "hlines":
             ys = np.atleast_1d(np.asarray(args[0], float))
             x1 = np.broadcast_to(np.asarray(args[1], float), ys.shape)
             x2 = np.broadcast_to(np.asarray(args[2], float), ys.shape)
+            ok = np.isfinite(ys) & np.isfinite(x1) & np.isfinite(x2)
+            ys, x1, x2 = ys[ok], x1[ok], x2[ok]
             d = "".join(f"M{a:.2f},{c:.2f}H{b:.2f}" for a, b, c in zip(f.x(x1), f.x(x2), f.y(ys)))
             self.out.append(f'<path d="{d}" {_attrs(fill="none", stroke=color, stroke_width=f"{lw:g}", stroke_opacity=alpha, clip_path=clip)}/>')
             entry = ("line", {"color": color, "lw": lw, "alpha": alpha})
@@ -805,7 +840,7 @@ def _covered_points(f: _Frame, p: Panel):
             if name == "fill_between":
                 px = np.concatenate([px, px])
                 py = np.concatenate([py, f.y(np.asarray(args[2], float))])
-            elif len(px) > 1 and (len(args) < 3 or args[2] == "-"):
+            elif name != "errorbar" and len(px) > 1 and (len(args) < 3 or args[2] == "-"):
                 px, py = _along(px, py)
         elif name == "axhline":
             px = np.linspace(left, right, 60)

@@ -199,14 +199,16 @@ def limits_section(reports, values=None, objective_unit: str = "", objective_val
     return Section("limits", title, body + note + "</p>")
 
 
-def figures_section(drawings, svgs, note: str = "") -> Section:
-    """Inline SVG figures with captions; ``svgs`` is the SVG text of each drawing."""
+def figures_section(drawings, svgs, note: str = "", subfolder: str = "") -> Section:
+    """Inline SVG figures with captions; ``svgs`` is the SVG text of each drawing;
+    ``subfolder``: where the files are within the run folder ('' for the folder itself)."""
     if not drawings:
         return Section("figures", "Figures", f"<p>{esc(note or 'No figures were drawn.')}</p>")
     parts = []
     for d, svg in zip(drawings, svgs):
         parts.append(f'<figure id="{esc(d.name)}">{svg}<figcaption>{esc(d.caption)} '
-                     f'<span class=file>({esc(d.name)}.svg in the folder)</span></figcaption></figure>')
+                     f'<span class=file>({esc(subfolder + "/" + d.name + ".svg" if subfolder else d.name + ".svg in the folder")})'
+                     '</span></figcaption></figure>')
     return Section("figures", "Figures", "".join(parts) + (f"<p class=note>{esc(note)}</p>" if note else ""))
 
 
@@ -482,7 +484,7 @@ def sweep_page(sweep, rows, best, drawings=(), svgs=(), figure_note: str = "", t
     if notes:
         body += "<p>Cases that are not " + esc(good_word) + ":</p><ul class=cases>" + "".join(notes) + "</ul>"
     sections.append(Section("cases", "Every case", body))
-    sections.append(figures_section(drawings, svgs, figure_note))
+    sections.append(figures_section(drawings, svgs, figure_note, subfolder="figures"))
     if sweep.schedule_text:
         sections.append(Section("schedule", "The schedule checked",
                                 f"<pre>{esc(sweep.schedule_text)}</pre>"))
@@ -702,11 +704,11 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
         try:
             drawings = draw()
             fig_folder.mkdir(parents=True, exist_ok=True)
-            for k, d in enumerate(drawings):
-                svgs.append(svg_text(d, f"f{k}-"))
+            for d in drawings:
+                # ids named after the drawing: unique on the page, and two runs' files
+                # pasted into one page clash only for the same figure
+                svgs.append(svg_text(d, f"{d.name}-"))
                 save_svg(d, fig_folder, svgs[-1])
-                if png:
-                    save_png(d, fig_folder)
         except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figures a convenience
             note = f"The figures could not be drawn: {exc}"
             fig_folder.mkdir(parents=True, exist_ok=True)
@@ -715,6 +717,15 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
                 (fig_folder / f"{d.name}.svg").unlink(missing_ok=True)
                 (fig_folder / f"{d.name}.png").unlink(missing_ok=True)
             drawings, svgs = [], []
+        if png and drawings:
+            try:
+                for d in drawings:
+                    save_png(d, fig_folder)
+            except Exception as exc:  # noqa: BLE001 - the SVG files stand; only the PNG copies are missing
+                for d in drawings:
+                    (fig_folder / f"{d.name}.png").unlink(missing_ok=True)
+                note = f"The PNG copies of the figures could not be written: {exc}"
+                (fig_folder / "figure-not-drawn.txt").write_text(note + "\n")
     try:
         text = render(page_of(drawings, svgs, note))
     except Exception as exc:  # noqa: BLE001 - never lose a run's numbers for its report
