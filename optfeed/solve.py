@@ -112,12 +112,14 @@ def ipopt_options(tolerance: float, profile: str, copies: int = 1) -> dict:
         # measured alike, and the ordering then matters little (AMF 89, METIS 73 ms)
         "ipopt.mumps_pivot_order": 2 if copies == 1 else 5,
         **({} if copies == 1 else {"ipopt.mumps_scaling": 7}),
-        # a short solve from a nearby answer of a scenario NLP: no permuting scaling
-        # (its matching grows about 150x from one block to sixteen and is paid once
-        # per solve). Interleaved on the 16-scenario stage: 18.8/14.7 -> 14.6/12.3 s
-        # CPU, the same iterations and optimum; 8 scenarios alike. For every solve it
-        # changed IPOPT's path (4 scenarios: 501 iterations from a cold start)
-        **({"ipopt.mumps_permuting_scaling": 0} if copies > 1 and profile in ("warm", "near") else {}),
+        # a short solve from a nearby answer of a scenario NLP of more than 8 blocks:
+        # no permuting scaling (its matching grows about 150x from one block to
+        # sixteen and is paid once per solve). Interleaved on the scenario stage: 16
+        # scenarios 18.8/14.7 -> 14.6/12.3 s CPU, the same iterations and optimum; 8
+        # alike; 4 about 7 % more (2.95/3.14 -> 3.15/3.36 s: slower warm solves). For
+        # every solve it changed IPOPT's path (4 scenarios: 501 iterations from a cold
+        # start, as from a simulated feed with the 'near' profile)
+        **({"ipopt.mumps_permuting_scaling": 0} if copies > 8 and profile in ("warm", "near") else {}),
         # MUMPS' working space: 100 % more than its estimate, not IPOPT's default of
         # 1000 %; the larger one is allocated and zeroed at every factorization (16
         # scenarios: 5.3 s of system time per solve, 0.03 s with 100 %; one block:
