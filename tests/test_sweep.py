@@ -124,8 +124,13 @@ def test_run_store_outputs_and_resume(tmp_path):
     assert (df.loc[broken, "vessel.oxygen.transfer_max [mmol/L/h]"] == 6).all()
     assert (df.loc[broken, "margin: OTR ceiling [mmol/L/h]"] < 0).all()
     assert (df.loc[~broken, "margin: OTR ceiling [mmol/L/h]"] > 0).all()
+    # a folder written before (a PNG copy, a note of a failed drawing) is left without stale figures
+    (out / "figures" / "ranking.png").write_bytes(b"stale")
+    (out / "figures" / "figure-not-drawn.txt").write_text("stale")
     again = run_sweep(path, out, workers=2)
     assert (again.ran, again.skipped) == (0, 4)
+    assert not (out / "figures" / "ranking.png").exists()
+    assert not (out / "figures" / "figure-not-drawn.txt").exists()
     # change one value of the base problem: every case changes, all run again
     prob = tmp_path / "animal_cell.yaml"
     prob.write_text(prob.read_text().replace("k_d: 0.004 1/h", "k_d: 0.005 1/h"))

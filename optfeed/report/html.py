@@ -709,6 +709,9 @@ def write_report(folder, page_of, draw=None, no_figures_note: str = "No figures:
                 # pasted into one page clash only for the same figure
                 svgs.append(svg_text(d, f"{d.name}-"))
                 save_svg(d, fig_folder, svgs[-1])
+                if not png:  # a folder written again (a sweep's figures/): no stale copy
+                    (fig_folder / f"{d.name}.png").unlink(missing_ok=True)
+            (fig_folder / "figure-not-drawn.txt").unlink(missing_ok=True)
         except Exception as exc:  # noqa: BLE001 - the numbers are the record, the figures a convenience
             note = f"The figures could not be drawn: {exc}"
             fig_folder.mkdir(parents=True, exist_ok=True)
