@@ -286,7 +286,7 @@ class _Fitter:
             if -(gf @ gn) <= STATIONARY * max(cost, 1.0):
                 converged = True
                 break
-            improved = False
+            improved = simulated = False
             while lam < 1e12:
                 try:
                     trial = np.clip(theta + self._bounded_step(theta, r, J, free, lam, second), self.lower,
@@ -299,6 +299,7 @@ class _Fitter:
                 except SimulationError:
                     lam *= 10
                     continue
+                simulated = True
                 if np.all(np.isfinite(rt)) and rt @ rt < cost:
                     gain = cost - float(rt @ rt)
                     second = _secant_update(second, trial - theta, (Jt - J).T @ rt)
@@ -308,7 +309,9 @@ class _Fitter:
                     break
                 lam *= 10
             if not improved:
-                converged = True  # no step gains anything: a (bounded) stationary point
+                # no step gains anything: a (bounded) stationary point; unless no trial
+                # could even be simulated, which says nothing about stationarity
+                converged = simulated
                 break
             if gain <= 1e-15 * max(cost, 1.0):
                 converged = True

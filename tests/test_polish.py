@@ -1,0 +1,93 @@
+"""The fit's polish (Levenberg-Marquardt with a secant estimate of the second-order
+part of the Hessian) on a small least-squares problem with large residuals.
+
+References: Dennis & Schnabel, Numerical Methods for Unconstrained Optimization and
+Nonlinear Equations (1983), Example 10.2.4 (r_i = exp(t_i x) - y_i, t = 1, 2, 3,
+y = 2, 4, y_3: Gauss-Newton converges slowly or not at all as the residuals grow,
+and the structured Newton step with S = sum r_i r_i'' converges quadratically), with
+the optimum computed independently by scipy.optimize.least_squares; the secant
+equation and the exact recovery of a constant Hessian by symmetric rank-one updates
+from independent steps (Nocedal & Wright, Numerical Optimization, Theorem 6.1).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.optimize import least_squares
+
+from optfeed.errors import SimulationError
+from optfeed.fit.job import _Fitter, _secant_update
+
+T = np.array([1.0, 2.0, 3.0])
+
+
+class _Exponential(_Fitter):
+    """The example's residuals behind the polish's interface (no runs, no simulator)."""
+
+    def __init__(self, y3: float, lower=-5.0, upper=5.0):
+        self.y = np.array([2.0, 4.0, y3])
+        self.lower, self.upper = np.array([lower]), np.array([upper])
+        self.simulations = 0
+
+    def residuals(self, theta, jacobian: bool = False):
+        self.simulations += 1
+        e = np.exp(T * theta[0])
+        r = e - self.y
+        return (r, (T * e).reshape(-1, 1)) if jacobian else r
+
+    def second(self, theta) -> np.ndarray:
+        """The exact second-order part sum r_i r_i''."""
+        e = np.exp(T * theta[0])
+        return np.array([[float(np.sum((e - self.y) * T ** 2 * e))]])
+
+
+def optimum(y3: float) -> float:
+    y = np.array([2.0, 4.0, y3])
+    fit = least_squares(lambda x: np.exp(T * x[0]) - y, [1.0], xtol=1e-15, ftol=1e-15, gtol=1e-15)
+    return float(fit.x[0])
+
+
+@pytest.mark.parametrize("e", [1e-2, 1e-3])
+def test_a_step_with_the_second_order_part_converges_quadratically(e):
+    job = _Exponential(-4.0)
+    x = optimum(-4.0)
+    theta = np.array([x + e])
+    r, J = job.residuals(theta, jacobian=True)
+    free = np.array([True])
+    newton = job._bounded_step(theta, r, J, free, 1e-14, job.second(theta))
+    assert abs(theta[0] + newton[0] - x) <= 5 * e ** 2
+    gauss_newton = job._bounded_step(theta, r, J, free, 1e-14)
+    assert abs(theta[0] + gauss_newton[0] - x) > e  # the example's Gauss-Newton ratio is above 1 here
+
+
+def test_the_secant_update_meets_the_secant_equation_and_recovers_a_constant_hessian():
+    rng = np.random.default_rng(3)
+    A = rng.normal(size=(3, 3))
+    H = A + A.T
+    S = np.zeros((3, 3))
+    for _ in range(3):
+        s = rng.normal(size=3)
+        S = _secant_update(S, s, H @ s)
+        assert S @ s == pytest.approx(H @ s, rel=1e-10, abs=1e-12)
+        assert np.allclose(S, S.T)
+    assert np.allclose(S, H, atol=1e-10)
+
+
+@pytest.mark.parametrize("y3", [-1.0, -4.0, -8.0])
+def test_the_polish_reaches_scipy_s_optimum(y3):
+    job = _Exponential(y3)
+    theta, r, J, converged, _ = job.polish(np.array([1.0]))
+    assert converged
+    assert theta[0] == pytest.approx(optimum(y3), abs=1e-5)
+
+
+def test_a_polish_whose_trials_all_fail_is_not_converged():
+    class Failing(_Exponential):
+        def residuals(self, theta, jacobian: bool = False):
+            if theta[0] != 1.0:
+                raise SimulationError("the integrator failed", 0.0)
+            return super().residuals(theta, jacobian)
+
+    theta, _, _, converged, _ = Failing(-4.0).polish(np.array([1.0]))
+    assert not converged and theta[0] == 1.0
