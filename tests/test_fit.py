@@ -444,3 +444,34 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
         got = np.array(ca.densify(got))
         assert got.shape == want.shape
         np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())
+
+
+def test_among_starts_that_stopped_short_the_better_re_simulated_fit_is_polished(tmp_path, monkeypatch):
+    """Two starts that both stop short of convergence: the one whose NLP objective
+    is smaller but whose estimate fits the runs worse when re-simulated (an iterate
+    that is not feasible) is not the one polished. The first start's answer is
+    moved to parameters far from the data's (mu_max at 3x) with half the objective;
+    the second keeps its own answer with twice it."""
+    import dataclasses
+    import importlib
+
+    J = importlib.import_module("optfeed.fit.job")  # optfeed.fit is also the function's name
+    problem, runs, _ = fitcase.write_case(tmp_path, seed=1, starts=2)
+    real = J.solve
+    calls = []
+
+    def stopped_short(nlp, data, w0, label, **kw):
+        s = real(nlp, data, w0, label, **kw)
+        calls.append(label)
+        w = np.array(s.w, dtype=float)
+        if len(calls) == 1:
+            theta = nlp.W.get(w, "theta").ravel()
+            nlp.W.put(w, "theta", theta * np.where(np.arange(len(theta)) == 0, 3.0, 1.0))
+            return dataclasses.replace(s, status="failed", w=w, objective=0.5 * s.objective)
+        return dataclasses.replace(s, status="failed", objective=2.0 * s.objective)
+
+    monkeypatch.setattr(J, "solve", stopped_short)
+    r = optfeed.fit(problem, runs)
+    assert len(calls) == 2
+    second = r.starts[1]
+    assert r.record["polish"]["nlp_chi2"] == pytest.approx(second["chi2"], rel=1e-12)

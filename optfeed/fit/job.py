@@ -444,7 +444,7 @@ def _fit(problem, runs, profile, progress, t0, model=None) -> FitResult:
     progress("building the calibration NLP", 0, total)
     nlp = get_fit_nlp(job.model, runs.runs, job.names, ELEMENTS_PER_RUN)
     data = nlp.data(runs.runs, job.sigma, job.lower, job.upper, job.scale, np.where(xs > 1e-9, xs, 1.0))
-    starts, best, best_theta = [], None, None
+    starts, best, best_theta, best_rank = [], None, None, None
     for k, (label, theta) in enumerate(guesses):
         if interrupted():
             raise KeyboardInterrupt
@@ -471,9 +471,14 @@ def _fit(problem, runs, profile, progress, t0, model=None) -> FitResult:
                        "estimate": None if estimate is None else _floats(estimate)})
         progress(f"start {k + 1}/{len(guesses)}: {s.status}" + ("" if chi2 is None else f", chi-square {chi2:.6g}"),
                  k + 1, total)
-        if s.objective is not None and (best is None or (s.status == "converged", -s.objective) >
-                                        (best.status == "converged", -best.objective)):
-            best, best_theta = s, estimate
+        # the best start: a converged one by its chi-square; among starts that stopped
+        # short, by the chi-square of their estimate re-simulated (an NLP iterate that
+        # is not feasible can have a small objective and a poor fit)
+        if s.objective is not None:
+            rank = (True, -chi2) if s.status == "converged" else (
+                False, -(job.chi2(estimate) if estimate is not None else np.inf))
+            if best is None or rank > best_rank:
+                best, best_theta, best_rank = s, estimate, rank
     if best is None:
         return result(NOT_CONVERGED, "no start gave an answer: widen the bounds, give a better start, or check "
                       "that the data and the model describe the same runs", starts=starts)
