@@ -392,7 +392,7 @@ class _Frame:
                 xs.append(np.array([-0.5, nc - 0.5]))
                 ys.append(np.array([-0.5, nr - 0.5]))
                 x_tight = y_tight = True
-                self.image = (call[3], kw.get("origin", "upper"))
+                self.image = (call[3], kw.get("origin", "upper"), kw.get("aspect", "equal"))
             elif name == "set_xlim":
                 self.xlim = (float(args[0]), float(args[1]))
             elif name == "set_ylim":
@@ -477,8 +477,7 @@ class _SvgWriter:
                 full = w
                 w = 0.8 * full
             frame = _Frame(p, left, top, w, h)
-            if frame.image is not None and dict(p.calls[[c[0] for c in p.calls].index("imshow")][2]).get(
-                    "aspect", "equal") == "equal":
+            if frame.image is not None and frame.image[2] == "equal":
                 frame = self._square(p, frame)
             self.panel(p, frame)
             if bar is not None:
@@ -645,8 +644,8 @@ class _SvgWriter:
             if fmt is not None and fmt not in ("o", "x", "-"):
                 raise ValueError(f"format {fmt!r} is not drawn by optfeed's canvas")
             joined = fmt in (None, "-")  # a format naming a marker alone draws no line
-            if name == "step":  # where="post": each value held until the next x
-                x, y = np.repeat(x, 2)[1:], np.repeat(y, 2)[:-1]
+            if name == "step":
+                x, y = _held(x, y)
             style = {"color": color, "lw": lw, "ls": kw.get("ls"), "alpha": alpha}
             if joined:
                 for xs, ys in _runs(f.x(x), f.y(y)):
@@ -661,7 +660,7 @@ class _SvgWriter:
                 style.update(marker=marker, ms=ms, mfc=mfc, mec=mec, mew=mew, line=joined)
             entry = ("line", style)
         elif name in ("axhline", "axvline", "axvspan", "text") and not all(
-                np.isfinite(float(v)) for v in args[:2 if name != "axhline" and name != "axvline" else 1]):
+                np.isfinite(float(v)) for v in args[:1 if name in ("axhline", "axvline") else 2]):
             return None  # nothing to draw where a position is missing (as matplotlib)
         elif name == "axhline":
             self.line([f.x0, f.x0 + f.w], [f.y(args[0])] * 2, color, lw, kw.get("ls"), alpha, clip)
@@ -676,9 +675,7 @@ class _SvgWriter:
         elif name == "fill_between":
             x, y1, y2 = (np.asarray(a, float) for a in args)
             y1, y2 = np.broadcast_to(y1, x.shape), np.broadcast_to(y2, x.shape)
-            ok = np.isfinite(x) & np.isfinite(y1) & np.isfinite(y2)
-            edges = np.flatnonzero(np.diff(np.concatenate([[0], ok.astype(int), [0]])))
-            for a, b in zip(edges[::2], edges[1::2]):  # one polygon per stretch without gaps
+            for a, b in _stretches(np.isfinite(x) & np.isfinite(y1) & np.isfinite(y2)):  # a polygon each
                 xs, top, low = f.x(x[a:b]), f.y(y2[a:b]), f.y(y1[a:b])
                 pts = _points(np.concatenate([xs, xs[::-1]]), np.concatenate([top, low[::-1]]))
                 self.out.append(f'<polygon points="{pts}" {_attrs(fill=color, fill_opacity=alpha, clip_path=clip)}/>')
@@ -795,15 +792,21 @@ _ZORDER = {"plot": 2, "step": 2, "axhline": 2, "axvline": 2, "hlines": 2, "error
            "fill_between": 1, "imshow": 0, "text": 3}
 
 
+def _stretches(ok) -> list[tuple[int, int]]:
+    """(start, stop) of each run of True in the mask ``ok`` (NaN breaks a line or a band)."""
+    edges = np.flatnonzero(np.diff(np.concatenate([[0], np.asarray(ok, dtype=int), [0]])))
+    return list(zip(edges[::2], edges[1::2]))
+
+
 def _runs(xs, ys):
-    """The stretches of a line between missing values (NaN breaks a line)."""
-    ok = np.isfinite(xs) & np.isfinite(ys)
-    if ok.all():
-        yield xs, ys
-        return
-    edges = np.flatnonzero(np.diff(np.concatenate([[0], ok.astype(int), [0]])))
-    for a, b in zip(edges[::2], edges[1::2]):
+    """The stretches of a line between missing values."""
+    for a, b in _stretches(np.isfinite(xs) & np.isfinite(ys)):
         yield xs[a:b], ys[a:b]
+
+
+def _held(x, y):
+    """A step line's corners: each value held until the next x (where='post')."""
+    return np.repeat(x, 2)[1:], np.repeat(y, 2)[:-1]
 
 
 # the candidate places of a legend, in the order they are tried (first of the least covered wins)
@@ -836,7 +839,7 @@ def _covered_points(f: _Frame, p: Panel):
         if name in ("plot", "step", "fill_between", "errorbar"):
             px, py = f.x(np.asarray(args[0], float)), f.y(np.asarray(args[1], float))
             if name == "step":
-                px, py = np.repeat(px, 2)[1:], np.repeat(py, 2)[:-1]
+                px, py = _held(px, py)
             if name == "fill_between":
                 px = np.concatenate([px, px])
                 py = np.concatenate([py, f.y(np.asarray(args[2], float))])
