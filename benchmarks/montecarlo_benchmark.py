@@ -8,7 +8,8 @@ inhibited_product_robust_schedule.csv: 80 pump steps, on the OTR ceiling for hou
 so the judgement refines many peaks). Each is run with one and two worker processes
 on the same 200 samples, and the CPU time per sample of one process is printed for
 the samples integrated together (as `check` and `optimize` do) and one by one (the
-per-sample path), with the same verdicts checked.
+per-sample path), with the same verdicts checked; batched also with Adams' method
+(which `monte_carlo` chooses where it needs less work on the nominal run).
 
 Run:  python benchmarks/montecarlo_benchmark.py [--samples N] [--optimize]
 
@@ -55,15 +56,17 @@ def parts(repeats: int = 20) -> tuple[float, float]:
     return (t1 - t0) / repeats, (t2 - t1) / repeats
 
 
-def cpu_per_sample(schedule, samples: int, batch: int) -> tuple[float, list]:
+def cpu_per_sample(schedule, samples: int, batch: int, method: str = "bdf") -> tuple[float, list]:
     """CPU seconds per sample of one process simulating and judging ``samples``
-    samples, ``batch`` at a time; and their verdicts."""
+    samples, ``batch`` at a time with CVODES' ``method``; and their verdicts."""
     p = optfeed.load_problem(PROBLEM)
     m = build_model(p)
     plan = optfeed.load_schedule(schedule, m.feed_names, 40.0)
     drawn = scenario_set(p, m, count=samples, seed=1, method="random", nominal=False)
+    _chunk((p, plan, 40.0, drawn.constants[:, :batch], drawn.x0[:, :batch], None, batch, method),
+           lambda k: None)  # the integrators built before the clock starts
     t0 = time.process_time()
-    out = _chunk((p, plan, 40.0, drawn.constants, drawn.x0, None, batch), lambda k: None)
+    out = _chunk((p, plan, 40.0, drawn.constants, drawn.x0, None, batch, method), lambda k: None)
     return (time.process_time() - t0) / samples, [(d["status"], d.get("broken")) for d in out]
 
 
@@ -77,17 +80,20 @@ def main() -> None:
     mc_seconds = {}
     for label, schedule in (("push plan", PLAN), ("robust optimum", ROBUST)):
         print(f"-- {label} ({schedule.name})")
-        n = min(args.samples, 48)
+        n, b = min(args.samples, 48), batch_size(args.samples)
         one, v1 = cpu_per_sample(schedule, n, 1)
-        many, vb = cpu_per_sample(schedule, n, batch_size(args.samples))
-        print(f"CPU per sample, one process, {n} samples: one by one {one * 1e3:.1f} ms, {batch_size(args.samples)} "
-              f"together {many * 1e3:.1f} ms (ratio {one / many:.2f}; same verdicts: {v1 == vb})")
+        many, vb = cpu_per_sample(schedule, n, b)
+        adams, va = cpu_per_sample(schedule, n, b, "adams")
+        print(f"CPU per sample, one process, {n} samples: one by one {one * 1e3:.1f} ms, {b} together "
+              f"{many * 1e3:.1f} ms (ratio {one / many:.2f}; same verdicts: {v1 == vb}); {b} together with "
+              f"Adams' method {adams * 1e3:.1f} ms (ratio to BDF {adams / many:.2f}; same verdicts: {v1 == va})")
         rates, results = {}, {}
         for workers in (1, 2):
             r = monte_carlo(PROBLEM, schedule, samples=args.samples, seed=1, workers=workers)
             rates[workers], results[workers] = r.samples_per_second, r
             print(f"{workers} worker(s): {args.samples} samples in {r.seconds:.2f} s = {r.samples_per_second:.1f} "
-                  f"samples/s ({r.seconds / args.samples * 1e3:.1f} ms per sample, nominal run included)")
+                  f"samples/s ({r.seconds / args.samples * 1e3:.1f} ms per sample, nominal runs included; "
+                  f"method chosen: {r.method})")
         same = [x.status for x in results[1].runs] == [x.status for x in results[2].runs]
         print(f"ratio 2 workers / 1 worker: {rates[2] / rates[1]:.2f} (same verdicts: {same}); "
               f"any limit broken: {results[2].any_limit.broken} of {results[2].judged}")

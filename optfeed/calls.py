@@ -18,10 +18,12 @@ import casadi as ca
 import numpy as np
 
 
-def call(f: ca.Function, inputs: dict, outputs) -> list[np.ndarray]:
+def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> list[np.ndarray]:
     """Evaluate ``f`` with ``inputs`` (input name -> array; inputs not named are
     zero) and return the named ``outputs`` as flat arrays in CasADi's column-major
     order (reshape them as needed). Every input and output used must be dense.
+    ``stats``: a dict to which the evaluation's whole-number statistics are added
+    (for an integrator: steps, right-hand-side evaluations, ...).
 
     Raises RuntimeError where the Function fails (as a plain call does), ValueError
     where an input has the wrong number of values."""
@@ -46,4 +48,8 @@ def call(f: ca.Function, inputs: dict, outputs) -> list[np.ndarray]:
             buffer.set_res(j, memoryview(res))
         out.append(res)
     run()
+    if stats is not None:
+        for key, value in buffer.stats().items():
+            if isinstance(value, int) and not isinstance(value, bool):
+                stats[key] = stats.get(key, 0) + value
     return out

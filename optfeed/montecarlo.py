@@ -7,7 +7,10 @@ simulates the schedule for each with CVODES (:class:`optfeed.simulate.Simulator`
 and judges every run with :func:`optfeed.limits.judge`, exactly as ``optfeed check``
 judges the nominal run. The samples are shared out over processes (one model and
 integrator per process); a sample whose simulation fails counts as such and is
-reported, never dropped.
+reported, never dropped. The nominal run is integrated as ``check`` integrates it
+(CVODES' BDF method); the samples with BDF or Adams' method, whichever needed less
+work on the nominal run (:func:`optfeed.simulate.cheaper_method`; the same
+tolerances either way).
 
 For each limit the probability of breaking it is estimated as the fraction of the
 simulated samples that break it, with a 95 % Wilson score interval
@@ -191,6 +194,10 @@ class MonteCarloResult:
         Wall time of the simulations.
     workers : int
         Processes used.
+    method : str
+        CVODES' multistep method the samples were integrated with, 'bdf' or 'adams'
+        (:func:`optfeed.simulate.cheaper_method`; the nominal run is always
+        integrated with 'bdf', as ``check`` integrates it).
     """
 
     samples: int
@@ -212,6 +219,7 @@ class MonteCarloResult:
     seconds: float = 0.0
     workers: int = 1
     not_run: int = 0
+    method: str = "bdf"
 
     @property
     def samples_per_second(self) -> float:
@@ -267,6 +275,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     from .problem.uncertain import MAX_SAMPLES, MAX_SEED
     from .processes import cpu_count
     from .schedule import Schedule, checked_schedule, load_schedule
+    from .simulate import Simulator, cheaper_method
     from .uncertainty import scenario_set
 
     problem = as_problem(problem)
@@ -291,7 +300,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     else:
         schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     limits = build_limits(model, phases=True)
-    sim = _keep_built(problem, model, limits)
+    sim = Simulator(model)
     drawn = scenario_set(problem, model, count=int(samples), seed=int(seed), method="random", nominal=False)
     if workers is None:
         workers = cpu_count()
@@ -300,11 +309,16 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     workers = max(1, min(int(workers), int(samples)))
 
     t0 = time.perf_counter()
-    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, sim, deadline=deadline)
-    outs = _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline)
+    # the nominal run is judged as `check` judges it (BDF); the samples are integrated
+    # with the method that needs less work on it (simulate.cheaper_method)
+    method, runs = cheaper_method(model, schedule, tf, {"bdf": sim}, deadline)
+    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, sim, deadline=deadline,
+                            traj=runs["bdf"])
+    _keep_built(problem, model, limits, method)
+    outs = _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline, method)
     seconds = time.perf_counter() - t0
     return _result(model, limits, drawn, nominal, outs, int(samples), int(seed), seconds, workers,
-                   objective_label(model))
+                   objective_label(model), method)
 
 
 # ------------------------------------------------------------------ simulating the samples
@@ -353,8 +367,8 @@ def _chunk(job, progress=None) -> list:
     reported for the sample it belongs to, as before."""
     from .processes import report_progress
 
-    problem, schedule, tf, constants, x0, deadline, batch = job
-    model, limits, sim = _built(problem)
+    problem, schedule, tf, constants, x0, deadline, batch, method = job
+    model, limits, sim = _built(problem, method)
     out = []
     # a batch that fails or meets the time limit gives None: its samples are then
     # simulated one by one (to name the failing one, or to meet the limit each)
@@ -374,28 +388,31 @@ def _chunk(job, progress=None) -> list:
 _KEPT = None
 
 
-def _keep_built(problem, model, limits):
-    """Keep ``model`` and ``limits`` of ``problem`` (with a new Simulator) for the
-    chunks run after this in this process or its forks; the Simulator."""
+def _keep_built(problem, model, limits, method: str = "bdf"):
+    """Keep ``model`` and ``limits`` of ``problem`` (with a new Simulator using
+    ``method``) for the chunks run after this in this process or its forks; the
+    Simulator."""
     global _KEPT
     from .simulate import Simulator
 
-    sim = Simulator(model)
+    sim = Simulator(model, method=method)
     _KEPT = (problem, pickle.dumps(problem), model, limits, sim)
     return sim
 
 
-def _built(problem):
-    """(model, limits, simulator) of ``problem``: those kept, when they are of the
-    same problem (the same object, or one pickled from an equal one), else built."""
+def _built(problem, method: str = "bdf"):
+    """(model, limits, simulator using ``method``) of ``problem``: those kept, when
+    they are of the same problem (the same object, or one pickled from an equal
+    one) and method, else built."""
     from .limits import build_limits
     from .model import build_model
 
-    if _KEPT is not None and (_KEPT[0] is problem or _KEPT[1] == pickle.dumps(problem)):
+    if (_KEPT is not None and _KEPT[4].method == method
+            and (_KEPT[0] is problem or _KEPT[1] == pickle.dumps(problem))):
         return _KEPT[2:]
     model = build_model(problem)
     limits = build_limits(model, phases=True)
-    sim = _keep_built(problem, model, limits)
+    sim = _keep_built(problem, model, limits, method)
     return model, limits, sim
 
 
@@ -407,8 +424,8 @@ def batch_size(samples: int) -> int:
     return max(1, min(BATCH, math.ceil(samples / 8)))
 
 
-def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) -> list:
-    """Every sample's dict, in drawing order."""
+def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None, method="bdf") -> list:
+    """Every sample's dict, in drawing order (integrated with CVODES' ``method``)."""
     n = drawn.count
     batch = batch_size(n)
     total = [0]
@@ -421,14 +438,14 @@ def _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline=None) 
             on_progress(f"Monte Carlo: {total[0]}/{n} samples simulated", total[0], n)
 
     if workers == 1:
-        return _chunk((problem, schedule, tf, drawn.constants, drawn.x0, deadline, batch), progress)
+        return _chunk((problem, schedule, tf, drawn.constants, drawn.x0, deadline, batch, method), progress)
 
     from .processes import run_killable
 
     size = batch * max(1, math.ceil(n / (workers * CHUNKS_PER_WORKER * batch)))  # whole batches
     starts = list(range(0, n, size))
     items = [(k, (problem, schedule, tf, drawn.constants[:, s:s + size], drawn.x0[:, s:s + size], deadline,
-                  batch))
+                  batch, method))
              for k, s in enumerate(starts)]
     results = {}
 
@@ -459,7 +476,8 @@ def _quantiles(values):
     return float(np.percentile(values, 5)), float(np.percentile(values, 50))
 
 
-def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers, label_unit) -> MonteCarloResult:
+def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers, label_unit,
+            method="bdf") -> MonteCarloResult:
     from .units import factor_to
 
     u = model.problem.uncertainty
@@ -510,7 +528,7 @@ def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers
         objective_label=label, objective_unit=unit, objective=objective, names=tuple(drawn.names), units=units,
         distributions=tuple(distribution_text(v) for v in u.values), runs=tuple(runs),
         bands=_bands(limits, nominal, judged), nominal_status=nominal["status"], seconds=seconds,
-        workers=workers, not_run=n_not_run,
+        workers=workers, not_run=n_not_run, method=method,
     )
 
 

@@ -18,7 +18,7 @@ import html
 from dataclasses import dataclass, field
 
 from .. import __version__
-from .text import CAUTION, fmt
+from .text import CAUTION, METHOD_WORDS, fmt
 
 GOOD, WARN, BAD = "good", "warn", "bad"
 
@@ -311,7 +311,8 @@ def uncertainty_section(mc, uncertain=(), title: str = "Over the uncertain value
                           caption="The uncertain values (a normal or lognormal value has the file's value as its "
                                   "mean)."))
     body.append(f"<p class=note>{mc.samples} samples in {esc(fmt(mc.seconds, 3))} s on {mc.workers} process(es) "
-                f"({esc(fmt(mc.samples_per_second, 3))} samples/s); every sample in montecarlo.csv.</p>")
+                f"({esc(fmt(mc.samples_per_second, 3))} samples/s; integrated with {esc(METHOD_WORDS[mc.method])}); "
+                f"every sample in montecarlo.csv.</p>")
     failed = [r for r in mc.runs if r.status == "simulation failed"][:5]
     if failed:
         body.append("<ul class=cases>" + "".join(f"<li>sample {r.index + 1}: {esc(r.message)}</li>" for r in failed)

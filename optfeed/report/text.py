@@ -5,6 +5,9 @@ from __future__ import annotations
 from ..limits import REL_TOL, bound_scale
 from ..marginals import binding_sides
 
+# CVODES' multistep methods as the reports name them (see optfeed.simulate.cheaper_method)
+METHOD_WORDS = {"bdf": "CVODES' BDF method", "adams": "CVODES' Adams method, less work than BDF on the nominal run"}
+
 CAUTION = (
     "Caution: a model-based feed profile is a hypothesis, not a release for manufacturing.\n"
     "Verify it at small scale first. Overfilling can foam out, wet exhaust filters and break\n"
@@ -146,7 +149,7 @@ def uncertainty_lines(mc, problem) -> list[str]:
         lines.append(f"    {v.name:<24} {text}")
     rate = mc.samples_per_second
     lines.append(f"  {mc.samples} samples in {mc.seconds:.1f} s on {mc.workers} process(es) "
-                 f"({rate:.3g} samples/s).")
+                 f"({rate:.3g} samples/s; integrated with {METHOD_WORDS[mc.method]}).")
     failed = [r for r in mc.runs if r.status == "simulation failed"][:3]
     for r in failed:
         lines.append(f"  sample {r.index + 1} failed: {r.message}")
