@@ -365,14 +365,19 @@ def asked_outside(traj: Trajectory, j: int, lower: float, upper: float, t0: floa
     return total, np.array(times), np.array(vols)
 
 
-def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, values=None) -> tuple:
+def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, values=None,
+          locate: bool = True) -> tuple:
     """A :class:`LimitReport` per limit for trajectory ``traj``; also returns the
     per-sample use (% of the upper bound) as a dict name -> array. A limit counts as
     broken where it is exceeded by more than ``rel_tol`` of its bound; extrema and
     first crossings between samples are found as the module docstring says. A
     limit of one phase is judged over that phase's samples only (its use is NaN
     elsewhere); a phase's pump range by the volume asked outside it. ``values``:
-    :func:`evaluate` of the same trajectory, if computed already."""
+    :func:`evaluate` of the same trajectory, if computed already. ``locate``: narrow
+    down the moment each broken limit is first crossed (False: its first_violation
+    is the first judged time past the bound, a sample or a refined point; every
+    verdict, extremum and margin is the same either way; the Monte Carlo, which
+    reports no times, judges so)."""
     fs = _phase_functions(model, limits, traj)
     g = _values(fs, traj, len(limits)) if values is None else np.asarray(values, dtype=float)
     reports, use = [], {}
@@ -402,7 +407,8 @@ def judge(model: Model, limits, traj: Trajectory, rel_tol: float = REL_TOL, valu
         tol = lim.tolerance(rel_tol)
         first = None
         if slack[k] < -tol:
-            first = _first_crossing(traj, fs, i, lim, g[:, i], extra_t, extra_v, tol, window)
+            first = (_first_crossing(traj, fs, i, lim, g[:, i], extra_t, extra_v, tol, window) if locate
+                     else float(all_t[slack < -tol].min()))
         peak = None
         if lim.upper is not None and lim.upper > 0:
             if not lim.at_end:  # an end bound says nothing about the run before the end

@@ -498,3 +498,34 @@ def test_either_method_follows_a_stiff_system(tmp_path, method):
     sel = traj.t > 0.05  # past the fast transient, where a relative comparison means something
     exact = np.array([expm(A * t) @ [1.0, 0.0] for t in traj.t[sel]])
     np.testing.assert_allclose(traj.x[sel][:, [m.index("A"), m.index("B")]], exact, rtol=1e-7)
+
+
+def test_the_samples_are_judged_without_locating_crossing_times():
+    """The Monte Carlo reports no crossing times, so its judgement does not narrow
+    them down: on samples of the shipped uncertain example's robust optimum (several
+    break limits) every verdict, margin, extremum and peak is that of the full
+    judgement, and the first violation is the first judged time past the bound, at
+    or after the located crossing and within one sample spacing of it."""
+    from optfeed.limits import build_limits, evaluate, judge
+    from optfeed.uncertainty import scenario_set
+
+    p = optfeed.load_problem(REPO / "configs" / "inhibited_product_uncertain.yaml")
+    m = build_model(p)
+    plan = optfeed.load_schedule(HERE / "uncertain" / "inhibited_product_robust_schedule.csv", m.feed_names, 40.0)
+    drawn = scenario_set(p, m, count=8, seed=3, method="random", nominal=False)
+    limits = build_limits(m, phases=True)
+    sim = Simulator(m)
+    broken = 0
+    for k in range(drawn.count):
+        traj = sim.run(plan, 40.0, x0=drawn.x0[:, k], p=drawn.constants[:, k])
+        g = evaluate(m, limits, traj)
+        full, _ = judge(m, limits, traj, values=g)
+        quick, _ = judge(m, limits, traj, values=g, locate=False)
+        spacing = np.max(np.diff(traj.t))
+        for a, b in zip(full, quick):
+            assert (a.violated, a.min_slack, a.time_min_slack, a.worst_violation, a.peak_use) == \
+                   (b.violated, b.min_slack, b.time_min_slack, b.worst_violation, b.peak_use)
+            if a.violated:
+                broken += 1
+                assert a.first_violation <= b.first_violation <= a.first_violation + spacing
+    assert broken >= 3
