@@ -84,6 +84,9 @@ def _parser() -> argparse.ArgumentParser:
     w.add_argument("--fresh-process-per-case", action="store_true",
                    help="run every case in a new process (default: each worker process runs case after case and "
                         "keeps the solvers it built)")
+    w.add_argument("--png", action="store_true",
+                   help="also write the sweep's own figures (figures/) as PNG files, drawn with matplotlib (the "
+                        "cases' run folders keep SVG only)")
     w.add_argument("--quiet", action="store_true", help="print only the final status line")
 
     f = sub.add_parser("fit", help="calibrate the problem's parameters against past runs, with confidence")
@@ -399,7 +402,8 @@ def _sweep(args) -> int:
     folder = Path(args.out) if args.out is not None else Path(args.results) / sweep.name
     if args.quiet:
         result = run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, retry=args.retry_failed,
-                           allow_symlink=args.allow_symlink, fresh_process_per_case=args.fresh_process_per_case)
+                           allow_symlink=args.allow_symlink, fresh_process_per_case=args.fresh_process_per_case,
+                           png=args.png)
     else:
         result = _sweep_with_progress(sweep, folder, args)
         _out(summary_text(sweep, result.rows, _ranked(sweep, result.rows)), end="")
@@ -438,7 +442,7 @@ def _sweep_with_progress(sweep, folder, args):
 
         return run_sweep(sweep, folder, workers=args.workers, scheduler=args.scheduler, on_event=event,
                          retry=args.retry_failed, allow_symlink=args.allow_symlink,
-                         fresh_process_per_case=args.fresh_process_per_case)
+                         fresh_process_per_case=args.fresh_process_per_case, png=args.png)
 
 
 def _with_progress(job, first: str = "optimizing"):

@@ -131,6 +131,14 @@ def test_run_store_outputs_and_resume(tmp_path):
     assert (again.ran, again.skipped) == (0, 4)
     assert not (out / "figures" / "ranking.png").exists()
     assert not (out / "figures" / "figure-not-drawn.txt").exists()
+    # --png (resuming: nothing runs again) adds a PNG of each of the sweep's own figures
+    from optfeed.cli import main
+
+    assert main(["sweep", str(path), "--out", str(out), "--png", "--quiet"]) == 0
+    svgs = sorted(p.stem for p in (out / "figures").glob("*.svg"))
+    assert svgs and svgs == sorted(p.stem for p in (out / "figures").glob("*.png"))
+    for png in (out / "figures").glob("*.png"):
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     # change one value of the base problem: every case changes, all run again
     prob = tmp_path / "animal_cell.yaml"
     prob.write_text(prob.read_text().replace("k_d: 0.004 1/h", "k_d: 0.005 1/h"))

@@ -151,7 +151,7 @@ def _limits_of(row) -> list:
     return []
 
 
-def write_outputs(sweep, rows, folder: Path) -> None:
+def write_outputs(sweep, rows, folder: Path, png: bool = False) -> None:
     folder = Path(folder)
     sense = sense_of(rows, sweep)
     paths = list(sweep.varied)
@@ -166,15 +166,16 @@ def write_outputs(sweep, rows, folder: Path) -> None:
     tmp_txt = folder / ".summary.txt.tmp"
     tmp_txt.write_text(summary_text(sweep, rows, best))
     os.replace(tmp_txt, folder / "summary.txt")
-    _report(sweep, rows, best, folder, paths)
+    _report(sweep, rows, best, folder, paths, png)
 
 
-def _report(sweep, rows, best, folder: Path, paths) -> None:
-    """figures/*.svg and report.html (figures are a convenience; the CSV is the record)."""
+def _report(sweep, rows, best, folder: Path, paths, png: bool = False) -> None:
+    """figures/*.svg (and .png with ``png``) and report.html (figures are a
+    convenience; the CSV is the record)."""
     from ..report.html import sweep_page, write_report
 
     write_report(folder, lambda d, s, note: sweep_page(sweep, rows, best, d, s, note),
-                 lambda: sweep_drawings(sweep, rows, best, paths), figure_folder=folder / "figures")
+                 lambda: sweep_drawings(sweep, rows, best, paths), figure_folder=folder / "figures", png=png)
 
 
 def summary_text(sweep, rows, best, top: int = 10) -> str:

@@ -81,7 +81,8 @@ _OWN_FILES = (STORE_NAME, LOCK_NAME, "summary.csv", "summary.txt", ".summary.csv
 
 def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None = None,
               on_event=None, retry: bool = False, allow_symlink: bool = False,
-              no_worker_timeout: float = NO_WORKER_TIMEOUT, fresh_process_per_case: bool = False) -> SweepResult:
+              no_worker_timeout: float = NO_WORKER_TIMEOUT, fresh_process_per_case: bool = False,
+              png: bool = False) -> SweepResult:
     """Run every case of ``sweep`` (a Sweep or a sweep file) not already finished in
     ``folder``'s store.
 
@@ -112,6 +113,9 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         Run every case in a new process (default: case processes run case after
         case and keep their built solvers, which a sweep of variants of one problem
         reuses). For comparisons and for cases that must not share a process.
+    png : bool
+        Also write the sweep's own figures (``figures/``) as PNG, drawn with
+        matplotlib; the cases' run folders keep their SVG figures only.
 
     Raises
     ------
@@ -195,7 +199,7 @@ def run_sweep(sweep, folder, workers: int | None = None, scheduler: str | None =
         failed = sum(1 for r in rows if r["status"] in BAD)
         not_run = [r for r in rows if r["status"] == NOT_RUN]
         try:
-            write_outputs(sweep, rows, folder)
+            write_outputs(sweep, rows, folder, png=png)
         except OSError as exc:
             stop["why"] = stop["why"] or f"the summary could not be written ({exc.strerror})"
         attempted = {t.key for t in tasks}
