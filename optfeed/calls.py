@@ -18,12 +18,17 @@ import casadi as ca
 import numpy as np
 
 
+# CVODES' counts of one integrator call (they start again at every call)
+COUNTS = ("nsteps", "nfevals", "nlinsetups", "netfails", "nniters", "nncfails")
+
+
 def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> list[np.ndarray]:
     """Evaluate ``f`` with ``inputs`` (input name -> array; inputs not named are
     zero) and return the named ``outputs`` as flat arrays in CasADi's column-major
     order (reshape them as needed). Every input and output used must be dense.
-    ``stats``: a dict to which the evaluation's whole-number statistics are added
-    (for an integrator: steps, right-hand-side evaluations, ...).
+    ``stats``: a dict to which an integrator's counts of this evaluation are added
+    (:data:`COUNTS`: steps, right-hand-side evaluations, Jacobian set-ups, ...; its
+    other statistics are running totals over the Function's life, or orders).
 
     Raises RuntimeError where the Function fails (as a plain call does), ValueError
     where an input has the wrong number of values."""
@@ -49,7 +54,8 @@ def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> li
         out.append(res)
     run()
     if stats is not None:
-        for key, value in buffer.stats().items():
-            if isinstance(value, int) and not isinstance(value, bool):
-                stats[key] = stats.get(key, 0) + value
+        own = buffer.stats()
+        for key in COUNTS:
+            if key in own:
+                stats[key] = stats.get(key, 0) + int(own[key])
     return out

@@ -241,7 +241,8 @@ def check(problem, schedule, end_time: float | None = None, set: dict | None = N
             return None
         mc = monte_carlo(problem, schedule, tf, samples=samples, seed=seed, workers=workers,
                          on_progress=on_progress, deadline=deadline)
-        record["monte_carlo"] = {"samples": mc.samples, "seed": mc.seed, "workers": mc.workers}
+        record["monte_carlo"] = {"samples": mc.samples, "seed": mc.seed, "workers": mc.workers,
+                                 "integration_method": mc.integration_method}
         return mc
 
     try:

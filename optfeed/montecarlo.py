@@ -197,10 +197,11 @@ class MonteCarloResult:
         Wall time of the simulations.
     workers : int
         Processes used.
-    method : str
+    integration_method : str
         CVODES' multistep method the samples were integrated with, 'bdf' or 'adams'
         (:func:`optfeed.simulate.cheaper_method`; the nominal run is always
-        integrated with 'bdf', as ``check`` integrates it).
+        integrated with 'bdf', as ``check`` integrates it, and so is a sample that
+        Adams' method could not finish).
     """
 
     samples: int
@@ -222,7 +223,7 @@ class MonteCarloResult:
     seconds: float = 0.0
     workers: int = 1
     not_run: int = 0
-    method: str = "bdf"
+    integration_method: str = "bdf"
 
     @property
     def samples_per_second(self) -> float:
@@ -336,7 +337,7 @@ def _simulate_one(model, limits, schedule, tf, p, x0, simulator=None, deadline=N
     from .simulate import Simulator
 
     sim = simulator or Simulator(model)
-    if deadline is not None and time.monotonic() > deadline:
+    if traj is None and deadline is not None and time.monotonic() > deadline:
         return {"status": NOT_RUN, "message": "the time limit was reached first"}
     try:
         if traj is None:
@@ -372,22 +373,32 @@ def _chunk(job, progress=None) -> list:
 
     problem, schedule, tf, constants, x0, deadline, batch, method = job
     model, limits, sim = _built(problem, method)
+    fallback = None  # a BDF Simulator, built for the first sample the chosen method cannot finish
     out = []
     # a batch that fails or meets the time limit gives None: its samples are then
     # simulated one by one (to name the failing one, or to meet the limit each)
     for cols, trajs in sim.run_in_batches(schedule, tf, x0, constants, batch, deadline):
         for k, traj in zip(cols, trajs):
-            out.append(_simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline, traj))
+            d = _simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], sim, deadline, traj)
+            if d["status"] == st.SIMULATION_FAILED and sim.method != "bdf":
+                # what Adams' method cannot finish is integrated again as `check` would
+                # (BDF) before it counts as a failure
+                from .simulate import Simulator
+
+                fallback = fallback or Simulator(model)
+                d = _simulate_one(model, limits, schedule, tf, constants[:, k], x0[:, k], fallback, deadline)
+            out.append(d)
             (progress or report_progress)(1)
     return out
 
 
 # (problem, its pickled bytes, model, limits, simulator) of the sample this process
 # judges last: the chunks that a worker process runs one after the other (and, by
-# fork, the parent's nominal run before them) share the model, the limits' Functions
-# and the integrators instead of building their own (measured: 13 chunks of 16
-# samples, each in a fresh process building its own, made two workers do 1.4 times
-# the samples per second of one)
+# fork, the parent, which keeps them before it starts the workers) share the model,
+# the limits' Functions and the samples' integrators instead of building their own
+# (measured: 13 chunks of 16 samples, each in a fresh process building its own, made
+# two workers do 1.4 times the samples per second of one); the nominal run has a
+# Simulator of its own (BDF, as `check`)
 _KEPT = None
 
 
@@ -531,7 +542,7 @@ def _result(model, limits, drawn, nominal, outs, samples, seed, seconds, workers
         objective_label=label, objective_unit=unit, objective=objective, names=tuple(drawn.names), units=units,
         distributions=tuple(distribution_text(v) for v in u.values), runs=tuple(runs),
         bands=_bands(limits, nominal, judged), nominal_status=nominal["status"], seconds=seconds,
-        workers=workers, not_run=n_not_run, method=method,
+        workers=workers, not_run=n_not_run, integration_method=method,
     )
 
 

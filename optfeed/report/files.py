@@ -153,7 +153,7 @@ def uncertainty_summary(mc, problem) -> dict:
                                                         "unit": mc.objective_unit},
         "values": values, "covariance_file": u.covariance_file or None,
         "seconds": mc.seconds, "workers": mc.workers, "samples_per_second": mc.samples_per_second,
-        "integration_method": mc.method,
+        "integration_method": mc.integration_method,
         "per_sample": "montecarlo.csv",
     }
 

@@ -311,7 +311,7 @@ def uncertainty_section(mc, uncertain=(), title: str = "Over the uncertain value
                           caption="The uncertain values (a normal or lognormal value has the file's value as its "
                                   "mean)."))
     body.append(f"<p class=note>{mc.samples} samples in {esc(fmt(mc.seconds, 3))} s on {mc.workers} process(es) "
-                f"({esc(fmt(mc.samples_per_second, 3))} samples/s; integrated with {esc(METHOD_WORDS[mc.method])}); "
+                f"({esc(fmt(mc.samples_per_second, 3))} samples/s; integrated with {esc(METHOD_WORDS[mc.integration_method])}); "
                 f"every sample in montecarlo.csv.</p>")
     failed = [r for r in mc.runs if r.status == "simulation failed"][:5]
     if failed:

@@ -149,7 +149,7 @@ def uncertainty_lines(mc, problem) -> list[str]:
         lines.append(f"    {v.name:<24} {text}")
     rate = mc.samples_per_second
     lines.append(f"  {mc.samples} samples in {mc.seconds:.1f} s on {mc.workers} process(es) "
-                 f"({rate:.3g} samples/s; integrated with {METHOD_WORDS[mc.method]}).")
+                 f"({rate:.3g} samples/s; integrated with {METHOD_WORDS[mc.integration_method]}).")
     failed = [r for r in mc.runs if r.status == "simulation failed"][:3]
     for r in failed:
         lines.append(f"  sample {r.index + 1} failed: {r.message}")
