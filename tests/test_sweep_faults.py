@@ -189,7 +189,11 @@ def test_cleanup_never_follows_a_link_and_removes_only_its_own_leftovers(tmp_pat
 
 
 def test_a_second_sweep_on_the_same_folder_is_refused(tmp_path):
-    path = sweep_file(tmp_path / "p", values="[0.003, 0.0032, 0.0034, 0.0036, 0.0038, 0.004]")
+    # enough cases that the first sweep still runs while the second process starts
+    # (six check cases once took about as long as a Python start, and the second
+    # then found them all done)
+    values = ", ".join(f"{0.003 + 0.00002 * i:.5f}" for i in range(80))
+    path = sweep_file(tmp_path / "p", values=f"[{values}]")
     out = tmp_path / "out"
     first = subprocess.Popen([sys.executable, "-m", "optfeed.cli", "sweep", str(path), "--out", str(out),
                               "--workers", "1", "--quiet"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
