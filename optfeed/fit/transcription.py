@@ -52,6 +52,7 @@ class FitData:
     x0: list = None  # per run: (nx,)
     y: np.ndarray = None  # (n_res,)
     weight: np.ndarray = None  # (n_res,)
+    volume0: list = None  # per run: initial volume (L), where the NLP takes V as data
 
 
 def stretches(run, feed_names, max_element: float):
@@ -67,6 +68,71 @@ def stretches(run, feed_names, max_element: float):
         n = max(1, int(np.ceil((b - a) / max_element - 1e-9)))
         out.append((a, b, n, seg, sample_at.get(b)))
     return out
+
+
+def pumped_volume(seg, t) -> np.ndarray:
+    """Volume (L) every pump of schedule segment ``seg`` delivers from the segment's
+    start to each time ``t`` (h, array), summed over the pumps: the integral of
+    (a + b tau) exp(k tau) over [0, t - start], in closed form (tau in h, a in L/h,
+    b in L/h^2, k in 1/h). Near k tau = 0 the closed form's terms cancel, so there
+    the power series of the same integrals is used (14 terms: below 1e-17 relative
+    for |k tau| < 0.05)."""
+    tau = np.asarray(t, dtype=float)[:, None] - seg.start
+    a, b, k = (np.asarray(v, dtype=float)[None, :] for v in (seg.a, seg.b, seg.k))
+    z = k * tau
+    small = np.abs(z) < 0.05
+    zs = np.where(small, z, 0.0)
+    zl = np.where(small, 1.0, z)
+    # int_0^1 e^{z s} ds and int_0^1 s e^{z s} ds
+    n = np.arange(14)[:, None, None]
+    fact = np.cumprod(np.concatenate([[1.0], np.arange(1.0, 14.0)]))[:, None, None]
+    series0 = np.sum(zs[None] ** n / (fact * (n + 1)), axis=0)
+    series1 = np.sum(zs[None] ** n / (fact * (n + 2)), axis=0)
+    with np.errstate(over="ignore", invalid="ignore"):
+        closed0 = np.expm1(zl) / zl
+        closed1 = (np.expm1(zl) * (zl - 1.0) + zl) / zl ** 2
+    i0 = np.where(small, series0, closed0)
+    i1 = np.where(small, series1, closed1)
+    return np.sum(a * tau * i0 + b * tau ** 2 * i1, axis=1)
+
+
+def volume_free(model: Model, runs) -> bool:
+    """Whether the calibration NLP takes the broth volume V as data rather than as a
+    state: V's rate is the sum of the pump rates (a schedule's numbers, see
+    :func:`optfeed.model.build_model`) and its jumps the sample volumes, so its
+    course is known before the fit, unless a run measured V (then the NLP keeps it
+    as a state, and the residuals compare it with the data)."""
+    if "V" not in model.state_names:
+        return False
+    m = model
+    rate = m.rhs[m.index("V")]
+    if ca.depends_on(rate, ca.vertcat(m.t, m.x, m.p)):
+        return False
+    jac = ca.jacobian(rate, m.u)
+    if not jac.is_constant() or not np.allclose(np.array(ca.DM(jac)), 1.0, rtol=0, atol=0):
+        return False
+    if float(ca.Function("r0", [m.u], [rate])(np.zeros(m.nu))) != 0.0:
+        return False
+    return not any(q == "V" and np.isfinite(y).any() for run in runs for q, y in run.values.items())
+
+
+def volume_as_input(model: Model):
+    """The model with V moved from its states to its inputs: (f, values, names),
+    f(t, x, [u; V], p) the right-hand side without V's row, values the named
+    quantities of :attr:`Model.values` as Functions of (t, x, [u; V], p), names the
+    states left (internal units, t in h, u in L/h, V in L)."""
+    m, iv = model, model.index("V")
+    names = [n for n in m.state_names if n != "V"]
+    x = ca.SX.sym("x", len(names))
+    V = ca.SX.sym("V")
+    x_full = ca.vertcat(x[:iv], V, x[iv:])
+    inputs = ca.vertcat(m.u, V)
+    rows = [i for i in range(m.nx) if i != iv]
+    rhs = ca.substitute(m.rhs, m.x, x_full)[rows]
+    f = ca.Function("f", [m.t, x, inputs, m.p], [rhs], ["t", "x", "u", "p"], ["o0"])
+    values = {n: ca.Function(f"v_{n}", [m.t, x, inputs, m.p], [ca.substitute(e, m.x, x_full)],
+                             ["t", "x", "u", "p"], ["o0"]) for n, e in m.values.items()}
+    return f, values, names
 
 
 def measurements(runs):
@@ -134,7 +200,13 @@ class FitNLP:
         The full model (its state layout is the runs' initial states'). The NLP
         itself leaves out its cumulative-feed states (``fed_<s>``): no data column
         can name one and no other state depends on them (8 runs: a fifth fewer
-        variables and rows, IPOPT's iterations about as much cheaper).
+        variables and rows, IPOPT's iterations about as much cheaper). Unless a
+        run measured it, the broth volume V is no variable either: its rate is the
+        sum of the pump rates and its jumps the sample volumes, all given, so its
+        value at every collocation point and sample is computed beforehand (the
+        run's initial volume, a parameter of the NLP, plus the volume pumped in
+        less the samples taken) and enters the collocation equations as an input
+        next to the pump rates (:func:`volume_as_input`).
     runs : sequence of optfeed.fit.runs.Run
         The runs whose structure (sampling times, measured values, schedules) the
         NLP takes; their numbers come with each solve's :class:`FitData`.
@@ -148,7 +220,16 @@ class FitNLP:
     def __init__(self, model: Model, runs, estimated, elements_per_run: int = 100, degree: int = 3):
         self.full = model
         self.model = m = build_model(model.problem, fed=[])
-        self.states = np.array([model.index(n) for n in m.state_names])  # their places in the full model's layout
+        self.volume_data = volume_free(m, runs)
+        if self.volume_data:
+            f, values, names = volume_as_input(m)
+        else:
+            f = m.function_p("f", [m.rhs])
+            values = {n: m.function_p(f"v_{n}", [e]) for n, e in m.values.items()}
+            names = list(m.state_names)
+        self.state_names = names  # the NLP's states
+        nx, nu = len(names), f.size1_in(2)  # nu: the pump rates, then V if it is data
+        self.states = np.array([model.index(n) for n in names])  # their places in the full model's layout
         self.estimated = list(estimated)
         self.n_runs = len(runs)
         # for MUMPS' settings (solve.ipopt_options) the runs are not copies sharing
@@ -164,26 +245,29 @@ class FitNLP:
         theta_s = W.add("theta", len(self.estimated))
         theta_index = W.indices("theta").ravel()
         theta_scale = P.add("theta_scale", len(self.estimated))
-        xs = P.add("x_scale", m.nx)
+        xs = P.add("x_scale", nx)
         idx = [m.constant_index(n) for n in self.estimated]
         select = np.zeros((m.n_constants, len(idx)))
         for j, i in enumerate(idx):
             select[i, j] = 1.0
         keep = np.ones(m.n_constants)
         keep[idx] = 0.0
-        f = m.function_p("f", [m.rhs])
-        v_index = m.index("V")
+        v_index = names.index("V") if "V" in names else None
         collocation, model_values, self.blocks = [], [], []
-        values = {n: m.function_p(f"v_{n}", [e]) for n, e in m.values.items()}
         # what the exact derivatives need (see _assemble): per element and per measured value
         elements = {"index": [], "first": [], "jump": [], "U": [], "t": [], "h": [], "run": []}
         points, links, copies = [], [], []
-        self._run_x0, self._run_constants = [], []
+        self._run_x0, self._run_constants, self._run_volume = [], [], []
         for r, run in enumerate(runs):
             const = P.add(f"r{r}.constants", m.n_constants)
-            x0 = P.add(f"r{r}.x0", m.nx)
+            x0 = P.add(f"r{r}.x0", nx)
             self._run_x0.append(x0)
             self._run_constants.append(const)
+            if self.volume_data:
+                # V = the run's initial volume + `pumped` (L): pumped in less the samples taken
+                volume0 = P.add(f"r{r}.V0")
+                self._run_volume.append(volume0)
+                pumped = 0.0
             # the run's own copy of the estimated parameters, equal to the shared ones
             # by equality rows: the runs' blocks then meet only through these rows,
             # not through three dense columns of the Jacobian and the Hessian
@@ -194,13 +278,20 @@ class FitNLP:
             p_run = const * ca.DM(keep) + ca.mtimes(ca.DM(select), copy * theta_scale)
             run_theta = copies[-1]
             x_start = x0
-            prev_end, jump = None, np.zeros(m.nx)
+            prev_end, jump = None, np.zeros(nx)
             blocks = []
             for k, (a, b, n, seg, sample) in enumerate(stretches(run, m.feed_names, run.end_time / elements_per_run)):
                 fr = np.linspace(0.0, 1.0, n + 1)
                 tau = np.append(0.0, ca.collocation_points(degree, "radau"))
                 times = (a + (b - a) * (fr[:-1, None] + np.diff(fr)[:, None] * tau[None, 1:])).ravel()
-                u_pts = ca.DM(seg.rates(times).T)
+                u = seg.rates(times).T
+                if self.volume_data:
+                    start = pumped - pumped_volume(seg, np.array([a]))[0]
+                    u = np.vstack([u, start + pumped_volume(seg, times)])  # V less the initial volume
+                    pumped = start + pumped_volume(seg, np.array([b]))[0]
+                    u_pts = ca.vertcat(ca.DM(u[:-1]), volume0 + ca.DM(u[-1:]))
+                else:
+                    u_pts = ca.DM(u)
                 blk = Block(f"r{r}.s{k}", f, fr, degree, W, x_start, p_run, b - a, a, u_pts, xs)
                 blk.span = (a, b)
                 blocks.append(blk)
@@ -208,31 +299,38 @@ class FitNLP:
                 cols = W.indices(blk.var)  # (nx, n * degree)
                 h = (b - a) * np.diff(fr)
                 t_points = (a + (b - a) * fr[:-1])[:, None] + tau[None, 1:] * h[:, None]
-                u = np.array(u_pts)
                 for e in range(n):
                     own = cols[:, e * degree:(e + 1) * degree]
                     before = prev_end if e == 0 else cols[:, e * degree - 1]
                     elements["index"].append(np.concatenate([
-                        np.full(m.nx, -1) if before is None else before, own.ravel(order="F"), run_theta]))
+                        np.full(nx, -1) if before is None else before, own.ravel(order="F"), run_theta]))
                     elements["first"].append(float(before is None))
-                    elements["jump"].append(jump if e == 0 else np.zeros(m.nx))
+                    elements["jump"].append(jump if e == 0 else np.zeros(nx))
                     elements["U"].append(u[:, e * degree:(e + 1) * degree].ravel(order="F"))
                     elements["t"].append(t_points[e])
                     elements["h"].append(h[e])
                     elements["run"].append(r)
-                prev_end, jump = cols[:, -1], np.zeros(m.nx)
+                prev_end, jump = cols[:, -1], np.zeros(nx)
                 if sample is not None:
-                    u_end = ca.DM(seg.rates(np.array([b]))[0])
+                    u_end = seg.rates(np.array([b]))[0]
+                    if self.volume_data:  # the sample is measured before its volume is taken
+                        u_end = np.append(u_end, pumped)
+                        u_sym = ca.vertcat(ca.DM(u_end[:-1]), volume0 + u_end[-1])
+                    else:
+                        u_sym = ca.DM(u_end)
                     for q, y in run.values.items():
                         if np.isfinite(y[sample]):
-                            model_values.append(blk.x_end[m.index(q)] if q in m.state_names
-                                                else values[q](b, blk.x_end, u_end, p_run))
-                            points.append((q, np.concatenate([prev_end, run_theta]), b, np.array(u_end).ravel(), r))
+                            model_values.append(blk.x_end[names.index(q)] if q in names
+                                                else values[q](b, blk.x_end, u_sym, p_run))
+                            points.append((q, np.concatenate([prev_end, run_theta]), b, u_end, r))
                 x_start = blk.x_end
                 if sample is not None and run.sample_volume:
-                    jump = np.zeros(m.nx)
-                    jump[v_index] = run.sample_volume
-                    x_start = x_start - ca.DM(jump)
+                    if self.volume_data:
+                        pumped -= run.sample_volume
+                    else:
+                        jump = np.zeros(nx)
+                        jump[v_index] = run.sample_volume
+                        x_start = x_start - ca.DM(jump)
             self.blocks.append(blocks)
         self.measured = measurements(runs)
         assert len(self.measured) == len(model_values)
@@ -257,9 +355,17 @@ class FitNLP:
         """The NLP as a sum of pieces (each element's collocation equations, each
         measured value's squared weighted residual), for optfeed.derivatives."""
         m, d, n_theta = self.model, self.degree, len(self.estimated)
-        nx, nu, nc = m.nx, m.nu, m.n_constants
+        nx, nu, nc = len(self.state_names), f.size1_in(2), m.n_constants
         runs_x0, runs_c = self._run_x0, self._run_constants
         element = element_function(f, d, nu)
+
+        def inputs(U, run_of):
+            """The pumps' (and V's) inputs of pieces: the numbers U (rows x count),
+            with each run's initial volume added where V is (every nu-th row)."""
+            if not self.volume_data:
+                return ca.DM(U)
+            at_v = ca.DM((np.arange(U.shape[0]) % nu == nu - 1).astype(float))
+            return ca.DM(U) + ca.mtimes(at_v, ca.horzcat(*[self._run_volume[r] for r in run_of]))
 
         def constants(c, th, ts):
             return c * ca.DM(keep) + ca.mtimes(ca.DM(select), th * ts)
@@ -276,7 +382,7 @@ class FitNLP:
         run_of = elements["run"]
         kinds = [Kind(piece, np.array(elements["index"]).T, [
             ca.horzcat(*[runs_x0[r] for r in run_of]), ca.DM(elements["first"]).T, ca.DM(np.array(elements["jump"]).T),
-            ca.DM(np.array(elements["U"]).T), ca.DM(np.array(elements["t"]).T), ca.DM(elements["h"]).T,
+            inputs(np.array(elements["U"]).T, run_of), ca.DM(np.array(elements["t"]).T), ca.DM(elements["h"]).T,
             ca.horzcat(*[runs_c[r] for r in run_of]), ca.repmat(xs, 1, E), ca.repmat(theta_scale, 1, E)],
             rows=np.arange(E * nx * d).reshape(E, nx * d).T)]
         terms = []
@@ -285,11 +391,13 @@ class FitNLP:
             zq = ca.SX.sym("z", nx + n_theta)
             tq, uq, yq, wq = ca.SX.sym("t"), ca.SX.sym("u", nu), ca.SX.sym("y"), ca.SX.sym("w")
             x_end, th = zq[:nx] * xs_e, zq[nx:]
-            model_value = x_end[m.index(q)] if q in m.state_names else values[q](tq, x_end, uq, constants(c, th, ts))
+            model_value = x_end[self.state_names.index(q)] if q in self.state_names else values[q](
+                tq, x_end, uq, constants(c, th, ts))
             term = ca.Function("term", [zq, tq, uq, c, xs_e, ts, yq, wq], [0.5 * ((model_value - yq) * wq) ** 2])
             n = len(which)
             terms.append(Kind(term, np.array([points[k][1] for k in which]).T, [
-                ca.DM([points[k][2] for k in which]).T, ca.DM(np.array([points[k][3] for k in which]).reshape(n, nu).T),
+                ca.DM([points[k][2] for k in which]).T,
+                inputs(np.array([points[k][3] for k in which]).reshape(n, nu).T, [points[k][4] for k in which]),
                 ca.horzcat(*[runs_c[points[k][4]] for k in which]), ca.repmat(xs, 1, n), ca.repmat(theta_scale, 1, n),
                 y[which].T, weight[which].T]))
         if self._copies:  # copy - shared = 0
@@ -312,9 +420,11 @@ class FitNLP:
         ``x_scale`` in the full model's state layout."""
         y = np.array([runs[r].values[q][k] for r, k, q in self.measured])
         s = np.array([float(sigma(q, [runs[r].values[q][k]])[0]) for r, k, q in self.measured])
+        iv = self.full.index("V")
         return FitData(np.asarray(lower, float), np.asarray(upper, float), np.asarray(scale, float),
                        np.asarray(x_scale, float)[self.states], [np.asarray(r.constants, float) for r in runs],
-                       [np.asarray(r.x0, float)[self.states] for r in runs], y, 1.0 / s)
+                       [np.asarray(r.x0, float)[self.states] for r in runs], y, 1.0 / s,
+                       [float(r.x0[iv]) for r in runs])
 
     # -- the interface optfeed.solve.solve uses
     def parameters(self, data: FitData) -> np.ndarray:
@@ -325,6 +435,8 @@ class FitNLP:
         for r in range(self.n_runs):
             P.put(v, f"r{r}.constants", data.constants[r])
             P.put(v, f"r{r}.x0", data.x0[r])
+            if self.volume_data:
+                P.put(v, f"r{r}.V0", data.volume0[r])
         P.put(v, "y", data.y)
         P.put(v, "weight", data.weight)
         return v
@@ -342,9 +454,10 @@ class FitNLP:
         # fits the data with a trajectory no simulation follows (measured on a
         # Monod-Pirt model: chi-square a million times the true one). A model
         # that itself drives a species below zero is named in the fit's warnings.
-        xl = np.full(self.model.nx, -np.inf)
+        xl = np.full(len(self.state_names), -np.inf)
         xl[:len(self.model.problem.species)] = 0.0
-        xl[self.model.index("V")] = 1e-9
+        if "V" in self.state_names:
+            xl[self.state_names.index("V")] = 1e-9
         for blocks in self.blocks:
             for blk in blocks:
                 self.W.put(lbx, blk.var, (xl / data.x_scale)[:, None])
@@ -382,7 +495,7 @@ class FitNLP:
         iterations and from far fewer basins than from the simulated course of a
         poor guess (measured on a Monod-Pirt model: 15-40 IPOPT iterations instead
         of 30-390, and the best fit from every guess tried)."""
-        m = self.model
+        names = self.state_names
         w = self.W.zeros()
         self.W.put(w, "theta", np.asarray(theta) / data.scale)
         for c in self._copies:
@@ -391,15 +504,15 @@ class FitNLP:
             measured = {}
             for q, y in run.values.items():
                 ok = np.isfinite(y)
-                if at_data and q in m.state_names and q != "V" and ok.any():
-                    i = m.index(q)
+                if at_data and q in names and q != "V" and ok.any():
+                    i = names.index(q)
                     measured[i] = (np.concatenate([[0.0], run.times[ok]]),
                                    np.concatenate([[run.x0[self.states[i]]], np.maximum(y[ok], 0.0)]))
             for blk in blocks:
                 a, b = blk.span
                 times = blk.point_times(b - a, a)
                 X = np.array([np.interp(times, *measured[i]) if i in measured else np.interp(times, traj.t, traj.x[:, self.states[i]])
-                              for i in range(m.nx)])
+                              for i in range(len(names))])
                 self.W.put(w, blk.var, X / data.x_scale[:, None])
         lbx, ubx, _, _ = self.bounds(data)
         return np.clip(w, lbx, ubx)
