@@ -398,12 +398,14 @@ def test_anchored_course_is_the_model_between_samples_pinned_to_the_data(tmp_pat
 # ---------------------------------------------------------------- the NLP's derivatives
 
 
-def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
+@pytest.mark.parametrize("volume_measured", [False, True])
+def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path, volume_measured):
     """The exact derivatives handed to IPOPT are assembled from each element's and
     each measured value's own; reference: CasADi's automatic differentiation of the
     whole NLP as the collocation blocks write it. Two runs (a batch; a fed-batch with
     a pump change and sample volumes), a named rate (q_S) measured at some samples
-    only, at a point off the solution with random multipliers."""
+    only, at a point off the solution with random multipliers; the volume V is data
+    of the NLP, or (measured at some samples) one of its states."""
     import dataclasses
 
     import casadi as ca
@@ -419,12 +421,16 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
     runs = load_runs(runs_file, problem, build_model(problem))
     fed = runs.runs[1]
     q_S = np.where(np.arange(len(fed.times)) % 3 == 0, 0.4, np.nan)
-    runs = dataclasses.replace(runs, runs=(runs.runs[0], dataclasses.replace(fed, values={**fed.values, "q_S": q_S})))
+    extra = {"q_S": q_S}
+    if volume_measured:
+        extra["V"] = np.where(np.arange(len(fed.times)) % 4 == 1, 2.0, np.nan)
+    runs = dataclasses.replace(runs, runs=(runs.runs[0], dataclasses.replace(fed, values={**fed.values, **extra})))
     job = _Fitter(problem, runs)
     theta = job.start
     first = job.simulate(theta)
     nlp = FitNLP(job.model, runs.runs, job.names, elements_per_run=12)
-    errors = dict(runs.errors, q_S=runs.errors["S"])
+    assert ("V" in nlp.state_names) == volume_measured
+    errors = dict(runs.errors, q_S=runs.errors["S"], V=runs.errors["S"])
     data = nlp.data(runs.runs, lambda q, y: np.sqrt(errors[q].absolute ** 2 + (errors[q].relative * np.asarray(y)) ** 2),
                     job.lower, job.upper, job.scale,
                     np.max([np.abs(t.x).max(axis=0) for t in first], axis=0) + 1.0)
@@ -444,6 +450,55 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path):
         got = np.array(ca.densify(got))
         assert got.shape == want.shape
         np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())
+
+
+@pytest.mark.parametrize("a, b, k", [((0.02,), (0.0,), (0.0,)), ((0.02,), (0.004,), (0.0,)),
+                                     ((0.02,), (0.0,), (0.25,)), ((0.02,), (0.0,), (-1e-5,)),
+                                     ((0.02,), (0.003,), (-0.4,))])
+def test_volume_pumped_by_a_segment_is_scipy_s_integral_of_its_rates(a, b, k):
+    """The volume a schedule segment pumps in (closed form, or its power series near
+    k tau = 0); reference: scipy.integrate.quad of the segment's rates."""
+    from scipy.integrate import quad
+
+    from optfeed.fit.transcription import pumped_volume
+    from optfeed.schedule import Segment
+
+    seg = Segment(2.0, 12.0, a, b, k)
+    times = np.array([2.0, 2.001, 3.7, 8.0, 12.0])
+    want = [quad(lambda t: float(seg.rates(np.array([t]))[0, 0]), 2.0, t, epsabs=1e-17, epsrel=1e-13)[0] for t in times]
+    np.testing.assert_allclose(pumped_volume(seg, times), want, rtol=1e-13, atol=1e-16)
+
+
+def test_volume_the_nlp_takes_as_data_is_scipy_s_at_every_sample(tmp_path):
+    """The broth volume the calibration NLP is given at each sampling time (before
+    the sample's volume is taken): read through the dilution rate D = F / V measured
+    at every sample of the fed-batch run (2 L, 0.02 L/h from 6 h, 0.02 L taken at
+    every sample); reference: V from scipy's solve_ivp in tests/fitcase.py."""
+    import dataclasses
+
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.fit.transcription import FitNLP
+    from optfeed.problem.dotted import as_problem
+
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=3)
+    problem = as_problem(problem, None)
+    runs = load_runs(runs_file, problem, build_model(problem))
+    fed = runs.runs[1]
+    runs = dataclasses.replace(runs, runs=(runs.runs[0], dataclasses.replace(
+        fed, values={**fed.values, "D": np.zeros(len(fed.times))})))
+    job = _Fitter(problem, runs)
+    nlp = FitNLP(job.model, runs.runs, job.names, elements_per_run=12)
+    assert "V" not in nlp.state_names
+    data = nlp.data(runs.runs, lambda q, y: np.ones(len(y)), job.lower, job.upper, job.scale, np.ones(job.model.nx))
+    w = nlp.pack(data, runs.runs, job.start, job.simulate(job.start))
+    model = nlp.residuals(w, data)  # y = 0, weight = 1: the model's values
+    D = np.array([model[i] for i, (r, k, q) in enumerate(nlp.measured) if q == "D"])
+    run = fitcase.DESIGN[1]
+    V = fitcase.simulate(run, fitcase.TRUE)[:, 3]
+    fed_on = run.times > run.feed_from
+    assert fed_on.sum() >= 8
+    np.testing.assert_allclose(D[fed_on], run.feed / V[fed_on], rtol=1e-9)
 
 
 def test_among_starts_that_stopped_short_the_better_re_simulated_fit_is_polished(tmp_path, monkeypatch):

@@ -42,7 +42,9 @@ from ..derivatives import Assembled, Kind
 class FitData:
     """The numbers of one solve (internal units): bounds of the estimated parameters
     and their scale, the states' scale, and per run its constants, its initial state,
-    and the measured values with their weights 1/sigma, in the NLP's order."""
+    and the measured values with their weights 1/sigma, in the NLP's order; the
+    scale and initial states are the NLP's states' (without V where V is data: its
+    initial value, L, is then ``volume0``)."""
 
     lower: np.ndarray
     upper: np.ndarray
