@@ -81,20 +81,26 @@ def pumped_volume(seg, t) -> np.ndarray:
     for |k tau| < 0.05)."""
     tau = np.asarray(t, dtype=float)[:, None] - seg.start
     a, b, k = (np.asarray(v, dtype=float)[None, :] for v in (seg.a, seg.b, seg.k))
+    # i0 = int_0^1 e^{z s} ds, i1 = int_0^1 s e^{z s} ds, z = k tau
     z = k * tau
-    small = np.abs(z) < 0.05
-    zs = np.where(small, z, 0.0)
-    zl = np.where(small, 1.0, z)
-    # int_0^1 e^{z s} ds and int_0^1 s e^{z s} ds
-    n = np.arange(14)[:, None, None]
-    fact = np.cumprod(np.concatenate([[1.0], np.arange(1.0, 14.0)]))[:, None, None]
-    series0 = np.sum(zs[None] ** n / (fact * (n + 1)), axis=0)
-    series1 = np.sum(zs[None] ** n / (fact * (n + 2)), axis=0)
-    with np.errstate(over="ignore", invalid="ignore"):
-        closed0 = np.expm1(zl) / zl
-        closed1 = (np.expm1(zl) * (zl - 1.0) + zl) / zl ** 2
-    i0 = np.where(small, series0, closed0)
-    i1 = np.where(small, series1, closed1)
+    i0 = np.ones_like(z)
+    i1 = np.full_like(z, 0.5)
+    large = np.abs(z) >= 0.05
+    if large.any():
+        zl = z[large]
+        em1 = np.expm1(zl)
+        with np.errstate(over="ignore", invalid="ignore"):
+            i0[large] = em1 / zl
+            i1[large] = (em1 * (zl - 1.0) + zl) / zl ** 2
+    small = ~large & (z != 0.0)
+    if small.any():
+        zs = z[small]
+        s0, s1 = np.zeros_like(zs), np.zeros_like(zs)
+        for n in range(13, -1, -1):  # Horner: sum z^n / (n! (n + 1)) and z^n / (n! (n + 2))
+            fact = float(np.prod(np.arange(1.0, n + 1.0)))
+            s0 = s0 * zs + 1.0 / (fact * (n + 1))
+            s1 = s1 * zs + 1.0 / (fact * (n + 2))
+        i0[small], i1[small] = s0, s1
     return np.sum(a * tau * i0 + b * tau ** 2 * i1, axis=1)
 
 
@@ -288,9 +294,9 @@ class FitNLP:
                 times = (a + (b - a) * (fr[:-1, None] + np.diff(fr)[:, None] * tau[None, 1:])).ravel()
                 u = seg.rates(times).T
                 if self.volume_data:
-                    start = pumped - pumped_volume(seg, np.array([a]))[0]
-                    u = np.vstack([u, start + pumped_volume(seg, times)])  # V less the initial volume
-                    pumped = start + pumped_volume(seg, np.array([b]))[0]
+                    v = pumped_volume(seg, np.concatenate([[a], times, [b]]))
+                    u = np.vstack([u, pumped - v[0] + v[1:-1]])  # V less the initial volume
+                    pumped += v[-1] - v[0]
                     u_pts = ca.vertcat(ca.DM(u[:-1]), volume0 + ca.DM(u[-1:]))
                 else:
                     u_pts = ca.DM(u)
@@ -317,13 +323,14 @@ class FitNLP:
                     u_end = seg.rates(np.array([b]))[0]
                     if self.volume_data:  # the sample is measured before its volume is taken
                         u_end = np.append(u_end, pumped)
-                        u_sym = ca.vertcat(ca.DM(u_end[:-1]), volume0 + u_end[-1])
-                    else:
-                        u_sym = ca.DM(u_end)
                     for q, y in run.values.items():
                         if np.isfinite(y[sample]):
-                            model_values.append(blk.x_end[names.index(q)] if q in names
-                                                else values[q](b, blk.x_end, u_sym, p_run))
+                            if q in names:
+                                model_values.append(blk.x_end[names.index(q)])
+                            else:
+                                u_sym = ca.vertcat(ca.DM(u_end[:-1]), volume0 + u_end[-1]) if self.volume_data \
+                                    else ca.DM(u_end)
+                                model_values.append(values[q](b, blk.x_end, u_sym, p_run))
                             points.append((q, np.concatenate([prev_end, run_theta]), b, u_end, r))
                 x_start = blk.x_end
                 if sample is not None and run.sample_volume:
