@@ -547,3 +547,17 @@ def test_ok_runs_file_is_valid():
     problem = load_problem(OK_PROBLEM)
     runs = load_runs(FIT / "ok_runs.yaml", problem, build_model(problem))
     assert [r.name for r in runs.runs] == ["batch", "fed"] and runs.n_samples == 21
+
+
+def test_fit_refuses_a_problem_with_phases_or_additions(tmp_path):
+    """A fit models every run as one phase with no additions: a problem with phases
+    (the shipped induced-protein example) is refused before anything is read or
+    written, naming the file, the line and the key (exit 2)."""
+    problem = REPO / "configs" / "induced_protein.yaml"
+    results = tmp_path / "results"
+    [(code, stdout, stderr)] = _run_all([["fit", str(problem), str(REPO / "configs" / "inhibited_product_runs.yaml"),
+                                          "--results", str(results)]], cwd=tmp_path)
+    assert code == 2 and "Traceback" not in stderr and stdout.strip() == ""
+    line = next(i for i, text in enumerate(problem.read_text().splitlines(), 1) if text.startswith("phases:"))
+    assert stderr.splitlines()[1].startswith(f"  {problem}:{line}: phases: optfeed fit models each run as one phase")
+    assert not results.exists()

@@ -469,6 +469,19 @@ def test_volume_pumped_by_a_segment_is_scipy_s_integral_of_its_rates(a, b, k):
     np.testing.assert_allclose(pumped_volume(seg, times), want, rtol=1e-13, atol=1e-16)
 
 
+def test_volume_pumped_stays_finite_where_an_unused_term_would_overflow():
+    """A pump whose law is off (a = b = 0) adds nothing even where exp(k tau) overflows
+    a float; one that runs exponentially that fast gives an infinite volume, never
+    NaN (the closed form of the integral; common practice)."""
+    from optfeed.fit.transcription import pumped_volume
+    from optfeed.schedule import Segment
+
+    seg = Segment(0.0, 10.0, (0.0, 0.01, 0.02), (0.0, 0.0, 0.0), (900.0, 0.0, 0.0))
+    np.testing.assert_allclose(pumped_volume(seg, np.array([0.0, 2.0, 10.0])), [0.0, 0.06, 0.3], rtol=1e-14)
+    fast = Segment(0.0, 10.0, (0.01,), (0.0,), (900.0,))
+    assert np.isinf(pumped_volume(fast, np.array([10.0]))[0])
+
+
 def test_volume_the_nlp_takes_as_data_is_scipy_s_at_every_sample(tmp_path):
     """The broth volume the calibration NLP is given at each sampling time (before
     the sample's volume is taken): read through the dilution rate D = F / V measured

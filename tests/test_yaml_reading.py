@@ -37,19 +37,23 @@ def test_libyaml_is_there():
 
 @pytest.mark.parametrize("path", SHIPPED, ids=lambda p: str(p.relative_to(ROOT)))
 def test_every_shipped_file_reads_as_the_pure_python_loader_reads_it(path):
-    """Every YAML file of the project (problems, runs, sweeps, bad inputs): where the
-    fast path reads it, the data and every key's line are the pure-Python loader's;
-    a file the pure-Python loader refuses, the fast path declines too, and read_yaml
-    gives the pure-Python loader's message."""
+    """Every YAML file of the project (problems, runs, sweeps, bad inputs): the fast
+    path reads it, with the data and every key's line of the pure-Python loader; a
+    file the pure-Python loader refuses is refused, with the same message where the
+    fault lies in the node tree (a tag, a duplicate key, an alias bomb)."""
     text = path.read_text(encoding="utf-8", errors="replace")
-    fast = yamlio._fast_read(path, text)
     try:
-        reference = _pure_python(path, text)
-    except (InputError, Exception) as exc:  # noqa: BLE001 - a file the reference refuses
-        assert fast is None
-        with pytest.raises(InputError):
+        reference, refused = _pure_python(path, text), None
+    except InputError as exc:  # a fault in the node tree: the same message either way
+        refused = str(exc)
+    except Exception:  # noqa: BLE001 - PyYAML's own complaint, which read_yaml words
+        refused = "syntax"
+    if refused is not None:
+        with pytest.raises(InputError) as info:
             yamlio.read_yaml(path, text)
+        assert refused == "syntax" or str(info.value) == refused
         return
+    fast = yamlio._fast_read(path, text)
     assert fast is not None
     assert (fast[0], fast[1]._lines) == reference
 
@@ -61,6 +65,8 @@ def test_every_shipped_file_reads_as_the_pure_python_loader_reads_it(path):
     ("a: 1\n\x07b: 2\n", "is not allowed in a YAML file"),
     ("a: " + "[" * 100 + "]" * 100 + "\n", "nested more than"),
     ("a: &x [*x]\n", "nested more than"),
+    ("a: [!, 1]\n", "is not allowed"),
+    ('a: "\\U00110000"\n', "YAML syntax error"),
 ])
 def test_bad_documents_give_the_pure_python_loaders_message(tmp_path, text, why):
     """A broken document is declined by the fast path and named, with its line, as
@@ -83,3 +89,15 @@ def test_a_tab_before_a_comment_is_read_as_yaml_allows():
         yaml.load(text, Loader=yaml.SafeLoader)
     data, lines = yamlio.read_yaml("tab.yaml", text)
     assert data == {"a": 1, "b": 2} and lines.own(("b",)) == 2
+
+
+@pytest.mark.parametrize("text, data", [
+    ("a: !\n", {"a": None}),
+    ("a: [1,\n\ufeff2]\n", {"a": [1, "\ufeff2"]}),
+])
+def test_documents_the_two_readers_would_read_apart_go_to_the_pure_python_loader(text, data):
+    """A bare '!' tag on an empty value (libyaml: '', the pure-Python loader: null)
+    and a byte order mark inside the text (libyaml skips it) are read as the
+    pure-Python loader reads them."""
+    assert yamlio._fast_read("x.yaml", text) is None
+    assert yamlio.read_yaml("x.yaml", text)[0] == data == _pure_python("x.yaml", text)[0]

@@ -37,7 +37,7 @@ from ..provenance import problem_digest, stamp
 from ..simulate import Simulator
 from ..solve import interrupt_guard, interrupted, solve
 from ..units import factor_to
-from .runs import Runs, load_runs
+from .runs import Runs, load_runs, require_one_phase
 from .simulate import Sampler, anchored_run, simulate_run
 from .statistics import Statistics, identifiability_words, uncertainty, verdict
 from .transcription import get_fit_nlp
@@ -404,6 +404,7 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     """
     t0 = time.perf_counter()
     problem = as_problem(problem, set)
+    require_one_phase(problem)
     model = None  # the model that read the runs file, used again by the fit
     if not isinstance(runs, Runs):
         model = build_model(problem)

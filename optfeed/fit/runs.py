@@ -142,6 +142,20 @@ def measurable(model: Model) -> dict:
     return out
 
 
+def require_one_phase(problem) -> None:
+    """Bad input: a fit models every run as one phase with no additions (its NLP and
+    its re-simulations know neither a phase's own model nor a bolus)."""
+    for key in ("phases", "additions"):
+        if getattr(problem, key):
+            try:
+                line = read_yaml(problem.source)[1].own((key,))
+            except (InputError, OSError):
+                line = None
+            raise InputError.one(problem.source, line, key,
+                                 f"optfeed fit models each run as one phase without additions; the problem's "
+                                 f"'{key}' would be left out of the fit: fit a problem file without them")
+
+
 def load_runs(path, problem, model: Model) -> Runs:
     """Read and check a runs file against ``problem`` (and its full ``model``).
 
@@ -150,6 +164,7 @@ def load_runs(path, problem, model: Model) -> Runs:
     InputError
         Naming the runs file (or a data or schedule file), the line and the key.
     """
+    require_one_phase(problem)
     path = str(path)
     data, lines = read_yaml(path)
     base = Path(path).parent

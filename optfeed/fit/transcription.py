@@ -88,8 +88,8 @@ def pumped_volume(seg, t) -> np.ndarray:
     large = np.abs(z) >= 0.05
     if large.any():
         zl = z[large]
-        em1 = np.expm1(zl)
         with np.errstate(over="ignore", invalid="ignore"):
+            em1 = np.expm1(zl)
             i0[large] = em1 / zl
             i1[large] = (em1 * (zl - 1.0) + zl) / zl ** 2
     small = ~large & (z != 0.0)
@@ -101,7 +101,10 @@ def pumped_volume(seg, t) -> np.ndarray:
             s0 = s0 * zs + 1.0 / (fact * (n + 1))
             s1 = s1 * zs + 1.0 / (fact * (n + 2))
         i0[small], i1[small] = s0, s1
-    return np.sum(a * tau * i0 + b * tau ** 2 * i1, axis=1)
+    # a term whose coefficient is zero adds nothing, even where its integral overflows
+    with np.errstate(invalid="ignore"):
+        terms = np.where(a != 0, a * tau * i0, 0.0) + np.where(b != 0, b * tau ** 2 * i1, 0.0)
+    return np.sum(terms, axis=1)
 
 
 def volume_free(model: Model, runs) -> bool:

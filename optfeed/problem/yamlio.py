@@ -157,6 +157,8 @@ def read_yaml(path, text: str | None = None):
             node = loader.get_single_node()
         except _TooDeep as exc:
             raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
+        except ValueError as exc:  # e.g. an escape past the last code point ("\U00110000")
+            raise InputError.one(path, None, "", f"YAML syntax error: {exc}") from None
         except yaml.MarkedYAMLError as exc:
             mark = exc.problem_mark or exc.context_mark
             line = mark.line + 1 if mark else None
@@ -184,24 +186,36 @@ def _fast_read(path, text):
     same node tree as the pure-Python loader (libyaml scans and parses, PyYAML's own
     composer, with its nesting bound, resolves and builds): about 7x faster on a
     problem file. None where libyaml is missing, where a character is one the
-    pure-Python reader refuses, or where anything goes wrong: :func:`read_yaml` then
-    reads the text again with the pure-Python loader, whose messages name the fault."""
-    if CParser is None or yaml.reader.Reader.NON_PRINTABLE.search(text):
+    pure-Python reader refuses (or a byte order mark past the first character, which
+    libyaml skips and the pure-Python reader keeps), where a node carries the bare
+    tag '!' (the two read it differently), or where libyaml finds the document
+    broken: :func:`read_yaml` then reads the text again with the pure-Python loader,
+    whose messages name the fault. A fault found in the node tree, which is the
+    same either way (a tag, a duplicate key, too deep, an alias bomb), is raised
+    here as the pure-Python path raises it, without reading the text twice."""
+    if CParser is None or yaml.reader.Reader.NON_PRINTABLE.search(text) or "\ufeff" in text[1:]:
         return None
     try:
         loader = _FastLoader(text)
     except Exception:  # noqa: BLE001 - the pure-Python loader says what is wrong
         return None
     try:
-        node = loader.get_single_node()
+        try:
+            node = loader.get_single_node()
+        except _TooDeep as exc:
+            raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
+        except Exception:  # noqa: BLE001 - libyaml's complaint: the pure-Python loader says what is wrong
+            return None
         if node is None:
             return None
         lines = Lines()
         return _build(node, (), path, lines, loader, _Seen()), lines
-    except Exception:  # noqa: BLE001 - the same
-        return None
     finally:
         loader.dispose()
+
+
+class _Declined(Exception):
+    """The fast path leaves this document to the pure-Python loader."""
 
 
 class _TooDeep(Exception):
@@ -242,8 +256,11 @@ if CParser is not None:
         def compose_node(self, parent, index):
             self._depth += 1
             try:
+                event = self.peek_event()
                 if self._depth > MAX_DEPTH:
-                    raise _TooDeep(self.peek_event().start_mark.line + 1)
+                    raise _TooDeep(event.start_mark.line + 1)
+                if getattr(event, "tag", None) == "!":
+                    raise _Declined
                 return Composer.compose_node(self, parent, index)
             finally:
                 self._depth -= 1
