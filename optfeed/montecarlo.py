@@ -279,7 +279,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     from .problem.uncertain import MAX_SAMPLES, MAX_SEED
     from .processes import cpu_count
     from .schedule import Schedule, checked_schedule, load_schedule
-    from .simulate import Simulator, cheaper_method
+    from .simulate import METHODS, Simulator, cheaper_method
     from .uncertainty import scenario_set
 
     problem = as_problem(problem)
@@ -304,7 +304,7 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     else:
         schedule = load_schedule(schedule, model.feed_names, tf, problem.phases)
     limits = build_limits(model, phases=True)
-    sim = Simulator(model)
+    sims = {m: Simulator(model, method=m) for m in METHODS}
     drawn = scenario_set(problem, model, count=int(samples), seed=int(seed), method="random", nominal=False)
     if workers is None:
         workers = cpu_count()
@@ -315,10 +315,10 @@ def monte_carlo(problem, schedule, end_time: float | None = None, samples: int |
     t0 = time.perf_counter()
     # the nominal run is judged as `check` judges it (BDF); the samples are integrated
     # with the method that needs less work on it (simulate.cheaper_method)
-    method, runs = cheaper_method(model, schedule, tf, {"bdf": sim}, deadline)
-    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, sim, deadline=deadline,
+    method, runs = cheaper_method(model, schedule, tf, sims, deadline)
+    nominal = _simulate_one(model, limits, schedule, tf, model.p0, model.x0, sims["bdf"], deadline=deadline,
                             traj=runs["bdf"])
-    _keep_built(problem, model, limits, method)
+    _keep_built(problem, model, limits, sims[method])
     outs = _run_all(problem, schedule, tf, drawn, workers, on_progress, deadline, method)
     seconds = time.perf_counter() - t0
     return _result(model, limits, drawn, nominal, outs, int(samples), int(seed), seconds, workers,
@@ -397,21 +397,17 @@ def _chunk(job, progress=None) -> list:
 # fork, the parent, which keeps them before it starts the workers) share the model,
 # the limits' Functions and the samples' integrators instead of building their own
 # (measured: 13 chunks of 16 samples, each in a fresh process building its own, made
-# two workers do 1.4 times the samples per second of one); the nominal run has a
-# Simulator of its own (BDF, as `check`)
+# two workers do 1.4 times the samples per second of one); the nominal run is
+# integrated by the BDF Simulator (as `check`), which is the samples' too where BDF
+# is the method chosen
 _KEPT = None
 
 
-def _keep_built(problem, model, limits, method: str = "bdf"):
-    """Keep ``model`` and ``limits`` of ``problem`` (with a new Simulator using
-    ``method``) for the chunks run after this in this process or its forks; the
-    Simulator."""
+def _keep_built(problem, model, limits, sim) -> None:
+    """Keep ``model``, ``limits`` and the samples' Simulator ``sim`` of ``problem``
+    for the chunks run after this in this process or its forks."""
     global _KEPT
-    from .simulate import Simulator
-
-    sim = Simulator(model, method=method)
     _KEPT = (problem, pickle.dumps(problem), model, limits, sim)
-    return sim
 
 
 def _built(problem, method: str = "bdf"):
@@ -420,13 +416,15 @@ def _built(problem, method: str = "bdf"):
     one) and method, else built."""
     from .limits import build_limits
     from .model import build_model
+    from .simulate import Simulator
 
     if (_KEPT is not None and _KEPT[4].method == method
             and (_KEPT[0] is problem or _KEPT[1] == pickle.dumps(problem))):
         return _KEPT[2:]
     model = build_model(problem)
     limits = build_limits(model, phases=True)
-    sim = _keep_built(problem, model, limits, method)
+    sim = Simulator(model, method=method)
+    _keep_built(problem, model, limits, sim)
     return model, limits, sim
 
 

@@ -404,9 +404,10 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     """
     t0 = time.perf_counter()
     problem = as_problem(problem, set)
-    require_one_phase(problem)
     model = None  # the model that read the runs file, used again by the fit
-    if not isinstance(runs, Runs):
+    if isinstance(runs, Runs):
+        require_one_phase(problem)  # (load_runs checks the problem it reads a runs file for)
+    else:
         model = build_model(problem)
         runs = load_runs(runs, problem, model)
     with interrupt_guard():

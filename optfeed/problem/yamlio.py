@@ -154,9 +154,9 @@ def read_yaml(path, text: str | None = None):
                                              "is not allowed in a YAML file") from None
     try:
         try:
-            node = loader.get_single_node()
-        except _TooDeep as exc:
-            raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
+            node = _single_node(loader, path)
+        except InputError:
+            raise
         except ValueError as exc:  # e.g. an escape past the last code point ("\U00110000")
             raise InputError.one(path, None, "", f"YAML syntax error: {exc}") from None
         except yaml.MarkedYAMLError as exc:
@@ -201,9 +201,9 @@ def _fast_read(path, text):
         return None
     try:
         try:
-            node = loader.get_single_node()
-        except _TooDeep as exc:
-            raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
+            node = _single_node(loader, path)
+        except InputError:
+            raise
         except Exception:  # noqa: BLE001 - libyaml's complaint: the pure-Python loader says what is wrong
             return None
         if node is None:
@@ -212,6 +212,14 @@ def _fast_read(path, text):
         return _build(node, (), path, lines, loader, _Seen()), lines
     finally:
         loader.dispose()
+
+
+def _single_node(loader, path):
+    """The document's root node; InputError naming the line where it nests too deep."""
+    try:
+        return loader.get_single_node()
+    except _TooDeep as exc:
+        raise InputError.one(path, exc.line, "", f"YAML nested more than {MAX_DEPTH} levels deep") from None
 
 
 class _Declined(Exception):
@@ -223,13 +231,11 @@ class _TooDeep(Exception):
         self.line = line
 
 
-class _Loader(yaml.SafeLoader):
-    """PyYAML's safe loader, with the nesting bounded: its composer recurses once per
-    level, so 5000 nested brackets would otherwise end in a RecursionError."""
+class _DepthBound:
+    """PyYAML's composer with the nesting bounded: it recurses once per level, so 5000
+    nested brackets would otherwise end in a RecursionError."""
 
-    def __init__(self, text):
-        super().__init__(text)
-        self._depth = 0
+    _depth = 0
 
     def compose_node(self, parent, index):
         self._depth += 1
@@ -241,29 +247,25 @@ class _Loader(yaml.SafeLoader):
             self._depth -= 1
 
 
+class _Loader(_DepthBound, yaml.SafeLoader):
+    """PyYAML's safe loader, pure Python, with the nesting bounded."""
+
+
 if CParser is not None:
-    class _FastLoader(Composer, CParser, SafeConstructor, Resolver):
-        """libyaml's scanner and parser under PyYAML's composer (so the nesting is
-        bounded as in :class:`_Loader`), safe constructor and resolver."""
+    class _FastLoader(_DepthBound, Composer, CParser, SafeConstructor, Resolver):
+        """libyaml's scanner and parser under PyYAML's composer (its nesting bounded
+        as in :class:`_Loader`), safe constructor and resolver."""
 
         def __init__(self, text):
             CParser.__init__(self, text)
             Composer.__init__(self)
             SafeConstructor.__init__(self)
             Resolver.__init__(self)
-            self._depth = 0
 
         def compose_node(self, parent, index):
-            self._depth += 1
-            try:
-                event = self.peek_event()
-                if self._depth > MAX_DEPTH:
-                    raise _TooDeep(event.start_mark.line + 1)
-                if getattr(event, "tag", None) == "!":
-                    raise _Declined
-                return Composer.compose_node(self, parent, index)
-            finally:
-                self._depth -= 1
+            if getattr(self.peek_event(), "tag", None) == "!":
+                raise _Declined
+            return super().compose_node(parent, index)
 
 
 class _Seen:
