@@ -395,6 +395,49 @@ def test_anchored_course_is_the_model_between_samples_pinned_to_the_data(tmp_pat
     assert checked >= 20
 
 
+# ---------------------------------------------------------------- the polish's Jacobian
+
+
+def test_sensitivities_are_central_differences_of_scipy_runs(tmp_path):
+    """The Jacobian the polish steps on and the covariance comes from: the model's
+    values at every sample differentiated with respect to the estimated parameters
+    by the sensitivity equations, in a run's first call held to the states'
+    tolerance, in later calls scaled by its last sensitivities (so that CVODES'
+    error test rests on the states). Reference: central differences (step 1e-4
+    relative) of fitcase.simulate, scipy's solve_ivp (LSODA, rtol 1e-10) on a
+    hand-written right-hand side, on the batch run and on the fed-batch run with
+    its sample volumes; the differences are good to about 1e-6 of the largest
+    value. The scaled call must also stay within 2e-6 of the first (3e-7 measured)."""
+    from optfeed.fit.job import _Fitter
+    from optfeed.fit.runs import load_runs
+    from optfeed.problem.dotted import as_problem
+
+    problem, runs_file, _ = fitcase.write_case(tmp_path, seed=2)
+    problem = as_problem(problem, None)
+    runs = load_runs(runs_file, problem, build_model(problem))
+    job = _Fitter(problem, runs)
+    theta = np.array([0.47, 0.2, 0.52])
+    known = {k: v for k, v in fitcase.TRUE.items() if k not in ESTIMATED}  # m_S, alpha: the problem file's
+    for run, run_case in zip(runs.runs, fitcase.DESIGN):
+        columns = []
+        for j in range(len(ESTIMATED)):
+            h = 1e-4 * theta[j]
+            up, down = theta.copy(), theta.copy()
+            up[j] += h
+            down[j] -= h
+            states = [fitcase.simulate(run_case, dict(known, **dict(zip(ESTIMATED, th)))) for th in (up, down)]
+            columns.append((states[0] - states[1])[:, :3] / (2 * h))
+        want = np.stack(columns, axis=-1)  # (samples, X S P, parameters)
+        calls = []
+        for _ in range(2):
+            _, der = job.sampler.values(run, job.constants(run, theta), jacobian=True)
+            calls.append(np.stack([der[q] for q in "XSP"], axis=1))
+        largest = np.abs(want).max(axis=0)  # per quantity and parameter
+        for got in calls:
+            assert np.all(np.abs(got - want) <= 2e-5 * largest), run.name
+        assert np.all(np.abs(calls[1] - calls[0]) <= 2e-6 * largest), run.name
+
+
 # ---------------------------------------------------------------- the NLP's derivatives
 
 
