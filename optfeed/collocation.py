@@ -135,6 +135,13 @@ class Layout:
 class Block:
     """One model over [t0, t0 + T], transcribed by Radau collocation.
 
+    Made in two steps: the block takes its variables from the layout when it is
+    made, and :meth:`write` writes its equations, given what comes in from outside
+    (its initial state, constants, duration, start, pump rates and scale). A
+    calibration NLP hands IPOPT derivatives assembled from the element function
+    itself (:mod:`optfeed.fit.transcription`) and writes its blocks' equations only
+    for the definition its tests compare with.
+
     Parameters
     ----------
     name : str
@@ -147,17 +154,16 @@ class Block:
         Radau points per element.
     variables : Layout
         Where the block adds its state variables (scaled by ``x_scale``).
-    x0, p, T, t0 : casadi.MX
-        Initial state, constants, duration (h) and start time (h).
-    u_points : casadi.MX, shape (nu, N * degree)
-        Pump rates (L/h) at every collocation point.
-    x_scale : casadi.MX, shape (nx,)
-        Nominal state magnitudes; variables are states divided by them.
 
     Attributes
     ----------
     var : str
         Name of its variables in the layout (nx x N*degree, scaled).
+    N, d, nx : int
+        Elements, Radau points per element, states.
+
+    After :meth:`write`:
+
     residuals : casadi.MX
         Collocation equations (scaled by ``x_scale``); zero at a solution.
     X, t_points, u_points : casadi.MX
@@ -168,25 +174,35 @@ class Block:
         State at t0 + T.
     """
 
-    def __init__(self, name, f, fractions, degree, variables: Layout, x0, p, T, t0, u_points, x_scale):
+    def __init__(self, name, f, fractions, degree, variables: Layout):
         fractions = np.asarray(fractions, dtype=float)
-        nx = f.size1_in(1)
-        N, d = len(fractions) - 1, degree
-        self.N, self.d, self.nx = N, d, nx
+        self.f = f
+        self.N, self.d, self.nx = len(fractions) - 1, degree, f.size1_in(1)
         self.fractions = fractions
-        tau, _, _ = radau_coefficients(d)
-        self.tau = tau
+        self.tau = radau_coefficients(degree)[0]
         self.var = f"{name}.x"
-        Xs = variables.add(self.var, nx, N * d)
-        X = Xs * ca.repmat(x_scale, 1, N * d)
+        self._Xs = variables.add(self.var, self.nx, self.N * degree)
+
+    def write(self, x0, p, T, t0, u_points, x_scale) -> "Block":
+        """Write the block's equations; returns the block.
+
+        x0, p, T, t0 : casadi.MX
+            Initial state, constants, duration (h) and start time (h).
+        u_points : casadi.MX, shape (nu, N * degree)
+            Pump rates (L/h) at every collocation point.
+        x_scale : casadi.MX, shape (nx,)
+            Nominal state magnitudes; variables are states divided by them.
+        """
+        N, d, nx, tau = self.N, self.d, self.nx, self.tau
+        X = self._Xs * ca.repmat(x_scale, 1, N * d)
         ends = X[:, [i * d + d - 1 for i in range(N - 1)]] if N > 1 else ca.MX(nx, 0)
         x_start = ca.horzcat(x0, ends)
-        h = T * ca.DM(np.diff(fractions)).T
-        t_start = t0 + T * ca.DM(fractions[:-1]).T
+        h = T * ca.DM(np.diff(self.fractions)).T
+        t_start = t0 + T * ca.DM(self.fractions[:-1]).T
         offsets = ca.DM(np.tile(tau[1:], N)).T
         t_points = ca.repmat(t_start, d, 1).reshape((1, N * d)) + offsets * ca.repmat(h, d, 1).reshape((1, N * d))
 
-        element = element_function(f, d, u_points.shape[0])
+        element = element_function(self.f, d, u_points.shape[0])
         R = element.map(N)(x_start, X, u_points, t_points, h, p, x_scale)
 
         self.X = X
@@ -196,6 +212,7 @@ class Block:
         self.t_start = t_start
         self.x_end = X[:, N * d - 1]
         self.residuals = ca.vec(R)
+        return self
 
     def point_times(self, T: float, t0: float = 0.0) -> np.ndarray:
         """Times (h) of the collocation points for a numeric T and t0."""

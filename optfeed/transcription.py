@@ -418,7 +418,8 @@ class FeedNLP:
                 p_q = phase_constants(self.phase_models[q], self.phases[q], const[:, s])
                 name = f"s{s}" if not self.phased else f"s{s}.{i}"
                 Di = D[i] if self.phased else D
-                blk = Block(name, fn["f"], np.linspace(0.0, 1.0, Ni + 1), d, W, xa, p_q, Di, t_starts[i], u_pts, xs)
+                blk = Block(name, fn["f"], np.linspace(0.0, 1.0, Ni + 1), d, W)
+                blk.write(xa, p_q, Di, t_starts[i], u_pts, xs)
                 blk.stretch, blk.steps_cols = i, (offsets[i], offsets[i + 1])
                 self.blocks.append(blk)
                 row_blocks.append(blk)

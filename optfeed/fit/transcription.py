@@ -303,7 +303,7 @@ class FitNLP:
                     u_pts = ca.vertcat(ca.DM(u[:-1]), volume0 + ca.DM(u[-1:]))
                 else:
                     u_pts = ca.DM(u)
-                blk = Block(f"r{r}.s{k}", f, fr, degree, W, x_start, p_run, b - a, a, u_pts, xs)
+                blk = Block(f"r{r}.s{k}", f, fr, degree, W).write(x_start, p_run, b - a, a, u_pts, xs)
                 blk.span = (a, b)
                 blocks.append(blk)
                 collocation.append(blk.residuals)
