@@ -29,6 +29,7 @@ import hashlib
 import json
 from collections import OrderedDict
 from dataclasses import dataclass
+from functools import cached_property
 
 import casadi as ca
 import numpy as np
@@ -264,10 +265,13 @@ class FitNLP:
         keep = np.ones(m.n_constants)
         keep[idx] = 0.0
         v_index = names.index("V") if "V" in names else None
-        collocation, model_values, self.blocks = [], [], []
+        self.blocks = []
+        # what the definition (see `nlp`) computes at each measured value:
+        # (quantity, block ending at the sample, time, pump rates there, run)
+        self._samples, self._links, self._run_p = [], [], []
         # what the exact derivatives need (see _assemble): per element and per measured value
         elements = {"index": [], "first": [], "jump": [], "U": [], "t": [], "h": [], "run": []}
-        points, links, copies = [], [], []
+        points, copies = [], []
         self._run_x0, self._run_constants, self._run_volume = [], [], []
         for r, run in enumerate(runs):
             const = P.add(f"r{r}.constants", m.n_constants)
@@ -284,11 +288,11 @@ class FitNLP:
             # not through three dense columns of the Jacobian and the Hessian
             # (IPOPT's step, 8 runs: about 15 % less CPU per iteration)
             copy = W.add(f"r{r}.theta", len(self.estimated))
-            links.append(copy - theta_s)
+            self._links.append(copy - theta_s)
             copies.append(W.indices(f"r{r}.theta").ravel())
             p_run = const * ca.DM(keep) + ca.mtimes(ca.DM(select), copy * theta_scale)
+            self._run_p.append(p_run)
             run_theta = copies[-1]
-            x_start = x0
             prev_end, jump = None, np.zeros(nx)
             blocks = []
             for k, (a, b, n, seg, sample) in enumerate(stretches(run, m.feed_names, run.end_time / elements_per_run)):
@@ -300,13 +304,12 @@ class FitNLP:
                     v = pumped_volume(seg, np.concatenate([[a], times, [b]]))
                     u = np.vstack([u, pumped - v[0] + v[1:-1]])  # V less the initial volume
                     pumped += v[-1] - v[0]
-                    u_pts = ca.vertcat(ca.DM(u[:-1]), volume0 + ca.DM(u[-1:]))
-                else:
-                    u_pts = ca.DM(u)
-                blk = Block(f"r{r}.s{k}", f, fr, degree, W).write(x_start, p_run, b - a, a, u_pts, xs)
-                blk.span = (a, b)
+                blk = Block(f"r{r}.s{k}", f, fr, degree, W)
+                # what the definition (`nlp`) writes its equations from: the pump
+                # rates (and V less the initial volume) at its points, and the state
+                # jump (a sample's volume) between the block before it and this one
+                blk.span, blk.u, blk.jump = (a, b), u, jump
                 blocks.append(blk)
-                collocation.append(blk.residuals)
                 cols = W.indices(blk.var)  # (nx, n * degree)
                 h = (b - a) * np.diff(fr)
                 t_points = (a + (b - a) * fr[:-1])[:, None] + tau[None, 1:] * h[:, None]
@@ -328,40 +331,64 @@ class FitNLP:
                         u_end = np.append(u_end, pumped)
                     for q, y in run.values.items():
                         if np.isfinite(y[sample]):
-                            if q in names:
-                                model_values.append(blk.x_end[names.index(q)])
-                            else:
-                                u_sym = ca.vertcat(ca.DM(u_end[:-1]), volume0 + u_end[-1]) if self.volume_data \
-                                    else ca.DM(u_end)
-                                model_values.append(values[q](b, blk.x_end, u_sym, p_run))
+                            self._samples.append((q, blk, b, u_end, r))
                             points.append((q, np.concatenate([prev_end, run_theta]), b, u_end, r))
-                x_start = blk.x_end
                 if sample is not None and run.sample_volume:
                     if self.volume_data:
                         pumped -= run.sample_volume
                     else:
                         jump = np.zeros(nx)
                         jump[v_index] = run.sample_volume
-                        x_start = x_start - ca.DM(jump)
             self.blocks.append(blocks)
         self.measured = measurements(runs)
-        assert len(self.measured) == len(model_values)
-        self.n_res = len(model_values)
-        y = P.add("y", self.n_res)
-        weight = P.add("weight", self.n_res)
-        g = ca.vertcat(*collocation, *links)
+        assert len(self.measured) == len(self._samples)
+        self.n_res = len(self._samples)
+        self._y, self._weight = P.add("y", self.n_res), P.add("weight", self.n_res)
         self._copies = copies
-        res = (ca.vertcat(*model_values) - y) * weight
-        # the NLP as the blocks write it (the definition; CasADi's derivatives of it
-        # are the reference the tests compare the assembled ones with)
-        self.nlp = {"x": W.symbol(), "p": P.symbol(), "f": 0.5 * ca.sumsqr(res), "g": g}
-        self.n_w, self.n_g = W.size, g.shape[0]
-        self._res_fun = ca.Function("res", [self.nlp["x"], self.nlp["p"]], [res])
-        # what optfeed.solve hands to IPOPT: the same NLP with exact derivatives
-        # assembled from the pieces' own (see optfeed.derivatives)
-        assembled = self._assemble(f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index)
-        self._sx = {"x": self.nlp["x"], "p": self.nlp["p"], "f": assembled.f, "g": assembled.g}
+        self._values, self._xs = values, xs
+        self.n_w = W.size
+        self.n_g = (sum(nx * blk.N * degree for blocks in self.blocks for blk in blocks)
+                    + len(copies) * len(self.estimated))
+        self._w, self._p = W.symbol(), P.symbol()
+        # what optfeed.solve hands to IPOPT: the NLP with exact derivatives assembled
+        # from the pieces' own (see optfeed.derivatives)
+        assembled = self._assemble(f, values, elements, points, keep, select, theta_scale, xs, self._y, self._weight,
+                                   theta_index)
+        self._sx = {"x": self._w, "p": self._p, "f": assembled.f, "g": assembled.g}
+        self._f_fun = ca.Function("f", [self._w, self._p], [assembled.f])
         self._solvers, self._derivatives = {}, assembled.functions
+
+    @cached_property
+    def nlp(self) -> dict:
+        """The NLP as the blocks write it (x, p, f, g, and ``residuals``, the weighted
+        residuals): the definition, which CasADi differentiates in the tests as the
+        reference for the assembled derivatives. Written on first use; a fit never
+        needs it (on benchmarks/fit_benchmark.py's design it costs 3 ms at 1 run
+        and 30 ms at 8, against 12 and 50 ms for the rest of the build)."""
+        for r, blocks in enumerate(self.blocks):
+            x_start = self._run_x0[r]
+            for blk in blocks:
+                if blk.jump.any():
+                    x_start = x_start - ca.DM(blk.jump)
+                u_pts = ca.DM(blk.u)
+                if self.volume_data:
+                    u_pts = ca.vertcat(u_pts[:-1, :], self._run_volume[r] + u_pts[-1, :])
+                a, b = blk.span
+                blk.write(x_start, self._run_p[r], b - a, a, u_pts, self._xs)
+                x_start = blk.x_end
+        names = self.state_names
+        model_values = []
+        for q, blk, b, u_end, r in self._samples:
+            if q in names:
+                model_values.append(blk.x_end[names.index(q)])
+            else:
+                u_sym = ca.vertcat(ca.DM(u_end[:-1]), self._run_volume[r] + u_end[-1]) if self.volume_data \
+                    else ca.DM(u_end)
+                model_values.append(self._values[q](b, blk.x_end, u_sym, self._run_p[r]))
+        res = (ca.vertcat(*model_values) - self._y) * self._weight
+        g = ca.vertcat(*[blk.residuals for blocks in self.blocks for blk in blocks], *self._links)
+        assert g.shape[0] == self.n_g
+        return {"x": self._w, "p": self._p, "f": 0.5 * ca.sumsqr(res), "g": g, "residuals": res}
 
     def _assemble(self, f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index) -> Assembled:
         """The NLP as a sum of pieces (each element's collocation equations, each
@@ -419,7 +446,7 @@ class FitNLP:
             start = E * nx * d
             kinds.append(Kind(link, np.array([np.concatenate([c, theta_index]) for c in self._copies]).T, [],
                               rows=start + np.arange(n_c * n_theta).reshape(n_c, n_theta).T))
-        return Assembled(self.nlp["x"], self.nlp["p"], self.n_g, terms, kinds)
+        return Assembled(self._w, self._p, self.n_g, terms, kinds)
 
     def derivatives(self, few_iterations: bool = False) -> dict:
         """IPOPT's derivative Functions (grad_f, jac_g, hess_lag) for nlpsol, as
@@ -480,11 +507,13 @@ class FitNLP:
         return {"p": self.parameters(data), "lbx": lbx, "ubx": ubx, "lbg": lbg, "ubg": ubg}
 
     def objective_value(self, w, data: FitData) -> float:
-        r = self.residuals(w, data)
-        return float(0.5 * r @ r)
+        return float(self._f_fun(w, self.parameters(data)))
 
     def residuals(self, w, data: FitData) -> np.ndarray:
-        """Weighted residuals (model - measured) / sigma at NLP point ``w``."""
+        """Weighted residuals (model - measured) / sigma at NLP point ``w`` (from the
+        definition, see `nlp`)."""
+        if not hasattr(self, "_res_fun"):
+            self._res_fun = ca.Function("res", [self._w, self._p], [self.nlp["residuals"]])
         return np.array(self._res_fun(w, self.parameters(data))).ravel()
 
     def theta(self, w, data: FitData) -> np.ndarray:
