@@ -493,6 +493,7 @@ def test_assembled_derivatives_are_casadi_s_of_the_whole_nlp(tmp_path, volume_me
         got = np.array(ca.densify(got))
         assert got.shape == want.shape
         np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.abs(want).max())
+    assert nlp.objective_value(w, data) == pytest.approx(f0.item(), rel=1e-12)  # what each start reports
 
 
 @pytest.mark.parametrize("a, b, k", [((0.02,), (0.0,), (0.0,)), ((0.02,), (0.004,), (0.0,)),

@@ -425,13 +425,22 @@ class FitNLP:
             ca.horzcat(*[runs_c[r] for r in run_of]), ca.repmat(xs, 1, E), ca.repmat(theta_scale, 1, E)],
             rows=np.arange(E * nx * d).reshape(E, nx * d).T)]
         terms = []
-        for q in dict.fromkeys(p[0] for p in points):
+        # a measured state: the term sees that state's variable alone, so every
+        # measured state of every run is one kind of piece
+        which = [k for k, p in enumerate(points) if p[0] in self.state_names]
+        if which:
+            zq, sq, yq, wq = ca.SX.sym("z"), ca.SX.sym("xs"), ca.SX.sym("y"), ca.SX.sym("w")
+            term = ca.Function("state_term", [zq, sq, yq, wq], [0.5 * ((zq * sq - yq) * wq) ** 2])
+            state = [self.state_names.index(points[k][0]) for k in which]
+            terms.append(Kind(term, np.array([[points[k][1][i] for k, i in zip(which, state)]]),
+                              [xs[state].T, y[which].T, weight[which].T]))
+        # any other measured quantity: a function of the state, the pumps and the constants
+        for q in dict.fromkeys(p[0] for p in points if p[0] not in self.state_names):
             which = [k for k, p in enumerate(points) if p[0] == q]
             zq = ca.SX.sym("z", nx + n_theta)
             tq, uq, yq, wq = ca.SX.sym("t"), ca.SX.sym("u", nu), ca.SX.sym("y"), ca.SX.sym("w")
             x_end, th = zq[:nx] * xs_e, zq[nx:]
-            model_value = x_end[self.state_names.index(q)] if q in self.state_names else values[q](
-                tq, x_end, uq, constants(c, th, ts))
+            model_value = values[q](tq, x_end, uq, constants(c, th, ts))
             term = ca.Function("term", [zq, tq, uq, c, xs_e, ts, yq, wq], [0.5 * ((model_value - yq) * wq) ** 2])
             n = len(which)
             terms.append(Kind(term, np.array([points[k][1] for k in which]).T, [
