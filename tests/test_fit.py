@@ -401,13 +401,14 @@ def test_anchored_course_is_the_model_between_samples_pinned_to_the_data(tmp_pat
 def test_sensitivities_are_central_differences_of_scipy_runs(tmp_path):
     """The Jacobian the polish steps on and the covariance comes from: the model's
     values at every sample differentiated with respect to the estimated parameters
-    by the sensitivity equations, in a run's first call held to the states'
-    tolerance, in later calls scaled by its last sensitivities (so that CVODES'
-    error test rests on the states). Reference: central differences (step 1e-4
-    relative) of fitcase.simulate, scipy's solve_ivp (LSODA, rtol 1e-10) on a
-    hand-written right-hand side, on the batch run and on the fed-batch run with
-    its sample volumes; the differences are good to about 1e-6 of the largest
-    value. The scaled call must also stay within 2e-6 of the first (3e-7 measured)."""
+    by the sensitivity equations, scaled so that CVODES' error test rests on the
+    states: in a run's first call by a guess from its data, in later calls by its
+    last sensitivities. Reference: central differences (step 1e-4 relative) of
+    fitcase.simulate, scipy's solve_ivp (LSODA, rtol 1e-10) on a hand-written
+    right-hand side, on the batch run and on the fed-batch run with its sample
+    volumes; the differences are good to about 1e-6 of the largest value. Both
+    calls must also stay within 2e-6 of the same run with the sensitivities held
+    to the states' tolerance (3e-7 measured)."""
     from optfeed.fit.job import _Fitter
     from optfeed.fit.runs import load_runs
     from optfeed.problem.dotted import as_problem
@@ -429,13 +430,17 @@ def test_sensitivities_are_central_differences_of_scipy_runs(tmp_path):
             columns.append((states[0] - states[1])[:, :3] / (2 * h))
         want = np.stack(columns, axis=-1)  # (samples, X S P, parameters)
         calls = []
-        for _ in range(2):
+        for scale in ("guessed", "measured", "none"):
+            if scale == "none":  # the sensitivities held to the states' tolerance too
+                job.sampler._scale[id(run)] = np.ones(job.model.nx * len(ESTIMATED))
             _, der = job.sampler.values(run, job.constants(run, theta), jacobian=True)
             calls.append(np.stack([der[q] for q in "XSP"], axis=1))
+        *scaled, tight = calls
         largest = np.abs(want).max(axis=0)  # per quantity and parameter
         for got in calls:
             assert np.all(np.abs(got - want) <= 2e-5 * largest), run.name
-        assert np.all(np.abs(calls[1] - calls[0]) <= 2e-6 * largest), run.name
+        for got in scaled:
+            assert np.all(np.abs(got - tight) <= 2e-6 * largest), run.name
 
 
 # ---------------------------------------------------------------- the NLP's derivatives

@@ -130,8 +130,8 @@ class Sampler:
 
     Built once per fit; each call integrates a run once (one CVODES call per
     stretch, output at its end only). A run's sensitivities are scaled by their
-    largest magnitudes in the run's last call with them (see :func:`sensitivity_model`); its
-    first call holds them to the states' tolerance.
+    largest magnitudes in the run's last call with them (see :func:`sensitivity_model`);
+    its first call guesses them (:meth:`_first_scale`).
     """
 
     def __init__(self, model, estimated):
@@ -148,6 +148,25 @@ class Sampler:
             v_x = ca.jacobian(v, m.x)
             v_p = ca.jacobian(v, m.p)[:, self.idx]
             self._v = ca.Function("v", [m.t, m.x, m.u, m.p], [v, v_x, v_p])
+
+    def _first_scale(self, run, constants) -> np.ndarray:
+        """The scale of a run's sensitivity states before any call has measured them:
+        |S|max guessed as (the state's largest value in the run's initial state and
+        data) / |theta|, the size of a sensitivity where the state is proportional
+        to the parameter. A guess too large only loosens an error test that the
+        sensitivities' accuracy does not rest on (see :func:`sensitivity_model`); one
+        too small by up to ATOL / SENSITIVITY_TOLERANCE (100) changes nothing, and
+        beyond that only brings back the states' tolerance for that sensitivity."""
+        m, p = self.model, len(self.idx)
+        size = np.abs(np.asarray(run.x0, dtype=float))
+        for q, y in run.values.items():
+            if q in m.state_names and np.isfinite(y).any():
+                i = m.index(q)
+                size[i] = max(size[i], float(np.nanmax(np.abs(y))))
+        theta = np.abs(np.asarray(constants, dtype=float)[self.idx])
+        guess = size[:, None] / np.where(theta > 0, theta, 1.0)[None, :]  # (nx, p)
+        guess = guess.T.ravel()  # column by column, as the states are appended
+        return np.where(guess > 0, guess * SENSITIVITY_TOLERANCE / ATOL, 1.0)
 
     @property
     def _plain(self) -> Simulator:
@@ -168,7 +187,9 @@ class Sampler:
         x = np.array(run.x0, dtype=float)
         if jacobian:
             x = np.concatenate([x, np.zeros(nx * p)])
-            scale = self._scale.get(id(run), np.ones(nx * p))
+            scale = self._scale.get(id(run))
+            if scale is None:
+                scale = self._first_scale(run, constants)
             constants = np.concatenate([constants, scale])
         v = m.index("V")
         n = len(run.times)
