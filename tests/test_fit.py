@@ -160,6 +160,16 @@ def test_residuals_are_the_re_simulation_s_not_the_nlp_s(tmp_path, monkeypatch):
             np.testing.assert_allclose(row["sigma"], fitcase.SIGMA[q])
             chi2 += float(np.sum(((np.array(row["fitted"]) - row["measured"]) / fitcase.SIGMA[q]) ** 2))
     assert r.chi2 == pytest.approx(chi2, rel=1e-6)  # the polish integrates with its sensitivities
+    # the courses the figures draw and the checks read: the runs at the estimates,
+    # sampled densely, with each sample's volume taken out after its sampling time
+    for run, traj in zip(fitcase.DESIGN, r.trajectories):
+        states = fitcase.simulate(run, p)
+        names = list(traj.state_names)
+        for k, t in enumerate(run.times):
+            before = np.flatnonzero(traj.t == t)[0]
+            np.testing.assert_allclose(traj.x[before, [names.index(q) for q in ("X", "S", "P", "V")]], states[k],
+                                       rtol=1e-6, atol=1e-8)
+        assert len(traj.t) > 20 * len(run.times)
     # the coarse NLP's chi-square is not the one reported
     assert abs(r.nlp_chi2 - r.chi2) > 1e-3 * r.chi2
     # and its estimates are those of the fine fit (the model's, not its discretisation's)
@@ -433,7 +443,7 @@ def test_sensitivities_are_central_differences_of_scipy_runs(tmp_path):
         for scale in ("guessed", "measured", "none"):
             if scale == "none":  # the sensitivities held to the states' tolerance too
                 job.sampler._scale[id(run)] = np.ones(job.model.nx * len(ESTIMATED))
-            _, der = job.sampler.values(run, job.constants(run, theta), jacobian=True)
+            _, der, _ = job.sampler.values(run, job.constants(run, theta), jacobian=True)
             calls.append(np.stack([der[q] for q in "XSP"], axis=1))
         *scaled, tight = calls
         largest = np.abs(want).max(axis=0)  # per quantity and parameter

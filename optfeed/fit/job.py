@@ -203,13 +203,15 @@ class _Fitter:
     def residuals(self, theta, jacobian: bool = False):
         """Weighted residuals (model - measured) / sigma of the exact re-simulation at
         ``theta``, in the order the NLP measures them (run, sampling time, quantity);
-        with ``jacobian`` also their derivatives (n, p) from the sensitivities.
+        with ``jacobian`` also their derivatives (n, p) from the sensitivities (and
+        the runs' courses are kept for :meth:`courses`).
 
         Raises SimulationError where the integrator cannot follow a run."""
-        out, jac = [], []
+        out, jac, courses = [], [], []
         for run in self.runs.runs:
             self.simulations += 1
-            values, der = self.sampler.values(run, self.constants(run, theta), jacobian)
+            values, der, course = self.sampler.values(run, self.constants(run, theta), jacobian)
+            courses.append(course)
             for k in range(len(run.times)):
                 for q, y in run.values.items():
                     if np.isfinite(y[k]):
@@ -220,7 +222,18 @@ class _Fitter:
         r = np.array(out)
         if not jacobian:
             return r
+        self._courses = (np.array(theta, dtype=float), courses)
         return r, np.array(jac).reshape(len(r), len(theta))
+
+    def courses(self, theta) -> list:
+        """Every run's course at ``theta`` (a Trajectory each, as :meth:`simulate`
+        gives them): those of the last call of :meth:`residuals` with its Jacobian
+        where it was made at ``theta`` (the polish's last step usually is),
+        else simulated now."""
+        kept = getattr(self, "_courses", None)
+        if kept is not None and np.array_equal(kept[0], np.asarray(theta, dtype=float)):
+            return kept[1]
+        return self.simulate(theta)
 
     def chi2(self, theta) -> float:
         """Chi-square of the re-simulation at ``theta`` (inf where it cannot be simulated)."""
@@ -505,7 +518,7 @@ def _fit(problem, runs, profile, progress, t0, model=None) -> FitResult:
                 if min(v - lo, hi - v) <= 1e-6 * max(abs(hi - lo), 1e-300)]
     flags += [f"{n} ended at a bound of its range: widen the range or read it as a limit, not an estimate"
               for n in at_bound]
-    trajs = job.simulate(theta)
+    trajs = job.courses(theta)
     for run, traj in zip(runs.runs, trajs):
         for sp in problem.species:
             x = traj.state(sp.name)

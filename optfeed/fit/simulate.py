@@ -55,14 +55,17 @@ def anchored_run(sim: Simulator, run, constants) -> Trajectory:
     return _stretch_by_stretch(sim, run, constants, pinned=True)
 
 
-def _stretch_by_stretch(sim: Simulator, run, constants, pinned: bool) -> Trajectory:
+def _stretch_by_stretch(sim: Simulator, run, constants, pinned: bool, ends: dict | None = None,
+                        x0=None) -> Trajectory:
     """The run integrated stretch by stretch (the sample volume taken after each
-    sampling time); with ``pinned``, each stretch ending at a sample is bent onto
-    the measured values there, as :func:`anchored_run` says."""
+    sampling time) from ``x0`` (default: the run's initial state); with ``pinned``,
+    each stretch ending at a sample is bent onto the measured values there, as
+    :func:`anchored_run` says. ``ends``, a dict, receives for each sample index
+    (time h, state before the sample is taken, pump rates L/h)."""
     m = sim.model
     v = m.index("V")
     pins = {m.index(q): y for q, y in run.values.items() if q in m.state_names and q != "V"} if pinned else {}
-    x = np.array(run.x0, dtype=float)
+    x = np.array(run.x0 if x0 is None else x0, dtype=float)
     ts, xs, us = [], [], []
     for a, b, _, seg, sample in stretches(run, m.feed_names, run.end_time):
         t, xx, uu = sim.between(seg, a, x, b, constants)
@@ -73,8 +76,11 @@ def _stretch_by_stretch(sim: Simulator, run, constants, pinned: bool) -> Traject
                     xx[:, i] = np.maximum(xx[:, i] + ramp * (max(y[sample], 0.0) - xx[-1, i]), 0.0)
         ts.append(t), xs.append(xx), us.append(uu)
         x = xx[-1].copy()
-        if sample is not None and run.sample_volume:
-            x[v] -= run.sample_volume
+        if sample is not None:
+            if ends is not None:
+                ends[sample] = (b, x.copy(), uu[-1])
+            if run.sample_volume:
+                x[v] -= run.sample_volume
     return Trajectory(np.concatenate(ts), np.vstack(xs), np.vstack(us), tuple(m.state_names), tuple(m.feed_names),
                       _p=np.asarray(constants, dtype=float))
 
@@ -94,8 +100,8 @@ def sensitivity_model(model, estimated):
     With c = 1 they are S itself, and CVODES holds them to the states' relative
     tolerance, which nearly doubles its steps on a fermentation run (1064 against
     591 for the states alone on the tests' batch run). With c = |S|max *
-    SENSITIVITY_TOLERANCE / ATOL (|S|max: the entry's largest magnitude at the
-    ends of the run's stretches, its samples and pump changes) S' stays below
+    SENSITIVITY_TOLERANCE / ATOL (|S|max: the entry's largest magnitude over
+    the run's course in its last call) S' stays below
     ATOL / SENSITIVITY_TOLERANCE, so its error test is the absolute one and allows
     S an error of SENSITIVITY_TOLERANCE |S|max: the steps are then the states'
     (574 on that run; 2.4 against 3.6 ms), and the sensitivities are as accurate
@@ -129,16 +135,19 @@ class Sampler:
         Names of the estimated constants (the columns of the derivatives).
 
     Built once per fit; each call integrates a run once (one CVODES call per
-    stretch, output at its end only). A run's sensitivities are scaled by their
-    largest magnitudes in the run's last call with them (see :func:`sensitivity_model`);
-    its first call guesses them (:meth:`_first_scale`).
+    stretch). A run's sensitivities are scaled by their largest magnitudes in the
+    run's last call with them (see :func:`sensitivity_model`); its first call
+    guesses them (:meth:`_first_scale`). With them the run is sampled as densely as
+    :func:`simulate_run` samples it (CVODES interpolates between its own steps:
+    2.24 against 2.20 ms for the tests' batch run with output at the stretch ends
+    only), so the fit's figures and checks need no further simulation.
     """
 
     def __init__(self, model, estimated):
         self.model, self.estimated = model, list(estimated)
         self.idx = [model.constant_index(n) for n in self.estimated]
         self._plain_sim = None  # built on first use: a fit without profiles needs only the sensitivities
-        self._sens = Simulator(sensitivity_model(model, self.estimated), points_per_piece=1)
+        self._sens = Simulator(sensitivity_model(model, self.estimated))
         self._scale = {}  # id(run) -> (nx * p,) scale of its sensitivity states
         m = model
         names = [q for q in m.values if q != "F_total"]
@@ -175,40 +184,33 @@ class Sampler:
         return self._plain_sim
 
     def values(self, run, constants, jacobian: bool = False):
-        """(values, derivatives) at the run's sampling times.
+        """(values, derivatives, course) at the run's sampling times.
 
         values : dict quantity -> (n,) model values (internal units) at each sampling
         time, before the sample is taken; derivatives : dict quantity -> (n, p)
-        d value / d theta, or None unless ``jacobian``.
+        d value / d theta, or None unless ``jacobian``; course : with ``jacobian``,
+        the run's Trajectory (the model's states, sampled as :func:`simulate_run`
+        samples them), else None.
         """
         m = self.model
         nx, p = m.nx, len(self.idx)
-        sim = self._sens if jacobian else self._plain
-        x = np.array(run.x0, dtype=float)
+        n = len(run.times)
+        ends, course = {}, None
         if jacobian:
-            x = np.concatenate([x, np.zeros(nx * p)])
             scale = self._scale.get(id(run))
             if scale is None:
                 scale = self._first_scale(run, constants)
-            constants = np.concatenate([constants, scale])
-        v = m.index("V")
-        n = len(run.times)
-        states = np.full((n, x.size), np.nan)
-        ends = [None] * n
-        largest = np.zeros(x.size)
-        for a, b, _, seg, sample in stretches(run, m.feed_names, run.end_time):
-            _, xx, _ = sim.between(seg, a, x, b, constants)
-            x = xx[-1].copy()
-            largest = np.maximum(largest, np.abs(xx).max(axis=0))
-            if sample is not None:
-                states[sample] = x
-                ends[sample] = (b, seg.rates(np.array([b]))[0])
-                if run.sample_volume:
-                    x[v] -= run.sample_volume
+            full = _stretch_by_stretch(self._sens, run, np.concatenate([constants, scale]), pinned=False, ends=ends,
+                                       x0=np.concatenate([run.x0, np.zeros(nx * p)]))
+            biggest = np.abs(full.x[:, nx:]).max(axis=0) * scale
+            self._scale[id(run)] = np.where(biggest > 0, biggest * SENSITIVITY_TOLERANCE / ATOL, 1.0)
+            course = Trajectory(full.t, full.x[:, :nx], full.u, tuple(m.state_names), tuple(m.feed_names),
+                                _p=np.asarray(constants, dtype=float))
+        else:
+            _stretch_by_stretch(self._plain, run, constants, pinned=False, ends=ends)
+        states = np.array([ends[k][1] for k in range(n)]).reshape(n, -1)
         if jacobian:
             states[:, nx:] *= scale
-            biggest = largest[nx:] * scale
-            self._scale[id(run)] = np.where(biggest > 0, biggest * SENSITIVITY_TOLERANCE / ATOL, 1.0)
         out, der = {}, ({} if jacobian else None)
         rows = {}
         for q in run.values:
@@ -223,9 +225,8 @@ class Sampler:
             vals = np.zeros((n, len(self._value_names)))
             dvals = np.zeros((n, len(self._value_names), p))
             for k in range(n):
-                t, u = ends[k]
-                xk = states[k, :nx]
-                vv, vx, vp = self._v(t, xk, u, constants)
+                t, xk, u = ends[k]
+                vv, vx, vp = self._v(t, xk[:nx], u, constants)
                 vals[k] = np.array(vv).ravel()
                 if jacobian:
                     Sk = states[k, nx:].reshape(p, nx).T  # (nx, p)
@@ -234,4 +235,4 @@ class Sampler:
                 out[q] = vals[:, j]
                 if jacobian:
                     der[q] = dvals[:, j, :]
-        return out, der
+        return out, der, course
