@@ -147,11 +147,11 @@ class _Fitter:
     def __init__(self, problem, runs: Runs, model=None):
         self.problem, self.runs = problem, runs
         self.model = build_model(problem) if model is None else model
-        self.sim = Simulator(self.model)
         # the NLP's initial courses and scale only: a looser integrator (8 runs: 0.13
         # -> 0.075 s for both); every re-simulation that is reported or judged uses
-        # self.sim and the Sampler, at the project's tolerances
+        # the Sampler or `sim`, at the project's tolerances
         self.rough = Simulator(self.model, rtol=ROUGH_TOLERANCE, atol=ROUGH_TOLERANCE * 1e-2)
+        self._sim = None
         self.names = [e.name for e in runs.estimates]
         self.sampler = Sampler(self.model, self.names)
         self.index = [self.model.constant_index(n) for n in self.names]
@@ -160,6 +160,15 @@ class _Fitter:
         self.start = np.array([e.start for e in runs.estimates])
         self.scale = np.maximum(np.abs(self.start), 1e-12)
         self.simulations = 0
+
+    @property
+    def sim(self) -> Simulator:
+        """The model's Simulator at the project's tolerances, built on first use: a
+        fit whose polish ends on its last step reports the Sampler's courses and
+        needs it only where the looser integrator fails."""
+        if self._sim is None:
+            self._sim = Simulator(self.model)
+        return self._sim
 
     def sigma(self, quantity, y):
         e = self.runs.errors[quantity]
