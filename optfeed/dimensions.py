@@ -22,7 +22,9 @@ from __future__ import annotations
 
 import ast
 import dataclasses
+import re
 from dataclasses import dataclass
+from functools import lru_cache
 
 from .errors import Issue
 from .units import UREG, describe, factor_to, internal_units
@@ -82,6 +84,34 @@ def _natural(dims, hint: str | None) -> bool:
             return True
     return "[length]" not in dict(dims) or dict(dims)["[length]"] % 3 == 0
 
+
+
+@lru_cache(maxsize=512)
+def _source_lines(text: str) -> tuple:
+    """The lines (UTF-8, ends kept) of an expression's text as the parser reads it,
+    split where the parser splits them (ast.get_source_segment splits the whole
+    text again for every node it is asked about)."""
+    parts = _LINE_END.split(text.strip().replace("^", "**"))
+    return tuple((line + end).encode() for line, end in zip(parts[0::2], parts[1::2] + [""]))
+
+
+_LINE_END = re.compile(r"(\r\n|\r|\n)")
+
+
+def _segment(text: str, node) -> str:
+    """The source text of ``node`` (as ast.get_source_segment gives it; "" where
+    the node has no position)."""
+    try:
+        first, last = node.lineno - 1, node.end_lineno - 1
+        start, end = node.col_offset, node.end_col_offset
+    except AttributeError:
+        return ""
+    if last is None or end is None:
+        return ""
+    lines = _source_lines(text)
+    if first == last:
+        return lines[first][start:end].decode()
+    return (lines[first][start:] + b"".join(lines[first + 1:last]) + lines[last][:end]).decode()
 
 @dataclass(frozen=True)
 class Term:
@@ -239,7 +269,7 @@ class Inference:
             self.warnings.append(issue)
 
     def _walk(self, node, text) -> Term:
-        seg = ast.get_source_segment(text.strip().replace("^", "**"), node) or ""
+        seg = _segment(text, node)
         if isinstance(node, ast.Constant):
             return Term(_DIMLESS, bare=True, value=float(node.value), text=seg)
         if isinstance(node, ast.Name):
