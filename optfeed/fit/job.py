@@ -221,18 +221,20 @@ class _Fitter:
             self.simulations += 1
             values, der, course = self.sampler.values(run, self.constants(run, theta), jacobian)
             courses.append(course)
-            for k in range(len(run.times)):
-                for q, y in run.values.items():
-                    if np.isfinite(y[k]):
-                        s = float(self.sigma(q, [y[k]])[0])
-                        out.append((values[q][k] - y[k]) / s)
-                        if jacobian:
-                            jac.append(der[q][k] / s)
-        r = np.array(out)
+            # (sampling time, quantity) tables; row by row, the measured ones
+            y = np.column_stack(list(run.values.values()))
+            sigma = np.column_stack([self.sigma(q, v) for q, v in run.values.items()])
+            measured = np.isfinite(y)
+            model = np.column_stack([values[q] for q in run.values])
+            out.append(((model - y) / sigma)[measured])
+            if jacobian:
+                slopes = np.stack([der[q] for q in run.values], axis=1)  # (times, quantities, parameters)
+                jac.append((slopes / sigma[..., None])[measured])
+        r = np.concatenate(out)
         if not jacobian:
             return r
         self._courses = (np.array(theta, dtype=float), courses)
-        return r, np.array(jac).reshape(len(r), len(theta))
+        return r, np.concatenate(jac).reshape(len(r), len(theta))
 
     def courses(self, theta) -> list:
         """Every run's course at ``theta`` (a Trajectory each, as :meth:`simulate`
