@@ -187,13 +187,15 @@ def used_fed_species(problem: Problem) -> list[str]:
     return [n[4:] for n in sorted(names) if n.startswith("fed_")]
 
 
-def build_model(problem: Problem, fed: str = "all") -> Model:
+def build_model(problem: Problem, fed: str = "all", integral: bool = True) -> Model:
     """Build the symbolic model of ``problem``. See the module docstring for the states.
 
     ``fed='all'`` keeps a ``fed_<s>`` state for every species a feed carries (for
     reports); ``fed='used'`` only those a limit or the objective uses (the optimizer's
     leaner NLP); a list of species names keeps exactly those a feed carries (to build
     a model with the states of another, see :func:`optfeed.phases.models_like`).
+    ``integral=False`` leaves out ``J_int`` (a model that never reads the objective,
+    such as the calibration NLP's).
     """
     p = problem
     species = list(p.species)
@@ -204,7 +206,7 @@ def build_model(problem: Problem, fed: str = "all") -> Model:
     elif not isinstance(fed, str):
         keep = set(fed)
         fed_species = [n for n in fed_species if n in keep]
-    has_integral = p.objective is not None and p.objective.integral is not None
+    has_integral = integral and p.objective is not None and p.objective.integral is not None
     state_names = [s.name for s in species] + ["V"] + [f"fed_{n}" for n in fed_species]
     if has_integral:
         state_names.append("J_int")

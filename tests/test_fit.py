@@ -78,6 +78,34 @@ def test_agrees_with_an_independent_scipy_fit(case1):
         assert e.ci_high - e.value == pytest.approx(t * s, rel=0.02)
 
 
+
+def test_an_objective_s_integral_term_plays_no_part_in_a_fit(case1, tmp_path):
+    """The problem's objective is for optimize; a fit never reads it. With an
+    integral term in the objective the calibration NLP has the same states (no
+    J_int) and the fit the same estimates as without. Reference: the same data
+    fitted by scipy (fitcase.scipy_fit), and the fit of the problem without the
+    term (case1)."""
+    from optfeed.fit.runs import load_runs
+    from optfeed.fit.transcription import FitNLP
+    from optfeed.problem.dotted import as_problem
+
+    *_, measured, plain = case1
+    text = fitcase.PROBLEM.replace("objective: {maximize: titer, product: P}",
+                                   "objective: {maximize: titer, product: P, integral: -0.001 * X}")
+    assert text != fitcase.PROBLEM
+    problem, runs, _ = fitcase.write_case(tmp_path, seed=1, problem=text)
+    r = optfeed.fit(problem, runs)
+    assert r.status == "fitted", r.message
+    # (the re-simulations still integrate J_int with the model: CVODES' steps differ)
+    np.testing.assert_allclose(_values(r), _values(plain), rtol=1e-6)
+    x, _, _ = fitcase.scipy_fit(measured)
+    np.testing.assert_allclose(_values(r), x, rtol=1e-4)
+    spec = as_problem(problem, None)
+    model = build_model(spec)
+    assert "J_int" in model.state_names
+    nlp = FitNLP(model, load_runs(runs, spec, model).runs, list(ESTIMATED), elements_per_run=12)
+    assert nlp.state_names == ["X", "S", "P"]
+
 def _coverage(seeds, tmp_path):
     """Per parameter, how many of the seeds' 95 % intervals hold the truth."""
     hits = np.zeros(len(ESTIMATED), int)

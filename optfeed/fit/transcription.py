@@ -210,9 +210,10 @@ class FitNLP:
     ----------
     model : Model
         The full model (its state layout is the runs' initial states'). The NLP
-        itself leaves out its cumulative-feed states (``fed_<s>``): no data column
-        can name one and no other state depends on them (8 runs: a fifth fewer
-        variables and rows, IPOPT's iterations about as much cheaper). Unless a
+        itself leaves out its cumulative-feed states (``fed_<s>``) and the
+        objective's integral (``J_int``): no data column can name one and no other
+        state depends on them (8 runs: a fifth fewer variables and rows, IPOPT's
+        iterations about as much cheaper). Unless a
         run measured it, the broth volume V is no variable either: its rate is the
         sum of the pump rates and its jumps the sample volumes, all given, so its
         value at every collocation point and sample is computed beforehand (the
@@ -231,7 +232,7 @@ class FitNLP:
 
     def __init__(self, model: Model, runs, estimated, elements_per_run: int = 100, degree: int = 3):
         self.full = model
-        self.model = m = build_model(model.problem, fed=[])
+        self.model = m = build_model(model.problem, fed=[], integral=False)
         self.volume_data = volume_free(m, runs)
         if self.volume_data:
             f, values, names = volume_as_input(m)
