@@ -97,10 +97,10 @@ def rhs(t, y, p, F):
     return [mu * X - D * X, -q_S * X + D * (S_FEED - S), p["alpha"] * mu * X - D * P, F]
 
 
-def simulate(run: Run, p: dict) -> np.ndarray:
+def simulate(run: Run, p: dict, method: str = "LSODA", rtol: float = 1e-10, atol: float = 1e-12) -> np.ndarray:
     """(len(times), 4) states at the sampling times (before each sample is taken),
-    with scipy's solve_ivp (LSODA, rtol 1e-10), restarting at the feed change and at
-    every sample (its volume taken out)."""
+    with scipy's solve_ivp (LSODA, rtol 1e-10 unless told), restarting at the feed
+    change and at every sample (its volume taken out)."""
     from scipy.integrate import solve_ivp
 
     cuts = sorted({0.0, run.end_time, *run.times.tolist(), *([run.feed_from] if run.feed else [])})
@@ -108,7 +108,7 @@ def simulate(run: Run, p: dict) -> np.ndarray:
     out = {}
     for a, b in zip(cuts[:-1], cuts[1:]):
         F = run.feed if run.feed and a >= run.feed_from - 1e-12 else 0.0
-        sol = solve_ivp(rhs, (a, b), y, args=(p, F), method="LSODA", rtol=1e-10, atol=1e-12)
+        sol = solve_ivp(rhs, (a, b), y, args=(p, F), method=method, rtol=rtol, atol=atol)
         y = sol.y[:, -1].copy()
         if b in run.times:
             out[b] = y.copy()
@@ -163,6 +163,19 @@ def write_case(folder: Path, seed: int, estimate=("mu_max", "K_s", "Y_XS"), desi
     (folder / "problem.yaml").write_text(problem)
     (folder / "runs.yaml").write_text("\n".join(lines) + "\n")
     return folder / "problem.yaml", folder / "runs.yaml", measured
+
+
+def chi2(theta, measured, estimate=("mu_max", "K_s", "Y_XS"), design=DESIGN, sigma=SIGMA, method="LSODA",
+         rtol=1e-10, atol=1e-12) -> float:
+    """Chi-square of ``measured`` at the parameters ``theta`` (the others the truth's),
+    the runs simulated by :func:`simulate` with ``method``, ``rtol`` and ``atol``."""
+    p = dict(TRUE, **dict(zip(estimate, theta)))
+    out = 0.0
+    for run, values in zip(design, measured):
+        states = simulate(run, p, method, rtol, atol)
+        for q in run.measured:
+            out += float(np.sum(((states[:, "XSP".index(q)] - values[q]) / sigma[q]) ** 2))
+    return out
 
 
 def scipy_fit(measured, estimate=("mu_max", "K_s", "Y_XS"), design=DESIGN, start=None, sigma=SIGMA):

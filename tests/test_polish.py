@@ -91,3 +91,42 @@ def test_a_polish_whose_trials_all_fail_is_not_converged():
 
     theta, _, _, converged, _ = Failing(-4.0).polish(np.array([1.0]))
     assert not converged and theta[0] == 1.0
+
+
+
+class _Jittered(_Fitter):
+    """A linear least-squares problem (r = a theta - b; its optimum theta* = 0.5 with
+    residuals (2, 2, -2), chi-square 12) whose residuals carry a constant error eta
+    everywhere but at the polish's start, as an adaptive integrator's error changes
+    with its steps from one parameter value to the next. From the start, 6e-5 from
+    the optimum, the exact step gains 5e-8 of chi-square; the error adds 1e-7 to it
+    at every other point: both within NOISE of chi-square (1.2e-7)."""
+
+    a = np.array([1.0, 2.0, 3.0])
+    b = np.array([-1.5, -1.0, 3.5])
+    start = 0.5 + np.sqrt(5e-8 / 14.0)
+    eta = 2.5e-8
+
+    def __init__(self):
+        self.lower, self.upper = np.array([-5.0]), np.array([5.0])
+        self.simulations = 0
+
+    def residuals(self, theta, jacobian: bool = False):
+        self.simulations += 1
+        r = self.a * theta[0] - self.b + (0.0 if theta[0] == self.start else self.eta)
+        return (r, self.a.reshape(-1, 1)) if jacobian else r
+
+
+def test_the_polish_takes_the_last_step_its_residuals_give_within_their_noise():
+    """Near the optimum chi-square changes by less than the residuals' own error, while
+    the step from the residuals and their slopes stays exact: the polish takes that
+    step, where chi-square rises by less than the noise, and ends; it does not
+    judge the step by chi-square alone (which would refuse it, then raise the
+    damping through trial after trial). Reference: the normal equations of the
+    linear problem (theta* = 0.5 exactly; the first step is damped by 1e-3 of
+    itself, so it ends 6e-8 short)."""
+    job = _Jittered()
+    theta, r, J, converged, iterations = job.polish(np.array([_Jittered.start]))
+    assert converged
+    assert theta[0] == pytest.approx(0.5, abs=1e-7)  # the start is 6e-5 away
+    assert job.simulations == 2
