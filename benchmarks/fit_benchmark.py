@@ -18,12 +18,16 @@ values):
 Printed per design and seed (every one, none left out): CPU seconds of each
 (time.process_time), their ratio, the growth of optfeed's time against the number
 of runs (time(R) / time(fewest runs), same seed and density, beside R itself), the
-largest relative difference of the estimates and of their standard errors, and the
+largest relative difference of the estimates, the same in optfeed's standard errors
+(where K_s is poorly determined, a difference far below one standard error can
+exceed 1e-4 of its value: both fits then end within their integrators' noise of the
+optimum, and on a tighter reference integrator optfeed's chi-square is the lower;
+tests/test_fit.py), the largest relative difference of the standard errors, and the
 estimates optfeed found on a bound of their range (one noise draw of a single batch
 run often does not identify K_s, which then ends on its lower bound, and both fits
 take longer). Then per design the median and the smallest ratio over the seeds and
 the median growth. One seed is one noise draw: the ratio of a single draw varies
-with it (at 1 run from about 2 to 3.4 on seeds 1, 2, 3, 7, 11), so the target is
+with it (at 1 run from about 3.2 to 6.4 on seeds 1-17, on 74ecde2), so the target is
 read on the median and the smallest. The issue's target: optfeed at least 5x faster
 than the baseline at the same estimates, its time growing no faster than linearly
 in the runs.
@@ -94,6 +98,7 @@ def one(n_runs: int, density: int, folder: Path, starts: int = 1, seed: int = 7)
     return {"runs": n_runs, "density": density, "seed": seed, "at_bound": at_bound,
             "samples": sum(len(d.times) * 3 for d in runs_design),
             "fit": t_fit, "scipy": t_scipy, "status": r.status, "differ": float(np.max(np.abs(got - x) / np.abs(x))),
+            "differ_se": float(np.max(np.abs(got - x) / np.array([e.se for e in r.estimates]))),
             "se_differ": float(np.max(np.abs(np.array([e.se for e in r.estimates]) - se) / se))}
 
 
@@ -107,7 +112,7 @@ def main() -> None:
     one(1, 1, Path(tempfile.mkdtemp()))  # warm-up: imports, pint's registry, CasADi's plugins
     print("CPU seconds (time.process_time) of one fit from the same start; ratio = scipy / optfeed")
     print(f"{'runs':>4} {'samples':>7} {'seed':>4} {'values':>6} {'optfeed s':>9} {'scipy s':>8} {'ratio':>6} "
-          f"{'growth':>6} {'est. differ':>11} {'SE differ':>9} {'at bound':>8} status")
+          f"{'growth':>6} {'est. differ':>11} {'in SEs':>7} {'SE differ':>9} {'at bound':>8} status")
     summary = []
     for density in args.density:
         base = {}  # seed -> optfeed time with the fewest runs
@@ -121,12 +126,13 @@ def main() -> None:
                 rows.append(row)
                 print(f"{n:>4} {str(density) + 'x':>7} {seed:>4} {row['samples']:>6} {row['fit']:>9.2f} "
                       f"{row['scipy']:>8.2f} {row['ratio']:>6.2f} {row['growth']:>6.2f} {row['differ']:>11.1e} "
-                      f"{row['se_differ']:>9.1e} {','.join(row['at_bound']) or '-':>8} {row['status']}")
+                      f"{row['differ_se']:>7.0e} {row['se_differ']:>9.1e} {','.join(row['at_bound']) or '-':>8} {row['status']}")
             ratios = [r["ratio"] for r in rows]
             summary.append(f"{n:>4} {str(density) + 'x':>7}  ratio median {np.median(ratios):5.2f}, smallest "
                            f"{min(ratios):5.2f}; growth median {np.median([r['growth'] for r in rows]):5.2f} "
                            f"(linear: {n / args.runs[0]:g}); estimates differ at most "
-                           f"{max(r['differ'] for r in rows):.1e}")
+                           f"{max(r['differ'] for r in rows):.1e} ({max(r['differ_se'] for r in rows):.0e} standard "
+                           "errors)")
         print(f"  (growth = optfeed time / time with {args.runs[0]} run(s), same seed; linear growth would be R / "
               f"{args.runs[0]})")
     print(f"Over the seeds {', '.join(map(str, args.seeds))}:")
