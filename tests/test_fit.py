@@ -127,6 +127,7 @@ def test_the_polish_ends_at_the_optimum_within_the_re_simulation_s_noise(tmp_pat
     assert exact[0] <= exact[1] + 1e-9, exact
     assert np.all(np.abs(ours - theirs) <= 1e-3 * se)
 
+
 def _coverage(seeds, tmp_path):
     """Per parameter, how many of the seeds' 95 % intervals hold the truth."""
     hits = np.zeros(len(ESTIMATED), int)
