@@ -36,8 +36,8 @@ def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> li
     keep = []  # the arrays must outlive run()
     for name, value in inputs.items():
         a = np.ascontiguousarray(value, dtype=float).reshape(-1)
-        j = f.index_in(name)
-        if a.size != f.nnz_in(j) or not f.sparsity_in(j).is_dense():
+        j, size = _slot(f, name, True)
+        if a.size != size:
             raise ValueError(f"input {name!r} of {f.name()}: {a.size} values where a dense "
                              f"{f.size1_in(j)}x{f.size2_in(j)} is expected")
         if a.size:
@@ -45,10 +45,8 @@ def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> li
             keep.append(a)
     out = []
     for name in outputs:
-        j = f.index_out(name)
-        if not f.sparsity_out(j).is_dense():
-            raise ValueError(f"output {name!r} of {f.name()} is not dense")
-        res = np.empty(f.nnz_out(j))
+        j, size = _slot(f, name, False)
+        res = np.empty(size)
         if res.size:
             buffer.set_res(j, memoryview(res))
         out.append(res)
@@ -59,3 +57,27 @@ def call(f: ca.Function, inputs: dict, outputs, stats: dict | None = None) -> li
             if key in own:
                 stats[key] = stats.get(key, 0) + int(own[key])
     return out
+
+
+def _slot(f: ca.Function, name: str, is_input: bool) -> tuple[int, int]:
+    """(index, number of values) of an input or output of ``f`` named ``name``,
+    checked dense once per Function object (ValueError where it is not); kept on the
+    object itself, so it lives and dies with it."""
+    slots = getattr(f, "_optfeed_slots", None)
+    if slots is None:
+        slots = f._optfeed_slots = {}
+    found = slots.get((name, is_input))
+    if found is None:
+        if is_input:
+            j = f.index_in(name)
+            dense, size = f.sparsity_in(j).is_dense(), f.nnz_in(j)
+            if not dense:
+                raise ValueError(f"input {name!r} of {f.name()}: {size} values where a dense "
+                                 f"{f.size1_in(j)}x{f.size2_in(j)} is expected")
+        else:
+            j = f.index_out(name)
+            dense, size = f.sparsity_out(j).is_dense(), f.nnz_out(j)
+            if not dense:
+                raise ValueError(f"output {name!r} of {f.name()} is not dense")
+        found = slots[(name, is_input)] = (j, size)
+    return found
