@@ -72,8 +72,7 @@ def _slot(f: ca.Function, name: str, is_input: bool) -> tuple[int, int]:
             j = f.index_in(name)
             dense, size = f.sparsity_in(j).is_dense(), f.nnz_in(j)
             if not dense:
-                raise ValueError(f"input {name!r} of {f.name()}: {size} values where a dense "
-                                 f"{f.size1_in(j)}x{f.size2_in(j)} is expected")
+                raise ValueError(f"input {name!r} of {f.name()} is not dense")
         else:
             j = f.index_out(name)
             dense, size = f.sparsity_out(j).is_dense(), f.nnz_out(j)

@@ -85,7 +85,6 @@ def _natural(dims, hint: str | None) -> bool:
     return "[length]" not in dict(dims) or dict(dims)["[length]"] % 3 == 0
 
 
-
 @lru_cache(maxsize=512)
 def _source_lines(text: str) -> tuple:
     """The lines (UTF-8, ends kept) of an expression's text as the parser reads it,
@@ -101,17 +100,16 @@ _LINE_END = re.compile(r"(\r\n|\r|\n)")
 def _segment(text: str, node) -> str:
     """The source text of ``node`` (as ast.get_source_segment gives it; "" where
     the node has no position)."""
-    try:
-        first, last = node.lineno - 1, node.end_lineno - 1
-        start, end = node.col_offset, node.end_col_offset
-    except AttributeError:
-        return ""
-    if last is None or end is None:
+    first, last = getattr(node, "lineno", None), getattr(node, "end_lineno", None)
+    start, end = getattr(node, "col_offset", None), getattr(node, "end_col_offset", None)
+    if None in (first, last, start, end):
         return ""
     lines = _source_lines(text)
+    first, last = first - 1, last - 1
     if first == last:
         return lines[first][start:end].decode()
     return (lines[first][start:] + b"".join(lines[first + 1:last]) + lines[last][:end]).decode()
+
 
 @dataclass(frozen=True)
 class Term:

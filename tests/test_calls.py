@@ -55,3 +55,7 @@ def test_wrong_sizes_and_sparse_outputs_are_refused():
     g = ca.Function("g", [x], [ca.SX(ca.Sparsity.diag(3))], ["x"], ["y"])
     with pytest.raises(ValueError, match="not dense"):
         call(g, {"x": np.ones(3)}, ["y"])
+    d = ca.SX.sym("d", ca.Sparsity.diag(3))
+    h = ca.Function("h", [d], [ca.sum1(ca.sum2(d))], ["d"], ["y"])
+    with pytest.raises(ValueError, match="input 'd' of h is not dense"):
+        call(h, {"d": np.ones(3)}, ["y"])

@@ -52,7 +52,9 @@ STATIONARY = 1e-9         # the polish ends when a Gauss-Newton step would gain 
 # other steps at neighbouring parameters, and chi-square moves by 3e-11 to 3e-9 of
 # itself (standard deviation; at most 1e-7) beyond its smooth change, measured on
 # the benchmark's designs at 1e-5 standard errors from the estimates. The polish's
-# last step is the one whose predicted gain lies within it (see `polish`).
+# last step is one whose predicted and actual changes both lie within it (see
+# `polish`). 1e-8: above the spread of most draws, and below the largest jumps, so
+# that the steps it lets end the polish are a few 1e-4 standard errors at most.
 NOISE = 1e-8
 
 
@@ -170,8 +172,9 @@ class _Fitter:
     @property
     def sim(self) -> Simulator:
         """The model's Simulator at the project's tolerances, built on first use: a
-        fit whose polish ends on its last step reports the Sampler's courses and
-        needs it only where the looser integrator fails."""
+        fit reports the courses of the polish's last step (the Sampler's), and
+        needs it only where the looser integrator fails or where the polish ended
+        on a trial it did not take (see :meth:`courses`)."""
         if self._sim is None:
             self._sim = Simulator(self.model)
         return self._sim
@@ -333,13 +336,18 @@ class _Fitter:
                 gained = cost - float(rt @ rt) if np.all(np.isfinite(rt)) else -np.inf
                 # near the optimum chi-square moves by its own noise (NOISE), while
                 # the residuals and their slopes, from which the step comes, hardly
-                # move: a step whose gain the linearised residuals put below the
-                # noise is taken unless chi-square rises by more than the noise, and
-                # it ends the polish (comparing chi-square alone, one noise seed's
-                # polish stopped 3e-4 standard errors short of the optimum, and
-                # another's damping grew through 16 more rejected simulations)
+                # move: a step that the linearised residuals say changes chi-square
+                # by less than the noise, and that changes it by less than the
+                # noise, is taken whichever way chi-square moved, and it ends the
+                # polish (comparing chi-square alone, one noise seed's polish
+                # stopped 3e-4 standard errors short of the optimum, and another's
+                # damping grew through 16 more rejected simulations). Both changes
+                # must be small: a step whose linear model predicts a rise (the
+                # secant term, or a bounded step) can still gain a lot, and is
+                # then an ordinary step
                 predicted = cost - float(np.sum((r + J @ (trial - theta)) ** 2))
-                small = max(predicted, -gained) <= NOISE * max(cost, 1.0)
+                noise = NOISE * max(cost, 1.0)
+                small = abs(predicted) <= noise and abs(gained) <= noise
                 if gained > 0 or small:
                     gain = gained if not small else 0.0
                     second = _secant_update(second, trial - theta, (Jt - J).T @ rt)

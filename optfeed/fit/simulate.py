@@ -148,7 +148,7 @@ class Sampler:
         self.idx = [model.constant_index(n) for n in self.estimated]
         self._plain_sim = None  # built on first use: a fit without profiles needs only the sensitivities
         self._sens = Simulator(sensitivity_model(model, self.estimated))
-        self._scale = {}  # id(run) -> (nx * p,) scale of its sensitivity states
+        self._scale = {}  # id(run) -> (the run, (nx * p,) scale of its sensitivity states)
         m = model
         names = [q for q in m.values if q != "F_total"]
         self._value_names = names
@@ -164,8 +164,9 @@ class Sampler:
         data) / |theta|, the size of a sensitivity where the state is proportional
         to the parameter. A guess too large only loosens an error test that the
         sensitivities' accuracy does not rest on (see :func:`sensitivity_model`); one
-        too small by up to ATOL / SENSITIVITY_TOLERANCE (100) changes nothing, and
-        beyond that only brings back the states' tolerance for that sensitivity."""
+        too small by a factor k tightens it k times, up to the states' own
+        tolerance at k = SENSITIVITY_TOLERANCE / RTOL (100): more steps, never a
+        wrong value."""
         m, p = self.model, len(self.idx)
         size = np.abs(np.asarray(run.x0, dtype=float))
         for q, y in run.values.items():
@@ -197,13 +198,14 @@ class Sampler:
         n = len(run.times)
         ends, course = {}, None
         if jacobian:
-            scale = self._scale.get(id(run))
-            if scale is None:
-                scale = self._first_scale(run, constants)
+            kept = self._scale.get(id(run))
+            scale = kept[1] if kept is not None and kept[0] is run else self._first_scale(run, constants)
             full = _stretch_by_stretch(self._sens, run, np.concatenate([constants, scale]), pinned=False, ends=ends,
                                        x0=np.concatenate([run.x0, np.zeros(nx * p)]))
-            biggest = np.abs(full.x[:, nx:]).max(axis=0) * scale
-            self._scale[id(run)] = np.where(biggest > 0, biggest * SENSITIVITY_TOLERANCE / ATOL, 1.0)
+            biggest = (np.abs(full.x[:, nx:]).max(axis=0) * scale).reshape(p, nx)
+            # no scale below 1e-12 of the largest sensitivity to the same parameter
+            biggest = np.maximum(biggest, 1e-12 * biggest.max(axis=1, keepdims=True)).ravel()
+            self._scale[id(run)] = (run, np.where(biggest > 0, biggest * SENSITIVITY_TOLERANCE / ATOL, 1.0))
             course = Trajectory(full.t, full.x[:, :nx], full.u, tuple(m.state_names), tuple(m.feed_names),
                                 _p=np.asarray(constants, dtype=float))
         else:

@@ -267,11 +267,12 @@ class FitNLP:
         keep[idx] = 0.0
         v_index = names.index("V") if "V" in names else None
         self.blocks = []
-        # what the definition (see `nlp`) computes at each measured value:
-        # (quantity, block ending at the sample, time, pump rates there, run)
-        self._samples, self._links, self._run_p = [], [], []
+        self._links, self._run_p = [], []  # for the definition (see `nlp`)
         # what the exact derivatives need (see _assemble): per element and per measured value
         elements = {"index": [], "first": [], "jump": [], "U": [], "t": [], "h": [], "run": []}
+        # each measured value: (quantity, the variables its piece sees (the state at
+        # the sample, the run's parameters), time, pump rates there, run, the block
+        # ending at the sample)
         points, copies = [], []
         self._run_x0, self._run_constants, self._run_volume = [], [], []
         for r, run in enumerate(runs):
@@ -332,8 +333,7 @@ class FitNLP:
                         u_end = np.append(u_end, pumped)
                     for q, y in run.values.items():
                         if np.isfinite(y[sample]):
-                            self._samples.append((q, blk, b, u_end, r))
-                            points.append((q, np.concatenate([prev_end, run_theta]), b, u_end, r))
+                            points.append((q, np.concatenate([prev_end, run_theta]), b, u_end, r, blk))
                 if sample is not None and run.sample_volume:
                     if self.volume_data:
                         pumped -= run.sample_volume
@@ -342,8 +342,9 @@ class FitNLP:
                         jump[v_index] = run.sample_volume
             self.blocks.append(blocks)
         self.measured = measurements(runs)
-        assert len(self.measured) == len(self._samples)
-        self.n_res = len(self._samples)
+        assert len(self.measured) == len(points)
+        self.n_res = len(points)
+        self._points = points
         self._y, self._weight = P.add("y", self.n_res), P.add("weight", self.n_res)
         self._copies = copies
         self._values, self._xs = values, xs
@@ -359,13 +360,18 @@ class FitNLP:
         self._f_fun = ca.Function("f", [self._w, self._p], [assembled.f])
         self._solvers, self._derivatives = {}, assembled.functions
 
-    @cached_property
+    @property
     def nlp(self) -> dict:
-        """The NLP as the blocks write it (x, p, f, g, and ``residuals``, the weighted
-        residuals): the definition, which CasADi differentiates in the tests as the
-        reference for the assembled derivatives. Written on first use; a fit never
-        needs it (on benchmarks/fit_benchmark.py's design it costs 3 ms at 1 run
-        and 30 ms at 8, against 12 and 50 ms for the rest of the build)."""
+        """The NLP as the blocks write it (x, p, f, g, as nlpsol takes it): the
+        definition, which CasADi differentiates in the tests as the reference for
+        the assembled derivatives. Written on first use; a fit never needs it (on
+        benchmarks/fit_benchmark.py's design it costs 3 ms at 1 run and 30 ms at 8,
+        against 12 and 50 ms for the rest of the build)."""
+        return self._definition[0]
+
+    @cached_property
+    def _definition(self) -> tuple:
+        """(the NLP as the blocks write it, its weighted residuals)."""
         for r, blocks in enumerate(self.blocks):
             x_start = self._run_x0[r]
             for blk in blocks:
@@ -379,7 +385,7 @@ class FitNLP:
                 x_start = blk.x_end
         names = self.state_names
         model_values = []
-        for q, blk, b, u_end, r in self._samples:
+        for q, _, b, u_end, r, blk in self._points:
             if q in names:
                 model_values.append(blk.x_end[names.index(q)])
             else:
@@ -389,7 +395,7 @@ class FitNLP:
         res = (ca.vertcat(*model_values) - self._y) * self._weight
         g = ca.vertcat(*[blk.residuals for blocks in self.blocks for blk in blocks], *self._links)
         assert g.shape[0] == self.n_g
-        return {"x": self._w, "p": self._p, "f": 0.5 * ca.sumsqr(res), "g": g, "residuals": res}
+        return {"x": self._w, "p": self._p, "f": 0.5 * ca.sumsqr(res), "g": g}, res
 
     def _assemble(self, f, values, elements, points, keep, select, theta_scale, xs, y, weight, theta_index) -> Assembled:
         """The NLP as a sum of pieces (each element's collocation equations, each
@@ -523,7 +529,7 @@ class FitNLP:
         """Weighted residuals (model - measured) / sigma at NLP point ``w`` (from the
         definition, see `nlp`)."""
         if not hasattr(self, "_res_fun"):
-            self._res_fun = ca.Function("res", [self._w, self._p], [self.nlp["residuals"]])
+            self._res_fun = ca.Function("res", [self._w, self._p], [self._definition[1]])
         return np.array(self._res_fun(w, self.parameters(data))).ravel()
 
     def theta(self, w, data: FitData) -> np.ndarray:
