@@ -28,8 +28,8 @@ run often does not identify K_s, which then ends on its lower bound, and both fi
 take longer). Then per design the median and the smallest ratio over the seeds and
 the median growth, and the ratio of their CPU summed over the seeds (the ratio of
 the mean times). One seed is one noise draw: the ratio of a single draw varies with
-it, mostly with the baseline's own time (at 1 run 0.16-0.42 s on seeds 1-17, and the
-ratio 3.1-6.2, on 86b547e), so the target is read on the median and on the summed
+it, mostly with the baseline's own time (at 1 run 0.17-0.43 s on seeds 1-17, and the
+ratio 3.2-6.3, on b162416), so the target is read on the median and on the summed
 CPU, the smallest printed beside them. The issue's target: optfeed at least 5x faster
 than the baseline at the same estimates, its time growing no faster than linearly
 in the runs.
