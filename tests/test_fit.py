@@ -80,28 +80,35 @@ def test_agrees_with_an_independent_scipy_fit(case1):
 
 def test_an_objective_s_integral_term_plays_no_part_in_a_fit(case1, tmp_path):
     """The problem's objective is for optimize; a fit never reads it. With an
-    integral term in the objective the calibration NLP has the same states (no
-    J_int) and the fit the same estimates as without. Reference: the same data
-    fitted by scipy (fitcase.scipy_fit), and the fit of the problem without the
-    term (case1)."""
-    from optfeed.fit.runs import load_runs
+    integral term in the objective, even one with a pole that the runs' substrate
+    passes (S = 1 g/L: its integral cannot be followed there), the fit models the
+    same states (no J_int, in the NLP, the re-simulations and the courses it
+    writes) and gives the same estimates as without. References: the same data
+    fitted by scipy (fitcase.scipy_fit), and the fit of the problem without the term
+    (case1). (With J_int in its re-simulations this fit failed at every guess.)"""
+    from optfeed.fit.runs import fit_model, load_runs
     from optfeed.fit.transcription import FitNLP
     from optfeed.problem.dotted import as_problem
+    from optfeed.report.files import write_fit_run
 
     *_, measured, plain = case1
-    text = fitcase.PROBLEM.replace("objective: {maximize: titer, product: P}",
-                                   "objective: {maximize: titer, product: P, integral: -0.001 * X}")
-    assert text != fitcase.PROBLEM
+    text = fitcase.PROBLEM.replace(
+        "objective: {maximize: titer, product: P}",
+        "objective: {maximize: titer, product: P, integral: -0.001 * X * S_pole / (S - S_pole) / t_ref}")
+    text = text.replace("  alpha: 0.3 g/g\n", "  alpha: 0.3 g/g\n  S_pole: 1 g/L\n  t_ref: 1 h\n")
+    assert "S_pole: 1 g/L" in text and "integral:" in text
     problem, runs, _ = fitcase.write_case(tmp_path, seed=1, problem=text)
+    spec = as_problem(problem, None)
+    assert "J_int" in build_model(spec).state_names  # optimize's model has it
     r = optfeed.fit(problem, runs)
     assert r.status == "fitted", r.message
-    # (the re-simulations still integrate J_int with the model: CVODES' steps differ)
-    np.testing.assert_allclose(_values(r), _values(plain), rtol=1e-6)
+    np.testing.assert_allclose(_values(r), _values(plain), rtol=1e-12)
     x, _, _ = fitcase.scipy_fit(measured)
     np.testing.assert_allclose(_values(r), x, rtol=1e-4)
-    spec = as_problem(problem, None)
-    model = build_model(spec)
-    assert "J_int" in model.state_names
+    assert all("J_int" not in traj.state_names for traj in r.trajectories)
+    folder = write_fit_run(r, tmp_path / "out", figures=False)
+    assert "J_int" not in (folder / "trajectory-1.csv").read_text().splitlines()[0]
+    model = fit_model(spec)
     nlp = FitNLP(model, load_runs(runs, spec, model).runs, list(ESTIMATED), elements_per_run=12)
     assert nlp.state_names == ["X", "S", "P"]
 

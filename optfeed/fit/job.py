@@ -31,13 +31,12 @@ import numpy as np
 
 from .. import status as st
 from ..errors import SimulationError
-from ..model import build_model
 from ..problem.dotted import as_problem
 from ..provenance import problem_digest, stamp
 from ..simulate import Simulator
 from ..solve import interrupt_guard, interrupted, solve
 from ..units import factor_to
-from .runs import Runs, load_runs, require_one_phase
+from .runs import Runs, fit_model, load_runs, require_one_phase
 from .simulate import Sampler, anchored_run, simulate_run
 from .statistics import Statistics, identifiability_words, uncertainty, verdict
 from .transcription import get_fit_nlp
@@ -154,7 +153,7 @@ class _Fitter:
 
     def __init__(self, problem, runs: Runs, model=None):
         self.problem, self.runs = problem, runs
-        self.model = build_model(problem) if model is None else model
+        self.model = fit_model(problem) if model is None else model
         # the NLP's initial courses and scale only: a looser integrator (8 runs: 0.13
         # -> 0.075 s for both); every re-simulation that is reported or judged uses
         # the Sampler or `sim`, at the project's tolerances
@@ -456,7 +455,7 @@ def fit(problem, runs, profile: bool = False, on_progress=None, set: dict | None
     if isinstance(runs, Runs):
         require_one_phase(problem)  # (load_runs checks the problem it reads a runs file for)
     else:
-        model = build_model(problem)
+        model = fit_model(problem)
         runs = load_runs(runs, problem, model)
     with interrupt_guard():
         return _fit(problem, runs, profile, on_progress or (lambda text, done, total: None), t0, model)

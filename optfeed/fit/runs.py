@@ -50,7 +50,7 @@ import numpy as np
 
 from ..csvfile import header_cell, read_table, unit_factor
 from ..errors import InputError, Issue
-from ..model import Model, composition_name
+from ..model import Model, build_model, composition_name
 from ..paths import inside
 from ..problem.yamlio import key_text, read_yaml
 from ..schedule import Schedule, load_schedule, piecewise_constant
@@ -156,8 +156,18 @@ def require_one_phase(problem) -> None:
                                  f"'{key}' would be left out of the fit: fit a problem file without them")
 
 
+def fit_model(problem) -> Model:
+    """The model a fit works with: the problem's, without the objective's integral
+    state J_int. A fit never reads the objective, and an integral it cannot follow
+    (a pole where a substrate passes some value) must not stop it: with J_int in its
+    re-simulations such a fit failed at every guess."""
+    return build_model(problem, integral=False)
+
+
 def load_runs(path, problem, model: Model) -> Runs:
-    """Read and check a runs file against ``problem`` (and its full ``model``).
+    """Read and check a runs file against ``problem`` (and its ``model``, that of
+    :func:`fit_model`; a model with the objective's integral state is replaced by
+    it: the runs' initial states are in the fit model's layout).
 
     Raises
     ------
@@ -165,6 +175,8 @@ def load_runs(path, problem, model: Model) -> Runs:
         Naming the runs file (or a data or schedule file), the line and the key.
     """
     require_one_phase(problem)
+    if "J_int" in model.state_names:
+        model = fit_model(problem)
     path = str(path)
     data, lines = read_yaml(path)
     base = Path(path).parent

@@ -618,10 +618,10 @@ def fit_drawings(result) -> list[Drawing]:
 
 
 def _fit_figures(result):
-    from ..model import build_model
+    from ..fit.runs import fit_model
     from ..units import factor_to
 
-    model = build_model(result.problem)
+    model = fit_model(result.problem)  # the courses' layout
     quantities = list(result.runs.quantities)
     units = {d["quantity"]: d["unit"] for d in result.residuals}
     runs = list(zip(result.runs.runs, result.trajectories))

@@ -525,7 +525,7 @@ def write_fit_run(result, target, figures: bool = True, png: bool = False) -> Pa
     runs), figure-residuals.svg and figure-correlation.svg (each also as PNG if ``png``).
     """
     from ..fit.fitted import covariance_csv_text, fitted_yaml_text
-    from ..model import build_model
+    from ..fit.runs import fit_model
     from .figures import fit_drawings
     from .html import fit_page, write_report
     from .text import fit_text
@@ -546,7 +546,7 @@ def write_fit_run(result, target, figures: bool = True, png: bool = False) -> Pa
                 w.writerow(header)
                 for row in rows:
                     w.writerow([f"{v:.10g}" if isinstance(v, float) else v for v in row])
-            model = build_model(result.problem)
+            model = fit_model(result.problem)  # the courses' layout
             for k, (run, traj) in enumerate(zip(result.runs.runs, result.trajectories), start=1):
                 header, rows = trajectory_table(model, traj, unique=True)
                 write_csv(tmp / f"trajectory-{k}.csv", header, rows)
