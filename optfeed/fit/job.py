@@ -39,7 +39,7 @@ from ..units import factor_to
 from .runs import Runs, fit_model, load_runs, require_one_phase
 from .simulate import Sampler, anchored_run, simulate_run
 from .statistics import Statistics, identifiability_words, uncertainty, verdict
-from .transcription import get_fit_nlp
+from .transcription import get_fit_nlp, measurements
 
 FITTED, NOT_CONVERGED, FAILED = st.FITTED, st.NOT_CONVERGED, st.FAILED
 ELEMENTS_PER_RUN = 100    # collocation elements across a run (at least one per stretch)
@@ -219,7 +219,8 @@ class _Fitter:
 
     def residuals(self, theta, jacobian: bool = False):
         """Weighted residuals (model - measured) / sigma of the exact re-simulation at
-        ``theta``, in the order the NLP measures them (run, sampling time, quantity);
+        ``theta``, in the order the NLP measures them (run, sampling time, quantity:
+        :func:`.transcription.measurements`);
         with ``jacobian`` also their derivatives (n, p) from the sensitivities (and
         the runs' courses are kept for :meth:`courses`).
 
@@ -603,14 +604,11 @@ def _residual_table(job, r) -> list:
     come from (measured + sigma * residual): the runs are not simulated again."""
     out = []
     units = {q: display_unit(q, job.runs.runs, job.problem) for q in job.runs.quantities}
-    place, at = {}, 0  # (run, quantity) -> positions of its residuals in r
-    for i, run in enumerate(job.runs.runs):
-        for k in range(len(run.times)):
-            for q, y in run.values.items():
-                if np.isfinite(y[k]):
-                    place.setdefault((i, q), []).append(at)
-                    at += 1
-    assert at == len(r)
+    place = {}  # (run, quantity) -> positions of its residuals in r
+    order = measurements(job.runs.runs)
+    for at, (i, _, q) in enumerate(order):
+        place.setdefault((i, q), []).append(at)
+    assert len(order) == len(r)
     for i, run in enumerate(job.runs.runs):
         for q, y in run.values.items():
             ok = np.isfinite(y)
