@@ -329,14 +329,13 @@ def _optimize(args) -> int:
 
 def _fit(args) -> int:
     from .fit import fit, load_runs
-    from .model import build_model
     from .problem import load_problem
     from .report.files import fit_summary, write_fit_run
     from .report.text import fit_text
 
     problem = load_problem(args.problem, set=_overrides(args.set))
     _warn(problem)
-    runs = load_runs(args.runs, problem, build_model(problem))
+    runs = load_runs(args.runs, problem)
     target = _run_folder(args, problem.name, "fit")
     if args.quiet or args.json:
         result = fit(problem, runs, profile=args.profile)

@@ -107,7 +107,10 @@ def test_an_objective_s_integral_term_plays_no_part_in_a_fit(case1, tmp_path):
     np.testing.assert_allclose(_values(r), x, rtol=1e-4)
     assert all("J_int" not in traj.state_names for traj in r.trajectories)
     folder = write_fit_run(r, tmp_path / "out", figures=False)
-    assert "J_int" not in (folder / "trajectory-1.csv").read_text().splitlines()[0]
+    assert "objective integral" not in (folder / "trajectory-1.csv").read_text().splitlines()[0]
+    done = subprocess.run([sys.executable, "-m", "optfeed.cli", "fit", str(problem), str(runs), "--out",
+                           str(tmp_path / "cli"), "--quiet"], capture_output=True, text=True, cwd=tmp_path, timeout=300)
+    assert done.returncode == 0, done.stderr  # the command line too, figures and all
     model = fit_model(spec)
     nlp = FitNLP(model, load_runs(runs, spec, model).runs, list(ESTIMATED), elements_per_run=12)
     assert nlp.state_names == ["X", "S", "P"]
@@ -500,7 +503,7 @@ def test_sensitivities_are_central_differences_of_scipy_runs(tmp_path):
         calls = []
         for scale in ("guessed", "measured", "none"):
             if scale == "none":  # the sensitivities held to the states' tolerance too
-                job.sampler._scale[id(run)] = np.ones(job.model.nx * len(ESTIMATED))
+                job.sampler._scale[id(run)] = (run, np.ones(job.model.nx * len(ESTIMATED)))
             _, der, _ = job.sampler.values(run, job.constants(run, theta), jacobian=True)
             calls.append(np.stack([der[q] for q in "XSP"], axis=1))
         *scaled, tight = calls

@@ -173,3 +173,51 @@ def test_a_polish_that_says_converged_ends_where_scipy_finds_nothing_better():
                                gtol=1e-15, bounds=(job.lower, job.upper))
         assert 2 * better.cost >= float(r @ r) * (1 - 1e-7), (start, theta, float(r @ r), 2 * better.cost)
     assert ended >= 80  # (all 100 end converged inside the bounds)
+
+
+class _RiseAndFall(_Fitter):
+    """m = a (1 - exp(-k t)) + c t exp(-k t), weighted by sigma = 0.05: three bounded
+    parameters and data with occasional outliers, where steps are often cut short by
+    a bound or by the damping."""
+
+    t = np.linspace(0.1, 3.0, 12)
+
+    def __init__(self, y):
+        self.y = y
+        self.lower, self.upper = np.full(3, 1e-3), np.full(3, 100.0)
+        self.simulations = 0
+
+    def residuals(self, theta, jacobian: bool = False):
+        self.simulations += 1
+        a, k, c = theta
+        t, e = self.t, np.exp(-k * self.t)
+        r = (a * (1 - e) + c * t * e - self.y) / 0.05
+        if not jacobian:
+            return r
+        return r, np.column_stack([1 - e, a * t * e - c * t * t * e, t * e]) / 0.05
+
+
+def test_a_step_cut_short_far_from_the_optimum_does_not_end_the_polish():
+    """A step cut short by a bound or by the damping changes chi-square by little
+    although the optimum is far: it must not end the polish as the last step within
+    the noise does. Over 300 seeded data sets and starts, wherever the polish ends
+    'converged' inside the bounds, scipy.optimize.least_squares started there (trf,
+    tolerances 1e-15) lowers chi-square by less than 1e-7 of it. (Without the
+    Gauss-Newton gain among the noise rule's conditions, 5 of 147 such ends were
+    not stationary: scipy still gained 6e-5 to 8e-2 of chi-square.)"""
+    rng = np.random.default_rng(5)
+    ended = 0
+    for _ in range(300):
+        t = _RiseAndFall.t
+        y = (2 * (1 - np.exp(-0.7 * t)) + 0.5 * t * np.exp(-0.7 * t) + rng.normal(scale=0.05, size=t.size)
+             + rng.choice([0, 3.0], p=[0.9, 0.1]) * rng.normal(size=t.size) * 0.3)
+        start = np.array([rng.uniform(0.1, 20), rng.uniform(0.05, 5), rng.uniform(0.01, 10)])
+        job = _RiseAndFall(y)
+        theta, r, _, converged, _ = job.polish(start)
+        if not converged or np.any((theta <= job.lower) | (theta >= job.upper)):
+            continue
+        ended += 1
+        better = least_squares(lambda th: job.residuals(th), theta, method="trf", xtol=1e-15, ftol=1e-15,
+                               gtol=1e-15, bounds=(job.lower, job.upper))
+        assert 2 * better.cost >= float(r @ r) * (1 - 1e-7), (start, theta, float(r @ r), 2 * better.cost)
+    assert ended >= 100

@@ -50,10 +50,12 @@ STATIONARY = 1e-9         # the polish ends when a Gauss-Newton step would gain 
 # The re-simulation's own noise in chi-square, relative: CVODES (rtol 1e-10) takes
 # other steps at neighbouring parameters, and chi-square moves by 3e-11 to 3e-9 of
 # itself (standard deviation; at most 1e-7) beyond its smooth change, measured on
-# the benchmark's designs at 1e-5 standard errors from the estimates. The polish's
-# last step is one whose predicted and actual changes both lie within it (see
-# `polish`). 1e-8: above the spread of most draws, and below the largest jumps, so
-# that the steps it lets end the polish are a few 1e-4 standard errors at most.
+# the benchmark's designs at 1e-5 standard errors from the estimates. The polish
+# may end on a step where the Gauss-Newton step's gain, the step's predicted change
+# and its actual change all lie within it (see `polish`). 1e-8: above the spread of
+# most draws and below the largest jumps; where the Gauss-Newton gain is below it,
+# the optimum is within about 1e-4 of a standard error (the square root of 1e-8
+# times chi-square, in units where a standard error raises chi-square by one).
 NOISE = 1e-8
 
 
@@ -319,7 +321,21 @@ class _Fitter:
             if -(gf @ gn) <= STATIONARY * max(cost, 1.0):
                 converged = True
                 break
-            improved = simulated = False
+            improved = simulated = ended = False
+            noise = NOISE * max(cost, 1.0)
+            # near the optimum chi-square moves by its own noise (NOISE), while the
+            # residuals and their slopes, from which the step comes, hardly move:
+            # where the undamped Gauss-Newton step itself would gain less than the
+            # noise, a step that the linearised residuals say changes chi-square by
+            # less than the noise, and that changes it by less than the noise, is
+            # taken whichever way chi-square moved, and it ends the polish
+            # (comparing chi-square alone, one noise seed's polish stopped 3e-4
+            # standard errors short of the optimum, and another's damping grew
+            # through 16 more rejected simulations). All three must be small: a
+            # step cut short by a bound or by the damping also changes chi-square
+            # little, far from the optimum; and one whose linear model predicts a
+            # rise (the secant term, a bounded step) can still gain a lot
+            near = -(gf @ gn) <= noise
             while lam < 1e12:
                 try:
                     trial = np.clip(theta + self._bounded_step(theta, r, J, free, lam, second), self.lower,
@@ -334,22 +350,10 @@ class _Fitter:
                     continue
                 simulated = True
                 gained = cost - float(rt @ rt) if np.all(np.isfinite(rt)) else -np.inf
-                # near the optimum chi-square moves by its own noise (NOISE), while
-                # the residuals and their slopes, from which the step comes, hardly
-                # move: a step that the linearised residuals say changes chi-square
-                # by less than the noise, and that changes it by less than the
-                # noise, is taken whichever way chi-square moved, and it ends the
-                # polish (comparing chi-square alone, one noise seed's polish
-                # stopped 3e-4 standard errors short of the optimum, and another's
-                # damping grew through 16 more rejected simulations). Both changes
-                # must be small: a step whose linear model predicts a rise (the
-                # secant term, or a bounded step) can still gain a lot, and is
-                # then an ordinary step
                 predicted = cost - float(np.sum((r + J @ (trial - theta)) ** 2))
-                noise = NOISE * max(cost, 1.0)
-                small = abs(predicted) <= noise and abs(gained) <= noise
-                if gained > 0 or small:
-                    gain = gained if not small else 0.0
+                ended = near and abs(predicted) <= noise and abs(gained) <= noise
+                if gained > 0 or ended:
+                    gain = gained
                     second = _secant_update(second, trial - theta, (Jt - J).T @ rt)
                     theta, r, J = trial, rt, Jt
                     lam = max(lam / 5, 1e-9)
@@ -361,7 +365,7 @@ class _Fitter:
                 # could even be simulated, which says nothing about stationarity
                 converged = simulated
                 break
-            if gain <= 1e-15 * max(cost, 1.0):
+            if ended or gain <= 1e-15 * max(cost, 1.0):
                 converged = True
                 break
         return theta, r, J, converged, it

@@ -92,7 +92,7 @@ class Run:
     times : (n,) sampling times, h (above 0, increasing)
     values : dict quantity -> (n,) measured values, NaN where not taken
     units : dict quantity -> unit written in the data file
-    x0 : initial state of the model (full model's layout)
+    x0 : initial state, in the layout of the fit's model (:func:`fit_model`)
     constants : the model's constant vector for this run
     schedule : the applied schedule (pumps off for a batch)
     sample_volume : L taken out at each sampling time
@@ -164,19 +164,24 @@ def fit_model(problem) -> Model:
     return build_model(problem, integral=False)
 
 
-def load_runs(path, problem, model: Model) -> Runs:
-    """Read and check a runs file against ``problem`` (and its ``model``, that of
-    :func:`fit_model`; a model with the objective's integral state is replaced by
-    it: the runs' initial states are in the fit model's layout).
+def load_runs(path, problem, model: Model | None = None) -> Runs:
+    """Read and check a runs file against ``problem`` and its fit model (``model``,
+    default :func:`fit_model`'s, whose layout the runs' initial states take).
 
     Raises
     ------
     InputError
         Naming the runs file (or a data or schedule file), the line and the key.
+    ValueError
+        Where ``model`` holds the objective's integral state (a model for optimize,
+        not the fit's).
     """
     require_one_phase(problem)
-    if "J_int" in model.state_names:
+    if model is None:
         model = fit_model(problem)
+    elif "J_int" in model.state_names:
+        raise ValueError("load_runs needs the fit's model, fit_model(problem): this one holds the "
+                         "objective's integral state J_int")
     path = str(path)
     data, lines = read_yaml(path)
     base = Path(path).parent

@@ -28,7 +28,7 @@ from .transcription import stretches
 
 def simulate_run(sim: Simulator, run, constants) -> Trajectory:
     """The run re-simulated with ``constants`` (the model's p vector): a Trajectory
-    of the full model, sampled densely, with the sample-volume jumps applied just
+    of the fit's model (all its states), sampled densely, with the sample-volume jumps applied just
     after each sampling time (the sample sees the broth before it is taken)."""
     return _stretch_by_stretch(sim, run, constants, pinned=False)
 
@@ -130,7 +130,7 @@ class Sampler:
     Parameters
     ----------
     model : Model
-        The full model.
+        The fit's model (:func:`optfeed.fit.runs.fit_model`).
     estimated : list of str
         Names of the estimated constants (the columns of the derivatives).
 

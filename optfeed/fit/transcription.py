@@ -167,7 +167,6 @@ def structure_key(problem, runs, estimated, elements_per_run: int, degree: int) 
         "feeds": [(f.name, sorted(f.composition)) for f in p.feeds],
         "oxygen": None if p.vessel.oxygen is None else p.vessel.oxygen.uptake.text,
         "heat": p.vessel.heat is not None,
-        "integral": None if p.objective is None or p.objective.integral is None else p.objective.integral.text,
         "estimated": list(estimated), "grid": [elements_per_run, degree],
         "runs": [{"times": [repr(float(t)) for t in run.times], "end": repr(float(run.end_time)),
                   "measured": [[q, np.isfinite(y).tolist()] for q, y in run.values.items()],
@@ -209,11 +208,12 @@ class FitNLP:
     Parameters
     ----------
     model : Model
-        The full model (its state layout is the runs' initial states'). The NLP
-        itself leaves out its cumulative-feed states (``fed_<s>``) and the
-        objective's integral (``J_int``): no data column can name one and no other
-        state depends on them (8 runs: a fifth fewer variables and rows, IPOPT's
-        iterations about as much cheaper). Unless a
+        The fit's model (:func:`optfeed.fit.runs.fit_model`; its state layout is the
+        runs' initial states'). The NLP itself leaves out its cumulative-feed
+        states (``fed_<s>``): no data column can name one and no other state
+        depends on them (8 runs: a fifth fewer variables and rows, IPOPT's
+        iterations about as much cheaper); the fit's model has no objective
+        integral (``J_int``) to leave out. Unless a
         run measured it, the broth volume V is no variable either: its rate is the
         sum of the pump rates and its jumps the sample volumes, all given, so its
         value at every collocation point and sample is computed beforehand (the
@@ -242,7 +242,7 @@ class FitNLP:
             names = list(m.state_names)
         self.state_names = names  # the NLP's states
         nx, nu = len(names), f.size1_in(2)  # nu: the pump rates, then V if it is data
-        self.states = np.array([model.index(n) for n in names])  # their places in the full model's layout
+        self.states = np.array([model.index(n) for n in names])  # their places in the fit model's layout
         self.estimated = list(estimated)
         self.n_runs = len(runs)
         # for MUMPS' settings (solve.ipopt_options) the runs are not copies sharing
@@ -472,7 +472,7 @@ class FitNLP:
     def data(self, runs, sigma, lower, upper, scale, x_scale) -> FitData:
         """The numbers of a solve for ``runs`` (of this NLP's structure);
         ``sigma(quantity, measured values)`` gives the standard deviations;
-        ``x_scale`` in the full model's state layout."""
+        ``x_scale`` in the fit model's state layout."""
         y = np.array([runs[r].values[q][k] for r, k, q in self.measured])
         s = np.array([float(sigma(q, [runs[r].values[q][k]])[0]) for r, k, q in self.measured])
         iv = self.full.index("V")
@@ -537,7 +537,7 @@ class FitNLP:
 
     def pack(self, data: FitData, runs, theta, trajectories, at_data: bool = False) -> np.ndarray:
         """NLP vector from parameter values and one trajectory per run (states of the
-        full model), read at the collocation points.
+        fit's model), read at the collocation points.
 
         The trajectories are those of :func:`optfeed.fit.simulate.anchored_run`: the
         model's course at ``theta`` between samples, pinned to the measured values.

@@ -622,6 +622,8 @@ def _fit_figures(result):
     from ..units import factor_to
 
     model = fit_model(result.problem)  # the courses' layout
+    assert all(tuple(t.state_names) == tuple(model.state_names) for t in result.trajectories), \
+        "a course in another layout"
     quantities = list(result.runs.quantities)
     units = {d["quantity"]: d["unit"] for d in result.residuals}
     runs = list(zip(result.runs.runs, result.trajectories))

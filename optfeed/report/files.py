@@ -548,6 +548,7 @@ def write_fit_run(result, target, figures: bool = True, png: bool = False) -> Pa
                     w.writerow([f"{v:.10g}" if isinstance(v, float) else v for v in row])
             model = fit_model(result.problem)  # the courses' layout
             for k, (run, traj) in enumerate(zip(result.runs.runs, result.trajectories), start=1):
+                assert tuple(traj.state_names) == tuple(model.state_names), "a course in another layout"
                 header, rows = trajectory_table(model, traj, unique=True)
                 write_csv(tmp / f"trajectory-{k}.csv", header, rows)
         draw = None
