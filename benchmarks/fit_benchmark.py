@@ -29,7 +29,7 @@ take longer). Then per design the median and the smallest ratio over the seeds a
 the median growth, and the ratio of their CPU summed over the seeds (the ratio of
 the mean times). One seed is one noise draw: the ratio of a single draw varies with
 it, mostly with the baseline's own time (at 1 run 0.17-0.43 s on seeds 1-17, and the
-ratio 3.2-6.3, on b162416), so the target is read on the median and on the summed
+ratio 3.3-6.4, on ca3730c), so the target is read on the median and on the summed
 CPU, the smallest printed beside them. The issue's target: optfeed at least 5x faster
 than the baseline at the same estimates, its time growing no faster than linearly
 in the runs.
