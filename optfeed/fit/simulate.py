@@ -28,8 +28,9 @@ from .transcription import stretches
 
 def simulate_run(sim: Simulator, run, constants) -> Trajectory:
     """The run re-simulated with ``constants`` (the model's p vector): a Trajectory
-    of the fit's model (all its states), sampled densely, with the sample-volume jumps applied just
-    after each sampling time (the sample sees the broth before it is taken)."""
+    of the fit's model (all its states), sampled densely, with the sample-volume
+    jumps applied just after each sampling time (the sample sees the broth before
+    it is taken)."""
     return _stretch_by_stretch(sim, run, constants, pinned=False)
 
 
@@ -101,8 +102,8 @@ def sensitivity_model(model, estimated):
     tolerance, which nearly doubles its steps on a fermentation run (1064 against
     591 for the states alone on the tests' batch run). With c = |S|max *
     SENSITIVITY_TOLERANCE / ATOL (|S|max: the entry's largest magnitude over
-    the run's course in its last call) S' stays below
-    ATOL / SENSITIVITY_TOLERANCE, so its error test is the absolute one and allows
+    the run's course in its last call) S' stays below ATOL /
+    SENSITIVITY_TOLERANCE, so its error test is the absolute one and allows
     S an error of SENSITIVITY_TOLERANCE |S|max: the steps are then the states'
     (574 on that run; 2.4 against 3.6 ms), and the sensitivities are as accurate
     as those steps make them. Measured on the tests' two runs: 3e-7 of |S|max
